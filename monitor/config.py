@@ -1,0 +1,358 @@
+"""The line configuration: a TOML file, validated by a schema, converted to SI.
+
+The schema is written with pydantic (https://docs.pydantic.dev): every table forbids
+unknown keys so a typo fails loudly; every quantity is a string with a unit
+(``"180 deg"``, ``"2 pli"``, ``"1000 fpm"``, ``"1.2 mil"``) turned into an SI float
+by :mod:`monitor.units`. Cross-references (a span naming a roller, a tag named by a
+roller) are checked by :mod:`monitor.line`, which builds the derived line.
+
+Every error is a :class:`ConfigError` that names the file, the key path, the value
+and what was expected; the CLI prints it and exits with status 2.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import tomllib
+from collections.abc import Callable
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    model_validator,
+)
+
+from monitor import units as U
+
+
+class ConfigError(Exception):
+    """Configuration problems, one per line: ``file: key.path: expected X, got Y``."""
+
+    def __init__(self, file: str | Path, key: str, message: str,
+                 more: list[tuple[str, str]] | None = None) -> None:
+        self.file = str(file)
+        self.problems = [(key, message), *(more or [])]
+        super().__init__("\n".join(self._line(k, m) for k, m in self.problems))
+
+    @property
+    def key(self) -> str:
+        return self.problems[0][0]
+
+    @property
+    def message(self) -> str:
+        return self.problems[0][1]
+
+    def _line(self, key: str, message: str) -> str:
+        return f"{self.file}: {key}: {message}" if key else f"{self.file}: {message}"
+
+
+# --- quantity fields ----------------------------------------------------------------
+
+
+def _quantity(kind: U.Kind, *, minimum: float | None = None, exclusive: bool = True,
+              maximum: float | None = None) -> Callable[[Any], float]:
+    def parse(value: Any) -> float:
+        si = U.to_si(value, kind)
+        if minimum is not None and (si <= minimum if exclusive else si < minimum):
+            word = "greater than" if exclusive else "at least"
+            raise ValueError(f"expected {kind.name} {word} {minimum:g} (SI), got {value!r}")
+        if maximum is not None and si > maximum:
+            raise ValueError(f"expected {kind.name} at most {maximum:g} (SI), got {value!r}")
+        return si
+
+    return parse
+
+
+def _positive_number(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value <= 0:
+        raise ValueError(f"expected a positive number, got {value!r}")
+    return float(value)
+
+
+PosLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0))]
+NonNegLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0, exclusive=False))]
+PosSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0))]
+NonNegSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0, exclusive=False))]
+Angle = Annotated[float, BeforeValidator(_quantity(U.ANGLE, minimum=0.0, maximum=4 * math.pi))]
+Modulus = Annotated[float, BeforeValidator(_quantity(U.PRESSURE, minimum=0.0))]
+Tension = Annotated[float, BeforeValidator(_quantity(U.TENSION, minimum=0.0))]
+Duration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0, exclusive=False))]
+PosDuration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0))]
+Frequency = Annotated[float, BeforeValidator(_quantity(U.FREQUENCY, minimum=0.0))]
+Acceleration = Annotated[float, BeforeValidator(_quantity(U.ACCELERATION, minimum=0.0))]
+Temperature = Annotated[float, BeforeValidator(_quantity(U.TEMPERATURE, minimum=0.0))]
+Fraction = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS, minimum=0.0, exclusive=False,
+                                                      maximum=1.0))]
+Ratio = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS))]
+PosNumber = Annotated[float, BeforeValidator(_positive_number)]
+
+_ID = re.compile(r"^[A-Za-z][A-Za-z0-9_\-]*$")
+_TAG = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.\-/:]*$")
+
+
+def _ident(value: str) -> str:
+    if not _ID.match(value):
+        raise ValueError(f"expected a name of letters, digits, '_' or '-' starting with a letter, got {value!r}")
+    return value
+
+
+def _unit_name(value: str) -> str:
+    U.parse_unit(value)  # raises UnitError (a ValueError) with the expectation
+    if U.unit_kind(value) is None:
+        raise ValueError(f"expected a unit of force, tension, speed, length, rotation or time, got {value!r}")
+    return value
+
+
+Ident = Annotated[str, AfterValidator(_ident)]
+TagName = Annotated[str, Field(pattern=_TAG.pattern)]
+UnitName = Annotated[str, AfterValidator(_unit_name)]
+Priority = Literal["low", "medium", "high"]
+
+
+class Strict(BaseModel):
+    """Base of every table: unknown keys are errors, values are not coerced silently."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+# --- the line -----------------------------------------------------------------------
+
+
+class LineSection(Strict):
+    """Line-wide settings: identity, speed reference, line-state thresholds, air model."""
+
+    name: str
+    plant: str = ""
+    max_speed: PosSpeed
+    speed_tag: TagName
+    web_speed_from: Ident | None = Field(
+        default=None, description="idler whose encoder gives the web speed; default: the speed reference")
+    frame_rate: Frequency = 50.0
+    stop_speed: NonNegSpeed = U.to_si("1 m/min", U.SPEED)
+    thread_speed: PosSpeed = U.to_si("20 m/min", U.SPEED)
+    accel_threshold: Acceleration = 0.02
+    accel_window: PosDuration = 1.0
+    settle_time: Duration = 5.0
+    min_drive_tension: Tension = U.to_si("0.1 pli", U.TENSION)
+    air_temperature: Temperature = 293.15
+    air_film_model: Literal["linear", "none"] = "linear"
+    air_speed_convention: Literal["mean", "sum"] = "mean"
+    air_traction_floor: Fraction = 0.0
+    roll_change_jump: PosLength = 0.05
+    encoder_ratio_tolerance: Fraction = 1e-4
+    check_window: PosDuration = 2.0
+    roll_settle_time: Duration = 10.0
+
+
+class MaterialSection(Strict):
+    """The web: nominal single-ply caliper, width, modulus, roughness and how it packs."""
+
+    name: str
+    caliper: PosLength
+    width: PosLength
+    modulus: Modulus
+    modulus_tolerance: Fraction = 0.15
+    roughness: NonNegLength = U.to_si("0.2 um", U.LENGTH)
+    stack_factor: PosNumber = 1.0
+    stack_factor_tolerance: Fraction = 0.1
+    caliper_drift: Fraction = 0.02
+    air_film_factor: Fraction = 1.0
+
+
+class RollerSection(Strict):
+    """A roller on the web path; idle unless ``driven``."""
+
+    id: Ident
+    diameter: PosLength
+    wrap: Angle
+    cof: PosNumber
+    roughness: NonNegLength = U.to_si("0.4 um", U.LENGTH)
+    driven: bool = False
+    covering: str = "steel"
+    air_film_factor: Fraction = 1.0
+    speed_tag: TagName | None = None
+    draw: Ratio = 0.0
+    safety_factor: Annotated[float, AfterValidator(lambda v: _at_least_one(v))] = 1.5
+    runout_check: bool = False
+
+
+def _at_least_one(v: float) -> float:
+    if not (v >= 1.0 and math.isfinite(v)):
+        raise ValueError(f"expected a safety factor of at least 1, got {v!r}")
+    return v
+
+
+class TaperSection(Strict):
+    """Winding tension taper; conventions vary, so the model is named.
+
+    linear:     T(D) = T0 * (1 - k * (D - Dc) / (Dmax - Dc))
+    hyperbolic: T(D) = T0 * (1 - k * (1 - Dc / D))      (k = 1 is constant torque)
+    """
+
+    model: Literal["linear", "hyperbolic"]
+    k: Fraction
+
+
+class WinderSection(Strict):
+    """An unwind or rewind stand."""
+
+    id: Ident
+    kind: Literal["unwind", "rewind"]
+    core_diameter: PosLength
+    max_diameter: PosLength
+    diameter_tag: TagName | None = None
+    rpm_tag: TagName | None = None
+    length_tag: TagName | None = None
+    core_change_tag: TagName | None = None
+    taper: TaperSection | None = None
+    runout_check: bool = True
+    calibration_length: PosLength = 300.0
+
+    @model_validator(mode="after")
+    def _diameters(self) -> WinderSection:
+        if self.max_diameter <= self.core_diameter:
+            raise ValueError(
+                f"expected max_diameter ({self.max_diameter:g} m) larger than core_diameter "
+                f"({self.core_diameter:g} m)")
+        return self
+
+
+class SpanSection(Strict):
+    """A free span between two rollers (or a winder and a roller)."""
+
+    id: Ident
+    from_: Ident = Field(alias="from")
+    to: Ident
+    length: PosLength
+    tension_tag: TagName | None = None
+    setpoint: Tension | None = None
+
+    @model_validator(mode="after")
+    def _setpoint(self) -> SpanSection:
+        if self.tension_tag is not None and self.setpoint is None:
+            raise ValueError("expected a setpoint (for example \"2 pli\") on a span with a tension_tag")
+        return self
+
+
+class TagSection(Strict):
+    """A measured signal: its unit, plausible range, sample period and where it comes from."""
+
+    unit: UnitName
+    range: tuple[float, float] | None = None
+    sample_period: PosDuration = 0.02
+    stale_after: PosNumber = 5.0
+    frozen_after: PosDuration | None = None
+    frozen_tolerance: float = 0.0
+    accuracy: float | str | None = Field(
+        default=None, description="absolute, in the tag's unit, or relative such as \"0.5 %\"")
+    source: str = "line"
+    address: str | None = None
+
+    @model_validator(mode="after")
+    def _range(self) -> TagSection:
+        if self.range is not None and not (self.range[0] < self.range[1]):
+            raise ValueError(f"expected range [low, high] with low < high, got {list(self.range)!r}")
+        return self
+
+
+class AlarmOverride(Strict):
+    """Per-object changes to a check's alarm settings (any subset of the fields)."""
+
+    enabled: bool | None = None
+    warning: Ratio | None = None
+    alarm: Ratio | None = None
+    deadband: Ratio | None = None
+    on_delay: Duration | None = None
+    off_delay: Duration | None = None
+    priority: Priority | None = None
+    warning_priority: Priority | None = None
+
+
+class CheckSection(AlarmOverride):
+    """Alarm settings of one check kind, with its rationalization (ISA-18.2 master alarm database)."""
+
+    cause: str | None = None
+    consequence: str | None = None
+    action: str | None = None
+    response_time: Duration | None = None
+    overrides: dict[Ident, AlarmOverride] = Field(default_factory=dict)
+
+
+class LineConfig(Strict):
+    """The whole file."""
+
+    line: LineSection
+    material: MaterialSection
+    rollers: list[RollerSection] = Field(default_factory=list)
+    winders: list[WinderSection]
+    spans: list[SpanSection]
+    tags: dict[TagName, TagSection]
+    checks: dict[str, CheckSection] = Field(default_factory=dict)
+
+
+# --- loading --------------------------------------------------------------------------
+
+
+def key_path(loc: tuple[int | str, ...]) -> str:
+    """('rollers', 2, 'wrap') -> 'rollers[2].wrap'."""
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            text = str(part)
+            if not _ID.match(text):
+                text = f'"{text}"'
+            out += f".{text}" if out else text
+    return out
+
+
+def _message(err: dict[str, Any]) -> str:
+    kind = err["type"]
+    value = err.get("input")
+    if kind == "extra_forbidden":
+        return "unknown key (check the spelling; unknown keys are not allowed)"
+    if kind == "missing":
+        return "required key is missing"
+    msg = str(err["msg"])
+    msg = msg.removeprefix("Value error, ").removeprefix("Assertion failed, ")
+    if msg.startswith("expected"):
+        return msg
+    if kind == "string_pattern_mismatch":
+        return f"expected a tag name of letters, digits and . _ - / :, got {value!r}"
+    return f"expected {msg[0].lower() + msg[1:]}, got {value!r}"
+
+
+def parse_config(data: dict[str, Any], file: str | Path = "<config>") -> LineConfig:
+    """Validate a parsed TOML document; raise :class:`ConfigError` on the first problem."""
+    try:
+        return LineConfig.model_validate(data)
+    except ValidationError as exc:
+        problems = []
+        for err in exc.errors():
+            loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
+            problems.append((key_path(loc), _message(err)))
+        raise ConfigError(file, *problems[0], more=problems[1:]) from None
+
+
+def load_config(path: str | Path) -> LineConfig:
+    """Read and validate a line file (see :func:`monitor.line.load_line` for the derived line)."""
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ConfigError(path, "", f"cannot read the file ({exc.strerror})") from None
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise ConfigError(path, "", "expected a UTF-8 text file") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, "", f"expected valid TOML: {exc}") from None
+    return parse_config(data, path)

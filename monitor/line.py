@@ -1,0 +1,419 @@
+"""The derived line: web path, tension zones, signals and capacities, built from a validated config.
+
+The config lists rollers, winders and spans; this module checks that the spans form
+one web path from the unwind to the rewind, splits the path into *tension zones*
+(the spans between two driven elements — winders and driven rollers — share one
+tension when the idlers between them have no drag), and says which tag feeds which
+signal. Cross-reference errors are :class:`~monitor.config.ConfigError` with the key
+path of the offending entry.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from monitor import units as U
+from monitor.config import ConfigError, LineConfig, RollerSection, WinderSection, load_config
+from rules.airfilm import air_viscosity, combined_roughness, effective_cof
+from rules.traction import capstan_ratio_limit, traction_utilisation
+from rules.woundroll import taper_tension
+
+
+@dataclass(frozen=True)
+class Element:
+    """A roller or winder on the web path."""
+
+    id: str
+    key: str  # key path in the config, e.g. "rollers[2]"
+    section: RollerSection | WinderSection
+
+    @property
+    def is_winder(self) -> bool:
+        return isinstance(self.section, WinderSection)
+
+    @property
+    def driven(self) -> bool:
+        return self.is_winder or bool(getattr(self.section, "driven", False))
+
+    @property
+    def diameter(self) -> float | None:
+        return self.section.diameter if isinstance(self.section, RollerSection) else None
+
+
+@dataclass(frozen=True)
+class Zone:
+    """Spans between two driven elements; one tension when idlers are drag-free."""
+
+    id: str
+    upstream: str
+    downstream: str
+    spans: tuple[str, ...]
+    length: float
+    tension_tag: str | None
+    tension_span: str | None
+    setpoint: float | None
+
+
+@dataclass(frozen=True)
+class SignalSpec:
+    """A derived signal that is a tag's SI value times a factor (e.g. rpm -> surface speed)."""
+
+    name: str
+    tag: str
+    factor: float = 1.0
+
+
+@dataclass(frozen=True)
+class TagInfo:
+    """A tag's unit conversion and plausibility settings, in SI."""
+
+    name: str
+    unit: str
+    kind: U.Kind
+    scale: float
+    offset: float
+    low: float
+    high: float
+    sample_period: float
+    stale_after: float  # seconds
+    frozen_after: float | None
+    frozen_tolerance: float  # SI
+    accuracy: tuple[float, float]  # (absolute SI, relative)
+
+
+@dataclass(frozen=True)
+class Line:
+    """Everything the pipeline needs to know about one line, in SI."""
+
+    config: LineConfig
+    file: str
+    config_hash: str
+    path: tuple[str, ...]
+    elements: dict[str, Element]
+    zones: tuple[Zone, ...]
+    tags: dict[str, TagInfo]
+    signals: tuple[SignalSpec, ...]
+
+    @property
+    def name(self) -> str:
+        return self.config.line.name
+
+    def zone_before(self, element_id: str) -> Zone | None:
+        return next((z for z in self.zones if z.downstream == element_id), None)
+
+    def zone_after(self, element_id: str) -> Zone | None:
+        return next((z for z in self.zones if z.upstream == element_id), None)
+
+    def zone(self, zone_id: str) -> Zone:
+        return next(z for z in self.zones if z.id == zone_id)
+
+    @property
+    def driven_rollers(self) -> list[Element]:
+        return [self.elements[e] for e in self.path if self.elements[e].driven and not self.elements[e].is_winder]
+
+    @property
+    def winders(self) -> list[Element]:
+        return [self.elements[e] for e in self.path if self.elements[e].is_winder]
+
+    @property
+    def viscosity(self) -> float:
+        return float(air_viscosity(self.config.line.air_temperature))
+
+    def signal_tag(self, name: str) -> str | None:
+        return next((s.tag for s in self.signals if s.name == name), None)
+
+    def has_signal(self, name: str) -> bool:
+        return any(s.name == name for s in self.signals) or name in self.computed_signals
+
+    @property
+    def computed_signals(self) -> set[str]:
+        """Signals computed from others (diameter from speed and rpm where no diameter sensor)."""
+        out = set()
+        for w in self.winders:
+            sec = w.section
+            assert isinstance(sec, WinderSection)
+            if sec.diameter_tag is None and sec.rpm_tag is not None:
+                out.add(f"diameter/{w.id}")
+        return out
+
+    def zone_setpoints(self, zone: Zone) -> list[float]:
+        """Tension setpoint(s) of a zone, N/m; both ends of the taper for a rewind zone."""
+        if zone.setpoint is None:
+            return []
+        w = self.elements[zone.downstream].section
+        if isinstance(w, WinderSection) and w.kind == "rewind" and w.taper is not None:
+            ends = taper_tension(np.array([w.core_diameter, w.max_diameter]), zone.setpoint, w.taper.k,
+                                 w.core_diameter, w.max_diameter, w.taper.model)
+            return [float(x) for x in ends]
+        return [zone.setpoint]
+
+    def roller_capacity(self, roller_id: str, speed: float) -> dict[str, float]:
+        """Traction capacity of a driven roller at ``speed`` with its zones at setpoint.
+
+        Returns the dry and derated COF, the air-film height, the largest tension ratio it
+        can hold (``exp(mu_eff theta)``) and with the safety factor (``exp(mu_eff theta / SF)``),
+        the ratio the setpoints demand, and the utilisation times SF at the worst setpoint pair.
+        """
+        el = self.elements[roller_id]
+        sec = el.section
+        assert isinstance(sec, RollerSection)
+        zb, za = self.zone_before(roller_id), self.zone_after(roller_id)
+        mat = self.config.material
+        before = self.zone_setpoints(zb) if zb else []
+        after = self.zone_setpoints(za) if za else []
+        lo_hi = [(a, b) for a in before for b in after]
+        sigma = float(combined_roughness(mat.roughness, sec.roughness))
+        lw = self.config.line
+        worst = {"ratio": 1.0, "u": 0.0, "h": 0.0, "mu_eff": sec.cof}
+        for a, b in lo_hi or [(1.0, 1.0)]:
+            mu_eff, h = effective_cof(sec.cof, sec.diameter / 2, min(a, b), speed, speed * (1 + sec.draw), sigma,
+                                      viscosity=self.viscosity, film_factor=sec.air_film_factor * mat.air_film_factor,
+                                      model=lw.air_film_model, convention=lw.air_speed_convention,
+                                      floor=lw.air_traction_floor)
+            u = float(traction_utilisation(a, b, mu_eff, sec.wrap)) * sec.safety_factor
+            if u >= worst["u"]:
+                worst = {"ratio": max(a, b) / min(a, b), "u": u, "h": float(h), "mu_eff": float(mu_eff)}
+        return {
+            "mu": sec.cof,
+            "mu_eff": worst["mu_eff"],
+            "air_film": worst["h"],
+            "roughness": sigma,
+            "max_ratio": float(capstan_ratio_limit(worst["mu_eff"], sec.wrap)),
+            "safe_ratio": float(capstan_ratio_limit(worst["mu_eff"] / sec.safety_factor, sec.wrap)),
+            "demanded_ratio": worst["ratio"],
+            "share_of_safe": worst["u"],
+        }
+
+
+# --- building ------------------------------------------------------------------------
+
+_TAG_KINDS = {
+    "tension": (U.TENSION, U.FORCE),
+    "speed": (U.SPEED, U.ROTATION, U.FREQUENCY),
+    "diameter": (U.LENGTH,),
+    "length": (U.LENGTH,),
+    "rpm": (U.ROTATION, U.FREQUENCY),
+    "flag": (U.DIMENSIONLESS,),
+}
+
+
+def load_line(path: str | Path) -> Line:
+    """Read, validate and derive a line from a TOML file (raises ConfigError)."""
+    path = Path(path)
+    cfg = load_config(path)
+    return build_line(cfg, str(path), hashlib.sha256(path.read_bytes()).hexdigest()[:16])
+
+
+def build_line(cfg: LineConfig, file: str = "<config>", config_hash: str = "") -> Line:
+    """Derive the line from a validated config; raise ConfigError on cross-reference problems."""
+    err = _Errors(file)
+    elements: dict[str, Element] = {}
+    for i, r in enumerate(cfg.rollers):
+        _add(elements, Element(r.id, f"rollers[{i}]", r), err)
+    for i, w in enumerate(cfg.winders):
+        _add(elements, Element(w.id, f"winders[{i}]", w), err)
+    err.raise_if_any()
+    path = _web_path(cfg, elements, err)
+    err.raise_if_any()
+    tags = _tags(cfg, err)
+    _check_tag_refs(cfg, tags, elements, err)
+    err.raise_if_any()
+    zones = _zones(cfg, elements, path)
+    _check_zones(zones, elements, err)
+    err.raise_if_any()
+    signals = _signals(cfg, elements, zones, tags)
+    return Line(cfg, file, config_hash, path, elements, zones, tags, signals)
+
+
+class _Errors:
+    def __init__(self, file: str) -> None:
+        self.file = file
+        self.items: list[tuple[str, str]] = []
+
+    def add(self, key: str, message: str) -> None:
+        self.items.append((key, message))
+
+    def raise_if_any(self) -> None:
+        if self.items:
+            raise ConfigError(self.file, *self.items[0], more=self.items[1:])
+
+
+def _add(elements: dict[str, Element], el: Element, err: _Errors) -> None:
+    if el.id in elements:
+        err.add(f"{el.key}.id", f"expected a name not used by another roller or winder, got {el.id!r} "
+                                f"(also at {elements[el.id].key})")
+    elements[el.id] = el
+
+
+def _web_path(cfg: LineConfig, elements: dict[str, Element], err: _Errors) -> tuple[str, ...]:
+    nxt: dict[str, str] = {}
+    prv: dict[str, str] = {}
+    ids = set()
+    for i, s in enumerate(cfg.spans):
+        key = f"spans[{i}]"
+        if s.id in ids:
+            err.add(f"{key}.id", f"expected a span name used once, got {s.id!r} again")
+        ids.add(s.id)
+        for end, name in (("from", s.from_), ("to", s.to)):
+            if name not in elements:
+                err.add(f"{key}.{end}", f"expected the id of a roller or winder, got {name!r} "
+                                        f"(known: {', '.join(sorted(elements))})")
+        if s.from_ == s.to:
+            err.add(f"{key}.to", f"expected a different element from 'from', got {s.to!r}")
+        if s.from_ in nxt:
+            err.add(f"{key}.from", f"expected each element to feed one span, but {s.from_!r} already feeds "
+                                   f"span {nxt[s.from_]!r}")
+        if s.to in prv:
+            err.add(f"{key}.to", f"expected each element to receive one span, but {s.to!r} already receives "
+                                 f"span {prv[s.to]!r}")
+        nxt.setdefault(s.from_, s.id)
+        prv.setdefault(s.to, s.id)
+    if err.items:
+        return ()
+    unwinds = [w for w in cfg.winders if w.kind == "unwind"]
+    rewinds = [w for w in cfg.winders if w.kind == "rewind"]
+    if len(unwinds) != 1 or len(rewinds) != 1:
+        err.add("winders", f"expected exactly one unwind and one rewind, got {len(unwinds)} unwind(s) and "
+                           f"{len(rewinds)} rewind(s)")
+        return ()
+    span_by_from = {s.from_: s for s in cfg.spans}
+    path = [unwinds[0].id]
+    while path[-1] in span_by_from and len(path) <= len(elements):
+        path.append(span_by_from[path[-1]].to)
+    if path[-1] != rewinds[0].id:
+        err.add("spans", f"expected the spans to lead from unwind {unwinds[0].id!r} to rewind "
+                         f"{rewinds[0].id!r}, but the path stops at {path[-1]!r}: {' -> '.join(path)}")
+    missing = [e for e in elements if e not in path]
+    for e in missing:
+        err.add(f"{elements[e].key}.id", f"expected every roller on the web path, but no span reaches {e!r}")
+    return tuple(path)
+
+
+def _accuracy(raw: object, key: str, scale: float, err: _Errors) -> tuple[float, float]:
+    if raw is None:
+        return (0.0, 0.0)
+    try:
+        if isinstance(raw, str) and raw.strip().endswith("%"):
+            return (0.0, U.to_si(raw, U.DIMENSIONLESS))
+        return (abs(float(raw)) * scale, 0.0)  # type: ignore[arg-type]
+    except (ValueError, TypeError):
+        err.add(key, f"expected an accuracy in the tag's unit (a number) or a percentage such as \"0.5 %\", "
+                     f"got {raw!r}")
+        return (0.0, 0.0)
+
+
+def _tags(cfg: LineConfig, err: _Errors) -> dict[str, TagInfo]:
+    out = {}
+    for name, t in cfg.tags.items():
+        kind = U.unit_kind(t.unit)
+        assert kind is not None  # the schema checked it
+        scale, offset = U.converter(t.unit, kind) if kind is not U.DIMENSIONLESS else (1.0, 0.0)
+        low, high = (t.range if t.range is not None else (-np.inf, np.inf))
+        acc = _accuracy(t.accuracy, f'tags."{name}".accuracy', scale, err)
+        out[name] = TagInfo(
+            name=name, unit=t.unit, kind=kind, scale=scale, offset=offset,
+            low=low * scale + offset, high=high * scale + offset,
+            sample_period=t.sample_period, stale_after=t.stale_after * t.sample_period,
+            frozen_after=t.frozen_after, frozen_tolerance=t.frozen_tolerance * scale, accuracy=acc)
+    return out
+
+
+def _check_tag_refs(cfg: LineConfig, tags: dict[str, TagInfo], elements: dict[str, Element], err: _Errors) -> None:
+    refs: list[tuple[str, str | None, str]] = [("line.speed_tag", cfg.line.speed_tag, "speed")]
+    for i, r in enumerate(cfg.rollers):
+        refs.append((f"rollers[{i}].speed_tag", r.speed_tag, "speed"))
+    for i, w in enumerate(cfg.winders):
+        refs += [(f"winders[{i}].diameter_tag", w.diameter_tag, "diameter"),
+                 (f"winders[{i}].rpm_tag", w.rpm_tag, "rpm"),
+                 (f"winders[{i}].length_tag", w.length_tag, "length"),
+                 (f"winders[{i}].core_change_tag", w.core_change_tag, "flag")]
+    for i, s in enumerate(cfg.spans):
+        refs.append((f"spans[{i}].tension_tag", s.tension_tag, "tension"))
+    for key, tag, role in refs:
+        if tag is None:
+            continue
+        if tag not in tags:
+            err.add(key, f"expected a tag defined under [tags], got {tag!r}")
+            continue
+        kinds = _TAG_KINDS[role]
+        if tags[tag].kind not in kinds:
+            err.add(key, f"expected a {role} tag with a unit of {' or '.join(k.name for k in kinds)}, got "
+                         f"{tag!r} in {tags[tag].unit!r}")
+    wsf = cfg.line.web_speed_from
+    if wsf is not None:
+        el = elements.get(wsf)
+        if el is None or el.is_winder or getattr(el.section, "speed_tag", None) is None:
+            err.add("line.web_speed_from", f"expected the id of a roller with a speed_tag, got {wsf!r}")
+
+
+def _zones(cfg: LineConfig, elements: dict[str, Element], path: tuple[str, ...]) -> tuple[Zone, ...]:
+    span_by_from = {s.from_: s for s in cfg.spans}
+    zones = []
+    start = 0
+    for i in range(1, len(path)):
+        if elements[path[i]].driven:
+            spans = [span_by_from[path[j]] for j in range(start, i)]
+            tagged = next((s for s in spans if s.tension_tag is not None), None)
+            zones.append(Zone(
+                id=f"{path[start]}-{path[i]}", upstream=path[start], downstream=path[i],
+                spans=tuple(s.id for s in spans), length=sum(s.length for s in spans),
+                tension_tag=tagged.tension_tag if tagged else None,
+                tension_span=tagged.id if tagged else None,
+                setpoint=tagged.setpoint if tagged else None))
+            start = i
+    return tuple(zones)
+
+
+def _check_zones(zones: tuple[Zone, ...], elements: dict[str, Element], err: _Errors) -> None:
+    for z in zones:
+        if z.tension_tag is not None:
+            continue
+        for eid, side in ((z.downstream, "upstream"), (z.upstream, "downstream")):
+            el = elements[eid]
+            if el.driven and not el.is_winder:
+                err.add(f"{el.key}.driven", f"expected a tension measurement on the {side} side of driven roller "
+                                            f"{eid!r}: add tension_tag to one of the spans {', '.join(z.spans)}")
+
+
+def _signals(cfg: LineConfig, elements: dict[str, Element], zones: tuple[Zone, ...],
+             tags: dict[str, TagInfo]) -> tuple[SignalSpec, ...]:
+    width = cfg.material.width
+    out: list[SignalSpec] = []
+
+    def speed_spec(name: str, tag: str, diameter: float | None) -> SignalSpec:
+        if tags[tag].kind is U.SPEED:
+            return SignalSpec(name, tag)
+        return SignalSpec(name, tag, np.pi * (diameter or 0.0))
+
+    out.append(SignalSpec("speed/line", cfg.line.speed_tag))
+    for e in elements.values():
+        sec = e.section
+        if isinstance(sec, RollerSection) and sec.speed_tag is not None:
+            out.append(speed_spec(f"speed/{e.id}", sec.speed_tag, sec.diameter))
+    wsf = cfg.line.web_speed_from
+    if wsf is not None:
+        sec = elements[wsf].section
+        assert isinstance(sec, RollerSection) and sec.speed_tag is not None
+        out.append(speed_spec("speed/web", sec.speed_tag, sec.diameter))
+    else:
+        out.append(SignalSpec("speed/web", cfg.line.speed_tag))
+    for z in zones:
+        if z.tension_tag is not None:
+            factor = 1.0 / width if tags[z.tension_tag].kind is U.FORCE else 1.0
+            out.append(SignalSpec(f"tension/{z.id}", z.tension_tag, factor))
+    for e in elements.values():
+        sec = e.section
+        if isinstance(sec, WinderSection):
+            if sec.diameter_tag:
+                out.append(SignalSpec(f"diameter/{e.id}", sec.diameter_tag))
+            if sec.rpm_tag:
+                out.append(SignalSpec(f"rotation/{e.id}", sec.rpm_tag))
+            if sec.length_tag:
+                out.append(SignalSpec(f"length/{e.id}", sec.length_tag))
+            if sec.core_change_tag:
+                out.append(SignalSpec(f"core_change/{e.id}", sec.core_change_tag))
+    return tuple(out)

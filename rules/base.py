@@ -1,0 +1,175 @@
+"""The one shape every check has: what it reads, what it emits, when it is valid.
+
+A check is a small object with ``kind`` (what it computes), ``object_id`` (the
+roller, span, winder or tag it is about), ``inputs`` (the signal names it reads),
+``rests_on`` (the assumption a user must accept to trust it) and
+``update(block) -> CheckResult``. The physics inside is a pure, vectorised
+function in the same module; the check object only keeps the state that has to
+survive from one block of frames to the next (windows, baselines, roll starts).
+
+Validity is data, not an exception: every frame of a result carries a
+:class:`Reason`; the value is NaN wherever the reason is not ``OK``. A block of a
+million frames never stops at one NaN, a zero speed or a negative tension.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from enum import IntEnum
+from typing import ClassVar, Protocol, runtime_checkable
+
+import numpy as np
+
+FloatArray = np.ndarray
+BoolArray = np.ndarray
+
+
+class Reason(IntEnum):
+    """Why a frame of a check result is (not) valid."""
+
+    OK = 0
+    LINE_STATE = 1  # gated by the line state (stopped, threading, accelerating ...)
+    INPUT_BAD = 2  # an input is NaN/inf, out of range, bad or uncertain quality, or stale
+    OUT_OF_DOMAIN = 3  # inputs fine, but the formula does not apply (tension too low, speed too low ...)
+    WARMING_UP = 4  # not enough history yet (window filling, calibration running)
+    ROLL_CHANGE = 5  # a roll change is settling
+
+
+class LineState(IntEnum):
+    """Line state derived from the line speed and its rate of change."""
+
+    STOPPED = 0
+    THREADING = 1
+    ACCELERATING = 2
+    RUNNING = 3
+    DECELERATING = 4
+    UNKNOWN = 5  # the line speed signal is not usable
+
+
+MOVING_STATES = (LineState.THREADING, LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
+PRODUCTION_STATES = (LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
+
+
+@dataclass(frozen=True)
+class Signal:
+    """A named signal over the frames of a block, in SI, with a usable-or-not mask."""
+
+    value: FloatArray
+    ok: BoolArray
+
+    @staticmethod
+    def missing(n: int) -> Signal:
+        return Signal(np.full(n, np.nan), np.zeros(n, dtype=bool))
+
+
+@dataclass(frozen=True)
+class TagFrames:
+    """Raw per-tag frames for plausibility: held value (SI), quality code, age in seconds.
+
+    ``quality``: 0 good, 1 uncertain, 2 bad, 3 no sample yet.
+    """
+
+    names: tuple[str, ...]
+    value: FloatArray  # (n, k)
+    quality: np.ndarray  # (n, k) int8
+    age: FloatArray  # (n, k)
+
+    def column(self, name: str) -> int:
+        return self.names.index(name)
+
+
+QUALITY_GOOD, QUALITY_UNCERTAIN, QUALITY_BAD, QUALITY_NONE = 0, 1, 2, 3
+
+
+@dataclass
+class Block:
+    """A block of time-aligned frames: what every check reads.
+
+    ``t`` epoch seconds (float64), ``signals`` derived SI signals by name,
+    ``line_state`` a :class:`LineState` code per frame, ``roll_start`` per winder a
+    mask that is true at the first frame of a new roll, ``tags`` raw tag frames.
+    """
+
+    t: FloatArray
+    signals: dict[str, Signal]
+    line_state: np.ndarray
+    tags: TagFrames
+    roll_start: dict[str, BoolArray] = field(default_factory=dict)
+    roll_settling: dict[str, BoolArray] = field(default_factory=dict)
+
+    @property
+    def n(self) -> int:
+        return int(self.t.shape[0])
+
+    def signal(self, name: str) -> Signal:
+        sig = self.signals.get(name)
+        return sig if sig is not None else Signal.missing(self.n)
+
+    def in_states(self, states: Iterable[LineState]) -> BoolArray:
+        return np.isin(self.line_state, np.asarray([int(s) for s in states], dtype=np.int8))
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """Per-frame output of a check: value, reason code, and named extras (tolerances, estimates)."""
+
+    value: FloatArray
+    reason: np.ndarray
+    extras: Mapping[str, FloatArray] = field(default_factory=dict)
+
+    @property
+    def valid(self) -> BoolArray:
+        return self.reason == Reason.OK
+
+
+@dataclass(frozen=True)
+class AlarmDefaults:
+    """A check kind's default alarm settings and rationalization (config may override each)."""
+
+    direction: str  # "high": alarm when value >= limit; "low": value <= limit; "abs": |value| >= limit
+    unit: str  # how the value reads to a person: "share of safe capacity", "%", "x band", "flag"
+    warning: float | None
+    alarm: float
+    deadband: float
+    on_delay: float
+    off_delay: float
+    priority: str
+    warning_priority: str
+    cause: str
+    consequence: str
+    action: str
+    response_time: float = 60.0
+
+
+@runtime_checkable
+class Check(Protocol):
+    """What the pipeline needs from every check."""
+
+    kind: ClassVar[str]
+    object_id: str
+    inputs: tuple[str, ...]
+    rests_on: ClassVar[str]
+
+    def update(self, block: Block) -> CheckResult: ...
+
+
+def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:
+    """First failing condition wins: ``pairs`` are (mask of frames that fail, reason) in priority order."""
+    reason = np.zeros(n, dtype=np.int8)
+    unset = np.ones(n, dtype=bool)
+    for failing, why in pairs:
+        hit = failing & unset
+        reason[hit] = int(why)
+        unset &= ~hit
+    return reason
+
+
+def finalise(value: FloatArray, reason: np.ndarray, **extras: FloatArray) -> CheckResult:
+    """Mark non-finite values as OUT_OF_DOMAIN, blank invalid frames, wrap as a result."""
+    value = np.asarray(value, dtype=float)
+    bad = (reason == Reason.OK) & ~np.isfinite(value)
+    reason = reason.copy()
+    reason[bad] = int(Reason.OUT_OF_DOMAIN)
+    value = np.where(reason == Reason.OK, value, np.nan)
+    return CheckResult(value=value, reason=reason, extras=extras)

@@ -1,0 +1,158 @@
+"""Sensor plausibility per tag: out of range, bad quality, stale, frozen.
+
+These checks read the raw tag frames (held value in SI, quality code, age of the
+last sample) rather than derived signals, and are what makes the other checks
+honest: a signal that fails one of these is not ``ok``, and every check that reads
+it marks its frames INPUT_BAD instead of computing on it.
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+
+from rules.base import (
+    MOVING_STATES,
+    QUALITY_GOOD,
+    QUALITY_NONE,
+    AlarmDefaults,
+    Block,
+    CheckResult,
+    Reason,
+    combine_reasons,
+    finalise,
+)
+from rules.windows import forward_fill_index
+
+
+def _flag(unit: str, priority: str, on: float, off: float, cause: str, consequence: str, action: str
+          ) -> AlarmDefaults:
+    return AlarmDefaults(direction="high", unit=unit, warning=None, alarm=0.5, deadband=0.0, on_delay=on,
+                         off_delay=off, priority=priority, warning_priority=priority, cause=cause,
+                         consequence=consequence, action=action)
+
+
+RANGE_DEFAULTS = _flag("flag", "low", 2.0, 5.0,
+                       "Signal outside its plausible range: sensor fault, wiring, scaling, or a real extreme.",
+                       "Checks that read this signal are invalid while it lasts.",
+                       "Check the transmitter, its scaling and wiring.")
+QUALITY_DEFAULTS = _flag("flag", "low", 2.0, 5.0,
+                         "Source reports bad or uncertain quality for this tag.",
+                         "Checks that read this signal are invalid while it lasts.",
+                         "Check the device and the connection named by the source's status.")
+STALE_DEFAULTS = _flag("flag", "medium", 0.0, 2.0,
+                       "No new sample within the stale limit: connection lost, device stopped, or the "
+                       "server stopped updating the tag.",
+                       "Checks that read this signal are invalid; faults on that object go unseen.",
+                       "Check the connector state and the source device.")
+FROZEN_DEFAULTS = _flag("flag", "low", 0.0, 5.0,
+                        "Signal has not changed while the line runs: sensor stuck, held value in the PLC.",
+                        "Checks that read this signal compute on a stale truth.",
+                        "Check the sensor; compare with a manual reading.")
+
+
+def out_of_range(value: np.ndarray, low: float, high: float) -> np.ndarray:
+    """True where value is outside [low, high] or not finite."""
+    with np.errstate(invalid="ignore"):
+        return ~((value >= low) & (value <= high))
+
+
+class _TagCheck:
+    rests_on: ClassVar[str] = "the configured range, sample period and stale limit describe the sensor"
+
+    def __init__(self, object_id: str) -> None:
+        self.object_id = object_id
+        self.inputs: tuple[str, ...] = ()
+        self._col: int | None = None
+
+    def _cols(self, block: Block) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        if self._col is None:
+            self._col = block.tags.column(self.object_id)
+        c = self._col
+        return block.tags.value[:, c], block.tags.quality[:, c], block.tags.age[:, c]
+
+
+class TagRangeCheck(_TagCheck):
+    """Held value outside the tag's configured range (in SI)."""
+
+    kind: ClassVar[str] = "tag_range"
+    defaults: ClassVar[AlarmDefaults] = RANGE_DEFAULTS
+
+    def __init__(self, object_id: str, *, low: float, high: float) -> None:
+        super().__init__(object_id)
+        self.low, self.high = low, high
+
+    def update(self, block: Block) -> CheckResult:
+        v, q, _ = self._cols(block)
+        flag = out_of_range(v, self.low, self.high) & np.isfinite(v)
+        reason = combine_reasons((q == QUALITY_NONE, Reason.INPUT_BAD), n=block.n)
+        return finalise(flag.astype(float), reason)
+
+
+class TagQualityCheck(_TagCheck):
+    """Source quality not good (uncertain or bad), or a non-finite value."""
+
+    kind: ClassVar[str] = "tag_quality"
+    defaults: ClassVar[AlarmDefaults] = QUALITY_DEFAULTS
+
+    def update(self, block: Block) -> CheckResult:
+        v, q, _ = self._cols(block)
+        flag = (q != QUALITY_GOOD) | ~np.isfinite(v)
+        reason = combine_reasons((q == QUALITY_NONE, Reason.INPUT_BAD), n=block.n)
+        return finalise(flag.astype(float), reason)
+
+
+class TagStaleCheck(_TagCheck):
+    """No new sample for more than ``stale_after`` seconds (never-seen tags are stale)."""
+
+    kind: ClassVar[str] = "tag_stale"
+    defaults: ClassVar[AlarmDefaults] = STALE_DEFAULTS
+
+    def __init__(self, object_id: str, *, stale_after: float) -> None:
+        super().__init__(object_id)
+        self.stale_after = stale_after
+
+    def update(self, block: Block) -> CheckResult:
+        _, _, age = self._cols(block)
+        flag = ~(age <= self.stale_after)
+        return finalise(flag.astype(float), np.zeros(block.n, dtype=np.int8), age=age)
+
+
+class TagFrozenCheck(_TagCheck):
+    """No change larger than ``tolerance`` for ``frozen_after`` seconds of continuous moving-line time.
+
+    A change is counted between consecutive frames, so a slow drift below the tolerance
+    per frame counts as frozen; frames where the line does not move reset the timer.
+    """
+
+    kind: ClassVar[str] = "tag_frozen"
+    defaults: ClassVar[AlarmDefaults] = FROZEN_DEFAULTS
+
+    def __init__(self, object_id: str, *, frozen_after: float, tolerance: float) -> None:
+        super().__init__(object_id)
+        self.frozen_after, self.tol = frozen_after, tolerance
+        self._last_v = np.nan
+        self._last_change_t = np.nan
+
+    def update(self, block: Block) -> CheckResult:
+        v, q, _ = self._cols(block)
+        prev = np.concatenate([[self._last_v], v[:-1]])
+        with np.errstate(invalid="ignore"):
+            changed = np.abs(v - prev) > self.tol
+        moving = block.in_states(MOVING_STATES)
+        changed |= ~moving | ~np.isfinite(prev) | ~np.isfinite(v) | (q == QUALITY_NONE)
+        idx = forward_fill_index(changed)
+        t_change = np.where(idx >= 0, block.t[np.maximum(idx, 0)], self._last_change_t)
+        t_change = np.where(np.isnan(t_change), block.t, t_change)
+        still = block.t - t_change
+        flag = still >= self.frozen_after
+        if block.n:
+            self._last_v = float(v[-1])
+            self._last_change_t = float(t_change[-1])
+        reason = combine_reasons(
+            (~moving, Reason.LINE_STATE),
+            (q == QUALITY_NONE, Reason.INPUT_BAD),
+            n=block.n,
+        )
+        return finalise(flag.astype(float), reason, unchanged_for=still)

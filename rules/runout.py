@@ -1,0 +1,174 @@
+"""Once-per-revolution tension oscillation: out-of-round rolls and eccentric rollers.
+
+A roll that is not round, or a roller mounted off-centre, pulls the web a little
+more and a little less once per turn, so span tension oscillates at the rotation
+frequency ``f1 = V / (pi D)`` (Branca, Pagilla & Reid, ASME J. Dyn. Sys. Meas.
+Control, 2013). On an unwind f1 rises as the roll gets smaller, so a fixed-frequency
+filter misses it; this module measures the amplitude on the roll's own angle.
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+
+
+def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:
+    """Revolutions per second of a roll or roller: ``f1 = V / (pi D)``; NaN where D <= 0."""
+    v, d = np.asarray(speed, dtype=float), np.asarray(diameter, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f = np.abs(v) / (np.pi * d)
+    return np.where(d > 0, f, np.nan)
+
+
+def goertzel(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
+    """Single-bin DFT of the last axis of ``x`` at ``freq`` Hz (Goertzel recurrence).
+
+    ``s[n] = x[n] + 2 cos(w) s[n-1] - s[n-2]``, ``X = e^{jw} s[N-1] - s[N-2]``,
+    w = 2 pi freq / fs; X equals ``sum_n x[n] e^{-j w n}`` up to a phase factor, so
+    |X| matches the FFT bin when freq is a bin frequency (whole cycles in the window).
+
+    Source: G. Goertzel, "An algorithm for the evaluation of finite trigonometric
+    series", Amer. Math. Monthly 65(1):34-35, 1958.
+    """
+    x = np.asarray(x, dtype=float)
+    w = 2.0 * np.pi * freq / fs
+    coeff = 2.0 * np.cos(w)
+    s1 = np.zeros(x.shape[:-1])
+    s2 = np.zeros(x.shape[:-1])
+    for k in range(x.shape[-1]):
+        s0 = x[..., k] + coeff * s1 - s2
+        s2, s1 = s1, s0
+    return np.exp(1j * w) * s1 - s2
+
+
+def sinusoid_amplitude(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
+    """Amplitude of the component of ``x`` at ``freq``: ``2 |X| / N`` (mean removed first).
+
+    >>> n = np.arange(200); round(float(sinusoid_amplitude(3 + 0.5 * np.sin(2 * np.pi * 5 * n / 100), 5, 100)), 6)
+    0.5
+    """
+    x = np.asarray(x, dtype=float)
+    x = x - x.mean(axis=-1, keepdims=True)
+    return 2.0 * np.abs(goertzel(x, freq, fs)) / x.shape[-1]
+
+
+def order_amplitude(x: ArrayLike, phase: ArrayLike) -> float:
+    """Amplitude of the once-per-revolution component of ``x`` sampled at roll angles ``phase`` (rad).
+
+    Computed order tracking without resampling: ``A = 2 |sum (x - mean) e^{-j phase}| / N``
+    over a window of whole revolutions. Exact for a uniform angle grid; for slowly varying
+    speed the angle grid is nearly uniform and the error is second order.
+    """
+    x = np.asarray(x, dtype=float)
+    p = np.asarray(phase, dtype=float)
+    xm = x - x.mean()
+    return float(2.0 * np.abs(np.sum(xm * np.exp(-1j * p))) / x.size)
+
+
+DEFAULTS = AlarmDefaults(
+    direction="high",
+    unit="% of mean tension",
+    warning=0.05,
+    alarm=0.10,
+    deadband=0.01,
+    on_delay=5.0,
+    off_delay=10.0,
+    priority="medium",
+    warning_priority="low",
+    cause="Span tension oscillates once per revolution of this roll or roller: out-of-round roll "
+    "(flat spot, damaged core, poor storage), eccentric core chucking, or a bent or eccentric roller.",
+    consequence="Tension spikes each turn: web breaks at speed, baggy lanes, register errors, a bad "
+    "roll structure downstream.",
+    action="Reduce speed through the resonance; check the chucking and the roll for flats; "
+    "check roller runout at the next stop.",
+)
+
+
+class RunoutCheck:
+    """Once-per-revolution tension amplitude relative to mean tension, over whole revolutions.
+
+    Keeps the roll angle (integral of the rotation frequency) and a tail of frames as long
+    as the window; per frame the amplitude over the last ``revolutions`` whole turns is
+    computed from cumulative sums, so a block costs O(frames).
+    """
+
+    kind: ClassVar[str] = "runout"
+    rests_on: ClassVar[str] = ("tension sampled at least 4 times per revolution; speed varies slowly over "
+                               "the window; the rotation frequency comes from rpm (or V / pi D)")
+    defaults: ClassVar[AlarmDefaults] = DEFAULTS
+
+    def __init__(self, object_id: str, *, zone: str, rotation: str | None, diameter: str | None,
+                 frame_rate: float, revolutions: int = 4, min_tension: float = 1.0,
+                 max_frames: int = 4096) -> None:
+        self.object_id = object_id
+        self.tension = f"tension/{zone}"
+        self.rotation = rotation
+        self.diameter = diameter
+        self.inputs = tuple(x for x in (self.tension, rotation, diameter, "speed/web") if x)
+        self.fs = frame_rate
+        self.revs = revolutions
+        self.min_tension = min_tension
+        self.max_frames = max_frames
+        self._phase0 = 0.0
+        self._tail_x = np.zeros(0)
+        self._tail_p = np.zeros(0)
+        self._tail_ok = np.zeros(0, dtype=bool)
+
+    def _rev_per_s(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
+        if self.rotation is not None:
+            s = block.signal(self.rotation)
+            return np.abs(s.value), s.ok
+        d, v = block.signal(self.diameter or ""), block.signal("speed/web")
+        return rotation_frequency(v.value, d.value), d.ok & v.ok
+
+    def update(self, block: Block) -> CheckResult:
+        n = block.n
+        ten = block.signal(self.tension)
+        f1, okf = self._rev_per_s(block)
+        dt = 1.0 / self.fs
+        step = np.where(okf & np.isfinite(f1), 2.0 * np.pi * f1 * dt, 0.0)
+        phase = self._phase0 + np.cumsum(step)
+        self._phase0 = float(phase[-1]) if n else self._phase0
+        ok = ten.ok & okf & np.isfinite(ten.value)
+        xs = np.concatenate([self._tail_x, np.where(ok, ten.value, 0.0)])
+        ps = np.concatenate([self._tail_p, phase])
+        oks = np.concatenate([self._tail_ok, ok])
+        m = self._tail_x.shape[0]
+        # Window start per frame: the first frame whose phase is within revs * 2 pi of this one.
+        end = np.arange(m + 1, m + n + 1)  # exclusive end index into the cumulative sums
+        start = np.searchsorted(ps, ps[m:] - self.revs * 2.0 * np.pi, side="right")
+        count = end - start
+        e = np.exp(-1j * (ps - ps[0]))
+        cx = np.concatenate([[0.0], np.cumsum(xs)])
+        ce = np.concatenate([[0.0], np.cumsum(e)])
+        cxe = np.concatenate([[0.0], np.cumsum(xs * e)])
+        cbad = np.concatenate([[0], np.cumsum(~oks)])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = (cx[end] - cx[start]) / count
+            spec = (cxe[end] - cxe[start]) - mean * (ce[end] - ce[start])
+            amp = 2.0 * np.abs(spec) / count
+            rel = amp / mean
+        full = (start > 0) | (ps[0] <= ps[m:] - self.revs * 2.0 * np.pi)
+        window_ok = (cbad[end] - cbad[start]) == 0
+        undersampled = f1 > self.fs / 4.0
+        keep = min(self.max_frames, xs.shape[0])
+        self._tail_x, self._tail_p, self._tail_ok = xs[-keep:], ps[-keep:], oks[-keep:]
+        # Keep the stored phase small so exp() stays accurate after days of running.
+        if self._tail_p.size:
+            shift = 2.0 * np.pi * np.floor(self._tail_p[0] / (2.0 * np.pi))
+            self._tail_p = self._tail_p - shift
+            self._phase0 -= shift
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING, LineState.ACCELERATING, LineState.DECELERATING)),
+             Reason.LINE_STATE),
+            (~(ten.ok & okf), Reason.INPUT_BAD),
+            (undersampled | (mean < self.min_tension), Reason.OUT_OF_DOMAIN),
+            (~(full & window_ok) | (count > self.max_frames - 1), Reason.WARMING_UP),
+            n=n,
+        )
+        return finalise(rel, reason, amplitude=amp, frequency=f1)

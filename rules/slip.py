@@ -1,0 +1,130 @@
+"""Speed slip of driven rollers and lag of idlers: surface speed against web speed.
+
+A roller that grips the web moves its surface at web speed (driven rollers at web
+speed times their commanded draw). A driven roller that slips runs away from the
+web; an idler that lags has lost the traction it needs against bearing drag and
+inertia (an air film, a loss of wrap, a seized bearing).
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+
+
+def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:
+    """Surface speed of a roller or roll, m/s: ``V = pi * D * n`` (n in rev/s).
+
+    Assumes the web rides on the outer surface with no creep (thin web, no strain
+    gradient through the thickness).
+
+    >>> round(float(surface_speed(1.0, 0.1)), 4)
+    0.3142
+    """
+    return np.pi * np.asarray(diameter, dtype=float) * np.asarray(rev_per_s, dtype=float)
+
+
+def slip_ratio(v_roller: ArrayLike, v_web: ArrayLike, draw: ArrayLike = 0.0, min_speed: float = 0.0) -> np.ndarray:
+    """Relative speed slip: ``s = V_roller / (V_web * (1 + draw)) - 1``.
+
+    ``draw`` is the roller's commanded speed offset relative to the web-speed reference
+    (0.002 for +0.2 %). Positive s: the roller surface runs ahead of the web. NaN where
+    |V_web| <= min_speed or an input is not finite.
+
+    >>> round(float(slip_ratio(1.02, 1.0)), 4)
+    0.02
+    """
+    vr = np.asarray(v_roller, dtype=float)
+    vw = np.asarray(v_web, dtype=float)
+    expected = vw * (1.0 + np.asarray(draw, dtype=float))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        s = vr / expected - 1.0
+    ok = (np.abs(vw) > min_speed) & np.isfinite(s)
+    return np.where(ok, s, np.nan)
+
+
+SLIP_DEFAULTS = AlarmDefaults(
+    direction="abs",
+    unit="%",
+    warning=0.005,
+    alarm=0.02,
+    deadband=0.001,
+    on_delay=1.0,
+    off_delay=5.0,
+    priority="high",
+    warning_priority="medium",
+    cause="Driven roller surface speed departs from the web speed: traction lost (air film, low COF, "
+    "too high a tension ratio), or a speed feedback fault.",
+    consequence="Scratched web, tension upset, wrinkles; the draw no longer sets the span tension.",
+    action="Reduce line speed or the tension ratio across the roller; check covering and encoder.",
+)
+
+LAG_DEFAULTS = AlarmDefaults(
+    direction="high",
+    unit="%",
+    warning=0.01,
+    alarm=0.03,
+    deadband=0.002,
+    on_delay=2.0,
+    off_delay=5.0,
+    priority="medium",
+    warning_priority="low",
+    cause="Idler turns slower than the web: bearing drag, air film at speed, or lost wrap.",
+    consequence="Web scratches on the idler; added drag raises downstream tension.",
+    action="Check the idler bearing and that it turns freely; check the wrap; consider a grooved idler.",
+)
+
+
+class SlipCheck:
+    """Speed slip of a driven roller against the web speed (valid while the line runs)."""
+
+    kind: ClassVar[str] = "slip"
+    rests_on: ClassVar[str] = ("roller encoder and web-speed reference agree at no slip after the "
+                               "commanded draw; diameter of the roller is its configured value")
+    defaults: ClassVar[AlarmDefaults] = SLIP_DEFAULTS
+
+    def __init__(self, object_id: str, *, draw: float, min_speed: float) -> None:
+        self.object_id = object_id
+        self.speed = f"speed/{object_id}"
+        self.inputs = (self.speed, "speed/web")
+        self.draw, self.min_speed = draw, min_speed
+
+    def update(self, block: Block) -> CheckResult:
+        vr, vw = block.signal(self.speed), block.signal("speed/web")
+        s = slip_ratio(vr.value, vw.value, self.draw, self.min_speed)
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
+            (~(vr.ok & vw.ok), Reason.INPUT_BAD),
+            (np.abs(vw.value) <= self.min_speed, Reason.OUT_OF_DOMAIN),
+            n=block.n,
+        )
+        return finalise(s, reason)
+
+
+class IdlerLagCheck:
+    """Lag of an idler with an encoder: ``(V_web - V_idler) / V_web`` (positive = lagging)."""
+
+    kind: ClassVar[str] = "idler_lag"
+    rests_on: ClassVar[str] = "idler diameter is its configured value; web speed reference is true web speed"
+    defaults: ClassVar[AlarmDefaults] = LAG_DEFAULTS
+
+    def __init__(self, object_id: str, *, min_speed: float) -> None:
+        self.object_id = object_id
+        self.speed = f"speed/{object_id}"
+        self.inputs = (self.speed, "speed/web")
+        self.min_speed = min_speed
+
+    def update(self, block: Block) -> CheckResult:
+        vr, vw = block.signal(self.speed), block.signal("speed/web")
+        lag = -slip_ratio(vr.value, vw.value, 0.0, self.min_speed)
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
+            (~(vr.ok & vw.ok), Reason.INPUT_BAD),
+            (np.abs(vw.value) <= self.min_speed, Reason.OUT_OF_DOMAIN),
+            n=block.n,
+        )
+        return finalise(lag, reason)
