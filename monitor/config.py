@@ -314,7 +314,7 @@ def key_path(loc: tuple[int | str, ...]) -> str:
     return out
 
 
-def _message(err: dict[str, Any]) -> str:
+def describe_error(err: dict[str, Any]) -> str:
     kind = err["type"]
     value = err.get("input")
     if kind == "extra_forbidden":
@@ -338,7 +338,7 @@ def parse_config(data: dict[str, Any], file: str | Path = "<config>") -> LineCon
         problems = []
         for err in exc.errors():
             loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
-            problems.append((key_path(loc), _message(err)))
+            problems.append((key_path(loc), describe_error(err)))
         raise ConfigError(file, *problems[0], more=problems[1:]) from None
 
 

@@ -33,7 +33,7 @@ def air_viscosity(temperature: ArrayLike) -> np.ndarray:
     1.813
     """
     t = np.asarray(temperature, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         eta = _SUTHERLAND_MU0 * (t / _SUTHERLAND_T0) ** 1.5 * (_SUTHERLAND_T0 + _SUTHERLAND_S) / (t + _SUTHERLAND_S)
     return np.where(t > 0, eta, np.nan)
 
@@ -48,9 +48,11 @@ def entrainment_speed(web_speed: ArrayLike, roller_speed: ArrayLike, convention:
     vw = np.abs(np.asarray(web_speed, dtype=float))
     vr = np.abs(np.asarray(roller_speed, dtype=float))
     if convention == "mean":
-        return 0.5 * (vw + vr)
+        with np.errstate(over="ignore"):
+            return 0.5 * vw + 0.5 * vr
     if convention == "sum":
-        return vw + vr
+        with np.errstate(over="ignore"):
+            return vw + vr
     raise ValueError(f"expected convention 'mean' or 'sum', got {convention!r}")
 
 
@@ -91,7 +93,8 @@ def combined_roughness(rq_web: ArrayLike, rq_roller: ArrayLike) -> np.ndarray:
 
     Source: Ducotey & Good (1999), ASME J. Tribology 121:618-624, compare h0 with this.
     """
-    return np.hypot(np.asarray(rq_web, dtype=float), np.asarray(rq_roller, dtype=float))
+    with np.errstate(over="ignore"):
+        return np.hypot(np.asarray(rq_web, dtype=float), np.asarray(rq_roller, dtype=float))
 
 
 def traction_derating(h: ArrayLike, sigma: ArrayLike, model: str = "linear", floor: float = 0.0) -> np.ndarray:
@@ -115,10 +118,10 @@ def traction_derating(h: ArrayLike, sigma: ArrayLike, model: str = "linear", flo
         return np.where(np.isnan(h) | np.isnan(s), np.nan, 1.0)
     if model != "linear":
         raise ValueError(f"expected air-film model 'linear' or 'none', got {model!r}")
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         x = np.clip((h - s) / (2.0 * s), 0.0, 1.0)
-    x = np.where((s <= 0) & (h > 0), 1.0, np.where((s <= 0) & (h <= 0), 0.0, x))
-    out = 1.0 - (1.0 - floor) * x
+        x = np.where((s <= 0) & (h > 0), 1.0, np.where((s <= 0) & (h <= 0), 0.0, x))
+        out = 1.0 - (1.0 - floor) * x
     return np.where(np.isnan(h) | np.isnan(s), np.nan, out)
 
 
@@ -133,5 +136,6 @@ def effective_cof(mu: ArrayLike, radius: ArrayLike, tension_per_width: ArrayLike
     mu_eff = mu * traction_derating(h, sigma).
     """
     u = entrainment_speed(web_speed, roller_speed, convention)
-    h = np.asarray(film_factor, dtype=float) * knox_sweeney_h0(radius, tension_per_width, u, viscosity)
-    return np.asarray(mu, dtype=float) * traction_derating(h, sigma, model, floor), h
+    with np.errstate(all="ignore"):
+        h = np.asarray(film_factor, dtype=float) * knox_sweeney_h0(radius, tension_per_width, u, viscosity)
+        return np.asarray(mu, dtype=float) * traction_derating(h, sigma, model, floor), h

@@ -48,7 +48,8 @@ def capstan_ratio_limit(mu: ArrayLike, wrap: ArrayLike) -> np.ndarray:
     >>> round(float(capstan_ratio_limit(0.3, np.pi)), 3)
     2.566
     """
-    return np.exp(np.asarray(mu, dtype=float) * np.asarray(wrap, dtype=float))
+    with np.errstate(all="ignore"):
+        return np.exp(np.asarray(mu, dtype=float) * np.asarray(wrap, dtype=float))
 
 
 def traction_utilisation(t_up: ArrayLike, t_down: ArrayLike, mu_eff: ArrayLike, wrap: ArrayLike) -> np.ndarray:
@@ -65,8 +66,8 @@ def traction_utilisation(t_up: ArrayLike, t_down: ArrayLike, mu_eff: ArrayLike, 
     """
     a = np.asarray(t_up, dtype=float)
     b = np.asarray(t_down, dtype=float)
-    cap = np.asarray(mu_eff, dtype=float) * np.asarray(wrap, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+    with np.errstate(all="ignore"):
+        cap = np.asarray(mu_eff, dtype=float) * np.asarray(wrap, dtype=float)
         demand = np.abs(np.log(b / a))
         u = demand / cap
     u = np.where((cap <= 0) & (demand > 0), UTILISATION_CAP, u)

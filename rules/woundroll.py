@@ -42,7 +42,7 @@ def wound_length(diameter: ArrayLike, core_diameter: ArrayLike, caliper: ArrayLi
     30742
     """
     d, dc, t = (np.asarray(x, dtype=float) for x in (diameter, core_diameter, caliper))
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         out = np.pi * (d**2 - dc**2) / (4.0 * t)
     return np.where(t > 0, out, np.nan)
 
@@ -52,9 +52,9 @@ def wound_diameter(length: ArrayLike, core_diameter: ArrayLike, caliper: ArrayLi
 
     Inverse of :func:`wound_length`. NaN where the argument of the root is negative.
     """
-    arg = np.asarray(core_diameter, dtype=float) ** 2 + 4.0 * np.asarray(length, dtype=float) * \
-        np.asarray(caliper, dtype=float) / np.pi
-    with np.errstate(invalid="ignore"):
+    with np.errstate(all="ignore"):
+        arg = np.asarray(core_diameter, dtype=float) ** 2 + 4.0 * np.asarray(length, dtype=float) * \
+            np.asarray(caliper, dtype=float) / np.pi
         return np.where(arg >= 0, np.sqrt(np.abs(arg)), np.nan)
 
 
@@ -69,12 +69,13 @@ def unwound_diameter(length: ArrayLike, start_diameter: ArrayLike, caliper: Arra
 def diameter_from_speed(web_speed: ArrayLike, rev_per_s: ArrayLike) -> np.ndarray:
     """Roll diameter from surface speed and rotation: ``D = V / (pi n)``, n in rev/s.
 
-    NaN where n is zero or not finite (a stopped roll tells nothing about its size).
+    NaN where n is zero or not finite (a stopped roll tells nothing about its size), or
+    where the result is not finite.
     """
     v, n = np.asarray(web_speed, dtype=float), np.asarray(rev_per_s, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         d = np.abs(v) / (np.pi * np.abs(n))
-    return np.where(np.isfinite(d) & (n != 0), d, np.nan)
+    return np.where(np.isfinite(d) & np.isfinite(n) & (n != 0), d, np.nan)
 
 
 def effective_caliper(diameter: ArrayLike, start_diameter: ArrayLike, length: ArrayLike) -> np.ndarray:
@@ -84,7 +85,7 @@ def effective_caliper(diameter: ArrayLike, start_diameter: ArrayLike, length: Ar
     a rewind (D grows) and an unwind (D shrinks). NaN where L <= 0.
     """
     d, d0, ln = (np.asarray(x, dtype=float) for x in (diameter, start_diameter, length))
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         t = np.pi * np.abs(d**2 - d0**2) / (4.0 * ln)
     return np.where(ln > 0, t, np.nan)
 
@@ -102,13 +103,14 @@ def taper_tension(diameter: ArrayLike, t0: ArrayLike, k: ArrayLike, core_diamete
     d, dc = np.asarray(diameter, dtype=float), np.asarray(core_diameter, dtype=float)
     t0, k = np.asarray(t0, dtype=float), np.asarray(k, dtype=float)
     if model == "hyperbolic":
-        with np.errstate(invalid="ignore", divide="ignore"):
+        with np.errstate(all="ignore"):
             return t0 * (1.0 - k * (1.0 - dc / d))
     if model == "linear":
         if max_diameter is None:
             raise ValueError("linear taper needs max_diameter")
         dm = np.asarray(max_diameter, dtype=float)
-        return t0 * (1.0 - k * (d - dc) / (dm - dc))
+        with np.errstate(all="ignore"):
+            return t0 * (1.0 - k * (d - dc) / (dm - dc))
     raise ValueError(f"expected taper model 'linear' or 'hyperbolic', got {model!r}")
 
 
@@ -118,7 +120,8 @@ def wound_on_tension(web_tension: ArrayLike, nip_load: ArrayLike, mu_k: ArrayLik
     Centre winding, undriven nip, moderate nip loads. Source: Pfeiffer (1968); Good, Wu &
     Fikes, "The internal stresses in wound rolls with the presence of a nip roller" (1994).
     """
-    return np.asarray(web_tension, dtype=float) + np.asarray(mu_k, dtype=float) * np.asarray(nip_load, dtype=float)
+    with np.errstate(all="ignore"):
+        return np.asarray(web_tension, dtype=float) + np.asarray(mu_k, dtype=float) * np.asarray(nip_load, dtype=float)
 
 
 # --- checks --------------------------------------------------------------------------

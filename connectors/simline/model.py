@@ -1,0 +1,434 @@
+"""A physical model of a line described by a spanwatch config, with injected faults.
+
+What it models (per unit width, SI):
+
+* Span tension of every tension zone by the first-order span equation
+  ``L dT_i/dt = Et (w_{i+1} - w_i) + w_i T_{i-1} - w_{i+1} T_i``
+  (Whitworth & Harrison 1983; see :mod:`rules.span`), w the web speed at each driven
+  element, Et = E * caliper; idlers inside a zone are drag-free.
+* Driven rollers in speed control at ``V_ref * (1 + draw)``. Each holds the web while
+  the tension ratio across it is within its capstan capacity ``exp(mu_eff theta)``
+  (mu_eff derated for air entrainment by :func:`rules.airfilm.effective_cof`). Beyond
+  that it slips: the ratio is held at the limit (an algebraic constraint on the two
+  span tensions) and the web speed on the roller is freed and solved from the
+  constraint.
+* Unwind and rewind in tension control: a PI loop trims the winder's surface speed to
+  hold its zone at setpoint (the rewind's setpoint follows the configured taper).
+* Roll geometry by area conservation (d(D^2) = +-4 t dL / pi) with a true effective
+  caliper; roll angle and rotation from V / (pi D); an out-of-round unwind modulates
+  the payout speed by ``2 e / D * sin(phase)``.
+* Sensors sampled at each tag's sample period with Gaussian noise; faults from the
+  scenario act on the plant (COF drop, speed ramp, out-of-round, caliper change) or
+  on the sensors (load-cell drift, stuck sensor, length undercount, tag dropout).
+
+Invented, demo-only behaviour (not published physics): idlers lag the web by 0.05 %
+plus a share that grows with speed above 500 m/min; the unwind roll holds a share
+of its zone's setpoint as wound-in tension. The model shares the air-film equations
+with the checks, so it tests the monitoring pipeline, not those equations.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from connectors.base import SampleBatch
+from connectors.simline.scenario import Fault, Scenario
+from monitor import units as U
+from monitor.config import RollerSection, WinderSection
+from monitor.line import Line
+from rules.airfilm import combined_roughness, effective_cof
+from rules.woundroll import taper_tension
+
+KP, KI = 2.0, 2.0  # winder tension loops, on the strain error (T_sp - T) / Et
+
+
+@dataclass
+class _Driven:
+    id: str
+    wrap: float
+    mu: float
+    radius: float
+    sigma: float
+    film: float
+    draw: float
+    speed: float = 0.0
+    web: float = 0.0  # web speed on the roller
+    slipping: bool = False
+
+
+class SimulatedLine:
+    """Step the plant forward; ``advance(seconds)`` returns the tag samples produced meanwhile."""
+
+    def __init__(self, line: Line, scenario: Scenario) -> None:
+        self.line, self.sc = line, scenario
+        cfg, sc = line.config, scenario.scenario
+        self.t0 = sc.start
+        self.frame_dt = 1.0 / cfg.line.frame_rate
+        self.dt = self.frame_dt / sc.substeps
+        self.rng = np.random.default_rng(sc.seed)
+        mat, truth = cfg.material, scenario.truth
+        self.et = mat.modulus * mat.caliper * truth.modulus_factor
+        self.width = mat.width
+        self.viscosity = line.viscosity
+        lw = cfg.line
+        self.air = dict(model=lw.air_film_model, convention=lw.air_speed_convention, floor=lw.air_traction_floor)
+        self.driven: list[_Driven] = []
+        for el in line.driven_rollers:
+            s = el.section
+            assert isinstance(s, RollerSection)
+            self.driven.append(_Driven(el.id, s.wrap, s.cof * truth.cof_factor, s.diameter / 2,
+                                       float(combined_roughness(mat.roughness, s.roughness)),
+                                       s.air_film_factor * mat.air_film_factor, s.draw))
+        self.zones = line.zones
+        self.zone_len = [z.length for z in self.zones]
+        self.setpoints = [z.setpoint if z.setpoint is not None else 0.0 for z in self.zones]
+        self.unwind = next(w for w in line.winders if w.section.kind == "unwind")  # type: ignore[union-attr]
+        self.rewind = next(w for w in line.winders if w.section.kind == "rewind")  # type: ignore[union-attr]
+        us, rs = self.unwind.section, self.rewind.section
+        assert isinstance(us, WinderSection) and isinstance(rs, WinderSection)
+        self.us, self.rs = us, rs
+        stack = truth.stack_factor if truth.stack_factor is not None else mat.stack_factor
+        self.caliper = mat.caliper * stack
+        ini = scenario.initial
+        # plant state
+        self.t = 0.0
+        self.v_ref = scenario.speed[0].to if scenario.speed and scenario.speed[0].at == 0 else 0.0
+        self.v_target = self.v_ref
+        self.d_u2 = (ini.unwind_diameter or 0.97 * us.max_diameter) ** 2
+        self.d_r2 = (ini.rewind_diameter or rs.core_diameter) ** 2
+        self.len_u = self.len_r = 0.0
+        self.count_u = self.count_r = 0.0
+        self.phase_u = self.phase_r = 0.0
+        self.x_u = self.x_r = 0.0  # winder loop integrators
+        self.core_flag_until = -1.0
+        self.tension = [self._setpoint(i) for i in range(len(self.zones))]
+        self._steady_start()
+        self._w = [self.v_ref] * (len(self.driven) + 2)  # web speed at unwind, driven rollers, rewind
+        # winder loop integrators at their steady values, so a scenario starts settled
+        t_in = scenario.truth.unwind_wound_in_tension * self.setpoints[0]
+        self.x_u = (self.tension[0] - t_in) / (self.et - t_in)
+        self.x_r = (self.tension[-1] - self.tension[-2]) / (self.et - self.tension[-1])
+        self._v_u_surface = self.v_ref
+        # tags and what feeds them
+        self.tag_names = tuple(line.tags)
+        self._sources = self._map_tags()
+        self._next_sample = {name: 0.0 for name in self.tag_names}
+        self._stuck: dict[str, float] = {}
+        self.faults = scenario.fault
+
+    # --- set-up ------------------------------------------------------------------------
+
+    def _setpoint(self, i: int) -> float:
+        sp = self.setpoints[i]
+        if i == len(self.zones) - 1 and self.rs.taper is not None:
+            d = math.sqrt(self.d_r2)
+            return float(taper_tension(d, sp, self.rs.taper.k, self.rs.core_diameter, self.rs.max_diameter,
+                                       self.rs.taper.model))
+        return sp
+
+    def _steady_start(self) -> None:
+        """Start with tensions at their steady values for the initial speed (no start-up transient)."""
+        for i in range(1, len(self.zones) - 1):
+            t_up = self.tension[i - 1]
+            d = self.driven
+            v1, v2 = 1 + d[i - 1].draw, 1 + d[i].draw
+            self.tension[i] = (self.et * (v2 - v1) + v1 * t_up) / v2
+
+    def _map_tags(self) -> dict[str, tuple[str, str, float]]:
+        """tag -> (quantity, object, factor); quantity in speed_ref, speed, tension, diameter, rpm, length, core."""
+        out: dict[str, tuple[str, str, float]] = {}
+        cfg = self.line.config
+        out[cfg.line.speed_tag] = ("speed_ref", "", 1.0)
+        for el in self.line.elements.values():
+            s = el.section
+            if isinstance(s, RollerSection) and s.speed_tag:
+                rot = self.line.tags[s.speed_tag].kind is not U.SPEED
+                out[s.speed_tag] = ("speed", el.id, 1.0 / (math.pi * s.diameter) if rot else 1.0)
+            if isinstance(s, WinderSection):
+                for tag, q in ((s.diameter_tag, "diameter"), (s.rpm_tag, "rpm"), (s.length_tag, "length"),
+                               (s.core_change_tag, "core")):
+                    if tag:
+                        out[tag] = (q, el.id, 1.0)
+        for i, z in enumerate(self.zones):
+            if z.tension_tag:
+                force = self.line.tags[z.tension_tag].kind is U.FORCE
+                out[z.tension_tag] = ("tension", str(i), self.width if force else 1.0)
+        return out
+
+    # --- faults --------------------------------------------------------------------------
+
+    def _active(self, kind: str, target: str | None = None) -> Fault | None:
+        for f in self.faults:
+            if f.kind == kind and f.start <= self.t < f.end and (target is None or f.target == target):
+                return f
+        return None
+
+    # --- physics step ----------------------------------------------------------------------
+
+    def _profile_target(self) -> tuple[float, float]:
+        target, rate = self.v_target, self.sc.scenario.accel
+        for step in self.sc.speed:
+            if step.at <= self.t:
+                target, rate = step.to, step.rate or self.sc.scenario.accel
+        ramp = self._active("speed_ramp")
+        if ramp is not None:
+            target = ramp.size_si(U.SPEED)
+        return target, rate
+
+    def _roll_changes(self) -> None:
+        for rc in self.sc.roll_change:
+            if rc.at <= self.t < rc.at + self.dt:
+                if rc.winder == self.rewind.id:
+                    self.d_r2 = (rc.diameter or self.rs.core_diameter) ** 2
+                    self.len_r = self.count_r = 0.0
+                    self.core_flag_until = self.t + 2.0
+                elif rc.winder == self.unwind.id:
+                    self.d_u2 = (rc.diameter or 0.97 * self.us.max_diameter) ** 2
+                    self.len_u = self.count_u = 0.0
+
+    def step(self) -> None:
+        """Advance the plant by one time step ``dt`` (explicit Euler with slip constraints)."""
+        dt = self.dt
+        self._roll_changes()
+        target, rate = self._profile_target()
+        dv = target - self.v_ref
+        self.v_ref += max(-rate * dt, min(rate * dt, dv))
+        v = self.v_ref
+        n = len(self.zones)
+        tens = self.tension
+        # setpoints and winder loops
+        sp_u, sp_r = self._setpoint(0), self._setpoint(n - 1)
+        e_u = (sp_u - tens[0]) / self.et
+        e_r = (sp_r - tens[-1]) / self.et
+        gain = 1.0 if v > 0.05 else 0.0  # loops hold while the line stands
+        self.x_u += KI * e_u * dt * gain
+        self.x_r += KI * e_r * dt * gain
+        x_u = KP * e_u + self.x_u
+        x_r = KP * e_r + self.x_r
+        for d in self.driven:
+            d.speed = v * (1.0 + d.draw)
+            if not d.slipping:
+                d.web = d.speed
+        d_u = math.sqrt(max(self.d_u2, 1e-6))
+        d_r = math.sqrt(max(self.d_r2, 1e-6))
+        ecc = self._active("out_of_round", self.unwind.id)
+        e = (ecc.size_si(U.LENGTH) if ecc else 0.0) + self.sc.initial.unwind_eccentricity
+        v_u_surface = self.driven[0].web * (1.0 - x_u) if self.driven else v * (1 - x_u)
+        w_u = v_u_surface * (1.0 + 2.0 * e / d_u * math.sin(self.phase_u))
+        v_r = (self.driven[-1].web if self.driven else v) * (1.0 + x_r)
+        t_in = self.sc.truth.unwind_wound_in_tension * self.setpoints[0]
+        # web speeds at the elements: unwind, driven..., rewind
+        self._update_slip(v)
+        w = [w_u, *[d.web for d in self.driven], v_r]
+        new = list(tens)
+        for i in range(n):
+            t_up = t_in if i == 0 else tens[i - 1]
+            rate_i = (self.et * (w[i + 1] - w[i]) + w[i] * t_up - w[i + 1] * tens[i]) / self.zone_len[i]
+            new[i] = tens[i] + rate_i * dt
+        for j, d in enumerate(self.driven):
+            if d.slipping:
+                new[j], new[j + 1] = self._project(new[j], new[j + 1], j, d)
+        self.tension = new
+        # roll geometry
+        cal_r = self.caliper
+        cc = self._active("caliper_change", self.rewind.id)
+        if cc is not None:
+            cal_r *= 1.0 + cc.size_si(U.DIMENSIONLESS)
+        self.len_u += w_u * dt
+        self.len_r += v_r * dt
+        self.d_u2 = max(self.d_u2 - 4.0 * self.caliper * w_u * dt / math.pi, self.us.core_diameter ** 2)
+        self.d_r2 = self.d_r2 + 4.0 * cal_r * v_r * dt / math.pi
+        under_u = self._undercount(self.us.length_tag)
+        under_r = self._undercount(self.rs.length_tag)
+        self.count_u += w_u * dt * (1.0 - under_u)
+        self.count_r += v_r * dt * (1.0 - under_r)
+        self.phase_u = (self.phase_u + 2.0 * v_u_surface / d_u * dt) % (2.0 * math.pi)
+        self.phase_r = (self.phase_r + 2.0 * v_r / d_r * dt) % (2.0 * math.pi)
+        self._w = w
+        self._v_u_surface = v_u_surface
+        self.t += dt
+
+    def _undercount(self, tag: str | None) -> float:
+        if tag is None:
+            return 0.0
+        f = self._active("length_undercount", tag)
+        return f.size_si(U.DIMENSIONLESS) if f else 0.0
+
+    def _capacity(self, j: int, d: _Driven) -> float:
+        mu = d.mu
+        f = self._active("cof_drop", d.id)
+        if f is not None:
+            mu = float(f.size_si(U.DIMENSIONLESS))
+        t_low = min(self.tension[j], self.tension[j + 1])
+        mu_eff, _ = effective_cof(mu, d.radius, max(t_low, 1e-3), d.web, d.speed, d.sigma,
+                                  viscosity=self.viscosity, film_factor=d.film, **self.air)
+        return math.exp(float(mu_eff) * d.wrap)
+
+    def _update_slip(self, v: float) -> None:
+        """Decide stick or slip for each driven roller; solve the free web speed while slipping.
+
+        A sticking roller starts to slip when the tension ratio across it leaves its capstan
+        capacity: the two tensions are projected onto the limit at once. A slipping roller
+        sticks again when the web speed the constraint needs crosses the roller's surface speed.
+        """
+        tens = self.tension
+        for j, d in enumerate(self.driven):
+            ta, tb = tens[j], tens[j + 1]
+            if ta <= 0 or tb <= 0 or v <= 0.01:
+                d.slipping, d.web = False, d.speed
+                continue
+            r = self._capacity(j, d)
+            ratio = tb / ta
+            if not d.slipping and (ratio > r or ratio < 1.0 / r):
+                d.slipping = True
+                tens[j], tens[j + 1] = self._project(ta, tb, j, d)
+            if d.slipping:
+                w = self._free_web_speed(j, d, r if tens[j + 1] >= tens[j] else 1.0 / r)
+                holds_back = tens[j + 1] >= tens[j]  # friction holds the web back: a slipping web overruns
+                if (holds_back and w <= d.speed) or (not holds_back and w >= d.speed):
+                    d.slipping, d.web = False, d.speed
+                else:
+                    d.web = w
+
+    def _free_web_speed(self, j: int, d: _Driven, r: float) -> float:
+        """Web speed on slipping roller j that keeps T_{j+1} = r T_j (derivative of the constraint)."""
+        tens, et, ln = self.tension, self.et, self.zone_len
+        t_up = self.sc.truth.unwind_wound_in_tension * self.setpoints[0] if j == 0 else tens[j - 1]
+        # web speed upstream of roller j (element j) and downstream (element j + 2 in w numbering)
+        w_prev, w_next = self._w[j], self._w[j + 2]
+        big_b = w_next * (et - tens[j + 1])
+        big_c = w_prev * (et - t_up)
+        x = (big_b / ln[j + 1] + r * big_c / ln[j]) / (1.0 / ln[j + 1] + r / ln[j])
+        return x / (et - tens[j])
+
+    def _project(self, ta: float, tb: float, j: int, d: _Driven) -> tuple[float, float]:
+        """Put the two tensions back on the capstan limit, keeping L_a T_a + L_b T_b."""
+        r = self._capacity(j, d)
+        r = r if tb >= ta else 1.0 / r
+        la, lb = self.zone_len[j], self.zone_len[j + 1]
+        ta2 = (la * ta + lb * tb) / (la + r * lb)
+        return ta2, r * ta2
+
+    # --- sensors -------------------------------------------------------------------------
+
+    def _truth_value(self, quantity: str, obj: str, factor: float) -> float:
+        """True value of a tag's quantity, SI of the tag's kind."""
+        if quantity == "speed_ref":
+            return self.v_ref
+        if quantity == "tension":
+            return self.tension[int(obj)] * factor
+        if quantity == "speed":
+            d = next((x for x in self.driven if x.id == obj), None)
+            if d is not None:
+                return d.speed * factor
+            return self._idler_speed(obj) * factor
+        if quantity == "diameter":
+            return math.sqrt(self.d_u2 if obj == self.unwind.id else self.d_r2)
+        if quantity == "rpm":
+            if obj == self.unwind.id:
+                return self._v_u_surface / (math.pi * math.sqrt(self.d_u2))
+            return self._w[-1] / (math.pi * math.sqrt(self.d_r2))
+        if quantity == "length":
+            return self.count_u if obj == self.unwind.id else self.count_r
+        if quantity == "core":
+            return 1.0 if self.t < self.core_flag_until else 0.0
+        raise KeyError(quantity)
+
+    def _idler_speed(self, idler: str) -> float:
+        """Idler surface speed: the web speed of its zone minus an invented speed-dependent lag."""
+        path = self.line.path
+        pos = path.index(idler)
+        zone = next(i for i, z in enumerate(self.zones) if path.index(z.upstream) < pos < path.index(z.downstream))
+        web = self._w[zone]
+        # web leaving element `zone` (unwind payout or a driven roller's web speed)
+        lag = 0.0005 + 0.02 * min(max((abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
+        return web * (1.0 - lag)
+
+    def advance(self, seconds: float) -> SampleBatch:
+        """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit)."""
+        steps = max(0, round(seconds / self.dt))
+        tag_idx: list[int] = []
+        times: list[float] = []
+        values: list[float] = []
+        tags = self.tag_names
+        infos = [self.line.tags[n] for n in tags]
+        periods = [i.sample_period for i in infos]
+        sources = [self._sources.get(n) for n in tags]
+        next_t = [self._next_sample[n] for n in tags]
+        eps = 1e-9
+        for _ in range(steps):
+            self.step()
+            now = self.t
+            for k, src in enumerate(sources):
+                if src is None or now + eps < next_t[k]:
+                    continue
+                next_t[k] = round((next_t[k] + periods[k]) / self.dt) * self.dt
+                tag_idx.append(k)
+                times.append(now)
+                values.append(self._truth_value(*src))
+        for k, n in enumerate(tags):
+            self._next_sample[n] = next_t[k]
+        return self._sensors(np.asarray(tag_idx, np.int32), np.asarray(times), np.asarray(values), infos)
+
+    def _sensors(self, idx: np.ndarray, t: np.ndarray, v: np.ndarray, infos: list) -> SampleBatch:
+        noise = self.sc.noise
+        keep = np.ones(idx.shape[0], dtype=bool)
+        for k, info in enumerate(infos):
+            sel = idx == k
+            if not sel.any():
+                continue
+            src = self._sources.get(info.name)
+            q = src[0] if src else ""
+            x = v[sel]
+            if q == "tension":
+                x = x * (1.0 + noise.tension * self.rng.standard_normal(x.size))
+            elif q in ("speed", "speed_ref"):
+                x = x * (1.0 + noise.speed * self.rng.standard_normal(x.size))
+            elif q == "rpm":
+                x = x * (1.0 + noise.rpm * self.rng.standard_normal(x.size))
+            elif q == "diameter":
+                x = x + noise.diameter * self.rng.standard_normal(x.size)
+            elif q == "length":
+                x = np.floor(x / noise.length_step) * noise.length_step
+            raw = (x - info.offset) / info.scale
+            ts = t[sel]
+            for f in self.faults:
+                if f.target != info.name:
+                    continue
+                inside = (ts >= f.start) & (ts < f.end)
+                if f.kind == "loadcell_drift":
+                    raw = raw + np.where(inside, f.size_si(U.DIMENSIONLESS) * (ts - f.start), 0.0)
+                elif f.kind == "stuck_sensor" and inside.any():
+                    first = self._stuck.setdefault(info.name, float(raw[np.argmax(inside)]))
+                    raw = np.where(inside, first, raw)
+                elif f.kind == "tag_dropout":
+                    sub = keep[sel]
+                    sub[inside] = False
+                    keep[sel] = sub
+            v[sel] = raw
+        n = int(keep.sum())
+        return SampleBatch(self.tag_names, idx[keep], self.t0 + t[keep], v[keep], np.zeros(n, np.int8),
+                           np.full(n, -1, np.int64))
+
+    def truth(self) -> dict[str, object]:
+        """Ground truth of the scenario: fault windows, roll changes and speed steps, in epoch and ISO time."""
+        from datetime import UTC, datetime
+
+        def iso(rel: float) -> str:
+            return datetime.fromtimestamp(self.t0 + rel, UTC).isoformat()
+
+        return {
+            "scenario": self.sc.scenario.name,
+            "config": self.line.file,
+            "config_hash": self.line.config_hash,
+            "start": iso(0.0),
+            "duration_s": self.sc.scenario.duration,
+            "faults": [{"kind": f.kind, "target": f.target, "size": f.size, "start": iso(f.start), "end": iso(f.end),
+                        "start_epoch": self.t0 + f.start, "end_epoch": self.t0 + f.end} for f in self.faults],
+            "roll_changes": [{"winder": r.winder, "at": iso(r.at), "at_epoch": self.t0 + r.at}
+                             for r in self.sc.roll_change],
+            "speed_steps": [{"at": iso(s.at), "to_m_per_min": s.to * 60.0} for s in self.sc.speed],
+        }

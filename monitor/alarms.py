@@ -1,0 +1,150 @@
+"""Alarm handling: from check values to raised and cleared alarms.
+
+Each :class:`~monitor.checkset.AlarmPoint` (a check on one object at one level) is a
+small state machine, evaluated over whole blocks of frames with numpy:
+
+1. **Condition with deadband** (ISA-18.2 / IEC 62682 nuisance-alarm tools): the
+   condition sets when the value reaches the limit and resets only once it is back
+   past the limit by the deadband. ``direction`` says which side is abnormal
+   (``high``, ``low``, or ``abs`` for |value|).
+2. **Validity**: frames where the check is invalid hold the condition (a lost input
+   neither raises nor clears an alarm), except frames gated by the line state, which
+   reset it (suppression by design: a stopped line has no traction alarm).
+3. **On-delay / off-delay**: the condition must hold for ``on_delay`` seconds before
+   the alarm is raised and stay clear for ``off_delay`` seconds before it clears.
+
+The result is a list of :class:`Transition` (raise / clear) with the frame time,
+value, limit, priority and line state. Acknowledge, shelve and the rest of the
+ISA-18.2 lifecycle build on these transitions.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass
+
+import numpy as np
+
+from monitor.checkset import AlarmPoint
+from rules.base import CheckResult, Reason
+from rules.windows import forward_fill_index
+
+
+@dataclass(frozen=True)
+class Transition:
+    """An alarm raised or cleared."""
+
+    t: float
+    point: AlarmPoint
+    event: str  # "raise" | "clear"
+    value: float
+    line_state: int
+    peak: float = float("nan")  # most abnormal value of the episode (on clear)
+
+    @property
+    def key(self) -> str:
+        return self.point.key
+
+
+@dataclass
+class _State:
+    cond: bool = False
+    since: float = -np.inf  # time the condition took its current value
+    active: bool = False
+    peak: float = float("nan")
+
+
+class AlarmEngine:
+    """Evaluate every alarm point over blocks of check results."""
+
+    def __init__(self, points: list[AlarmPoint]) -> None:
+        self.points = points
+        self.state = {p.key: _State() for p in points}
+
+    def active(self) -> list[AlarmPoint]:
+        return [p for p in self.points if self.state[p.key].active]
+
+    def evaluate(self, t: np.ndarray, results: dict[tuple[str, str], CheckResult],
+                 line_state: np.ndarray) -> list[Transition]:
+        out: list[Transition] = []
+        for p in self.points:
+            res = results.get((p.kind, p.object_id))
+            if res is not None:
+                out.extend(self._point(p, t, res, line_state))
+        out.sort(key=lambda tr: tr.t)
+        return out
+
+    def _point(self, p: AlarmPoint, t: np.ndarray, res: CheckResult, line_state: np.ndarray) -> list[Transition]:
+        st = self.state[p.key]
+        n = t.shape[0]
+        if n == 0:
+            return []
+        x = severity(res.value, p.direction)
+        limit = p.limit if p.direction != "low" else -p.limit
+        valid = res.reason == Reason.OK
+        with np.errstate(invalid="ignore"):
+            sets = valid & (x >= limit)
+            resets = (valid & (x < limit - p.deadband)) | (res.reason == Reason.LINE_STATE)
+        code = np.where(sets, 1, np.where(resets, 0, -1))
+        idx = forward_fill_index(code >= 0)
+        cond = np.where(idx >= 0, code[np.maximum(idx, 0)] == 1, st.cond)
+        if not st.active and not cond.any() and not st.cond:
+            return []  # quiet: nothing pending, nothing to raise
+        prev = np.r_[st.cond, cond[:-1]]
+        cuts = np.flatnonzero(cond != prev)
+        cut_set = set(cuts.tolist())
+        bounds = [0, *cuts.tolist(), n]
+        out: list[Transition] = []
+        for a, b in itertools.pairwise(bounds):
+            if a == b:
+                continue
+            if a in cut_set:
+                st.cond = bool(cond[a])
+                st.since = float(t[a])
+            seg_start = a
+            if st.cond and not st.active:
+                due = st.since + p.on_delay
+                k = a + int(np.searchsorted(t[a:b], due - 1e-9))
+                ready = np.flatnonzero(valid[k:b])  # raise on a frame where the check is valid
+                if ready.size:
+                    k += int(ready[0])
+                    st.active = True
+                    st.peak = float(x[k]) if np.isfinite(x[k]) else float("nan")
+                    out.append(Transition(float(t[k]), p, "raise", float(res.value[k]), int(line_state[k])))
+                    seg_start = k
+            if st.active:
+                hi = b
+                if not st.cond:
+                    due = st.since + p.off_delay
+                    if t[b - 1] >= due - 1e-9:
+                        k = a + int(np.searchsorted(t[a:b], due - 1e-9))
+                        hi = k
+                        st.active = False
+                        self._track_peak(st, x[seg_start:hi])
+                        out.append(Transition(float(t[k]), p, "clear", float(res.value[k]), int(line_state[k]),
+                                              peak=self._signed(st.peak, p)))
+                        continue
+                self._track_peak(st, x[seg_start:hi])
+        return out
+
+    @staticmethod
+    def _track_peak(st: _State, xs: np.ndarray) -> None:
+        fin = xs[np.isfinite(xs)]
+        if fin.size:
+            m = float(fin.max())
+            st.peak = m if not np.isfinite(st.peak) else max(st.peak, m)
+
+    @staticmethod
+    def _signed(peak: float, p: AlarmPoint) -> float:
+        return -peak if p.direction == "low" else peak
+
+
+def severity(value: np.ndarray, direction: str) -> np.ndarray:
+    """The value turned so that larger is more abnormal: v (high), -v (low), |v| (abs)."""
+    if direction == "high":
+        return value
+    if direction == "low":
+        return -value
+    if direction == "abs":
+        return np.abs(value)
+    raise ValueError(f"expected direction 'high', 'low' or 'abs', got {direction!r}")

@@ -1,0 +1,114 @@
+"""Time alignment: tag samples in, frames on a fixed grid out.
+
+Frames are at integer multiples of the frame period (epoch-aligned, so a restart
+lands on the same grid). Each frame holds, per tag, the newest sample at or before
+the frame time (sample and hold), its quality, and its age. Per tag, a sample must
+be newer than the newest one accepted: an older one is *out of order*, an equal one
+a *duplicate*; both are refused and reported, never silently used.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from rules.base import QUALITY_NONE, TagFrames
+
+REJECT_OUT_OF_ORDER = "out of order"
+REJECT_DUPLICATE = "duplicate timestamp"
+
+
+class Aligner:
+    """Sample-and-hold alignment of ``names`` onto a frame grid at ``frame_rate``."""
+
+    def __init__(self, names: tuple[str, ...], frame_rate: float) -> None:
+        self.names = names
+        self.rate = frame_rate
+        k = len(names)
+        self.last_t = np.full(k, -np.inf)  # newest accepted sample per tag (pending included)
+        self.held_t = np.full(k, -np.inf)  # newest sample at or before the last emitted frame
+        self.held_v = np.full(k, np.nan)
+        self.held_q = np.full(k, QUALITY_NONE, dtype=np.int8)
+        self._pend: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(k)]
+        self.next_frame: int | None = None  # index of the next frame to emit
+        self.late = 0
+
+    @property
+    def emitted_until(self) -> float:
+        return -np.inf if self.next_frame is None else (self.next_frame - 1) / self.rate
+
+    def push(self, col: np.ndarray, t: np.ndarray, v: np.ndarray, q: np.ndarray) -> dict[str, np.ndarray]:
+        """Accept samples (column index, time, SI value, quality). Returns masks of refused samples by reason,
+        plus ``"late"``: accepted samples older than frames already emitted (used for later frames only)."""
+        n = t.shape[0]
+        refused_ooo = np.zeros(n, dtype=bool)
+        refused_dup = np.zeros(n, dtype=bool)
+        if n == 0:
+            return {REJECT_OUT_OF_ORDER: refused_ooo, REJECT_DUPLICATE: refused_dup, "late": refused_ooo}
+        order = np.argsort(col, kind="stable")
+        cs = col[order]
+        starts = np.flatnonzero(np.r_[True, cs[1:] != cs[:-1]])
+        ends = np.r_[starts[1:], n]
+        for a, b in zip(starts, ends, strict=True):
+            c = int(cs[a])
+            idx = order[a:b]
+            tt = t[idx]
+            prev_max = np.maximum.accumulate(np.r_[self.last_t[c], tt])[:-1]
+            ok = tt > prev_max
+            refused_ooo[idx[tt < prev_max]] = True
+            refused_dup[idx[tt == prev_max]] = True
+            if ok.any():
+                good = idx[ok]
+                self._pend[c].append((t[good], v[good], q[good]))
+                self.last_t[c] = float(t[good][-1])
+        late = ~refused_ooo & ~refused_dup & (t <= self.emitted_until)
+        self.late += int(late.sum())
+        return {REJECT_OUT_OF_ORDER: refused_ooo, REJECT_DUPLICATE: refused_dup, "late": late}
+
+    def emit(self, until: float) -> tuple[np.ndarray, TagFrames] | None:
+        """``(frame times, frames)`` with time <= ``until`` not emitted yet; None if there are none."""
+        if self.next_frame is None:
+            firsts = [p[0][0][0] for p in self._pend if p]
+            if not firsts:
+                return None
+            first = min(firsts)
+            self.next_frame = math.ceil(first * self.rate - 1e-9)
+        last = math.floor(until * self.rate + 1e-9)
+        if last < self.next_frame:
+            return None
+        frames = np.arange(self.next_frame, last + 1) / self.rate
+        k = len(self.names)
+        n = frames.shape[0]
+        value = np.empty((n, k))
+        quality = np.empty((n, k), dtype=np.int8)
+        age = np.empty((n, k))
+        t_end = frames[-1]
+        for c in range(k):
+            pend = self._pend[c]
+            if pend:
+                pt = np.concatenate([p[0] for p in pend])
+                pv = np.concatenate([p[1] for p in pend])
+                pq = np.concatenate([p[2] for p in pend])
+            else:
+                pt = pv = np.zeros(0)
+                pq = np.zeros(0, dtype=np.int8)
+            j = np.searchsorted(pt, frames, side="right") - 1
+            use = j >= 0
+            jj = np.maximum(j, 0)
+            if pt.size:
+                value[:, c] = np.where(use, pv[jj], self.held_v[c])
+                quality[:, c] = np.where(use, pq[jj], self.held_q[c])
+                st = np.where(use, pt[jj], self.held_t[c])
+            else:
+                value[:, c] = self.held_v[c]
+                quality[:, c] = self.held_q[c]
+                st = np.full(n, self.held_t[c])
+            age[:, c] = frames - st
+            # carry the newest sample at or before the last frame; keep the rest pending
+            m = int(np.searchsorted(pt, t_end, side="right"))
+            if m > 0:
+                self.held_t[c], self.held_v[c], self.held_q[c] = pt[m - 1], pv[m - 1], pq[m - 1]
+            self._pend[c] = [(pt[m:], pv[m:], pq[m:])] if m < pt.size else []
+        self.next_frame = last + 1
+        return frames, TagFrames(self.names, value, quality, age)

@@ -1,0 +1,54 @@
+"""Bad input, counted: every sample the pipeline could not use, by tag and reason.
+
+Nothing is dropped silently. A reason is one of ``malformed``, ``non-finite value``,
+``out of order``, ``duplicate timestamp``, ``late`` (arrived after its frame was
+computed; used for later frames), ``unknown tag``, ``bad quality``, ``uncertain
+quality``. Each keeps a count and the references (line numbers in a recording,
+sequence numbers on a connection) of its first occurrences. Logging is rate-limited:
+at most one line per reason every ``log_every`` seconds, with the count since the last.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+log = logging.getLogger("spanwatch.inputs")
+
+
+@dataclass
+class InputStats:
+    keep_refs: int = 20
+    log_every: float = 10.0
+    counts: dict[tuple[str, str], int] = field(default_factory=dict)
+    refs: dict[tuple[str, str], list[int]] = field(default_factory=dict)
+    _last_log: dict[str, float] = field(default_factory=dict)
+    _since_log: dict[str, int] = field(default_factory=dict)
+
+    def add(self, tag: str, reason: str, refs: Iterable[int] = (), count: int | None = None) -> None:
+        """Count ``count`` (default: len(refs)) samples of ``tag`` refused or flagged for ``reason``."""
+        refs = [int(r) for r in refs]
+        n = len(refs) if count is None else count
+        if n <= 0:
+            return
+        key = (tag, reason)
+        self.counts[key] = self.counts.get(key, 0) + n
+        kept = self.refs.setdefault(key, [])
+        kept.extend(r for r in refs[: max(0, self.keep_refs - len(kept))] if r >= 0)
+        self._since_log[reason] = self._since_log.get(reason, 0) + n
+        now = time.monotonic()
+        if now - self._last_log.get(reason, -1e9) >= self.log_every:
+            where = f" (first at {kept[0]})" if kept else ""
+            log.warning("input: %d sample(s) with %s, latest tag %s%s", self._since_log[reason], reason, tag, where)
+            self._last_log[reason] = now
+            self._since_log[reason] = 0
+
+    def total(self, reason: str | None = None) -> int:
+        return sum(v for (_, r), v in self.counts.items() if reason is None or r == reason)
+
+    def rows(self) -> list[dict[str, object]]:
+        """One row per (tag, reason), sorted, for reports and the database."""
+        return [{"tag": tag, "reason": reason, "count": n, "refs": self.refs.get((tag, reason), [])}
+                for (tag, reason), n in sorted(self.counts.items())]

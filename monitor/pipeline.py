@@ -1,0 +1,196 @@
+"""The pipeline: samples -> frames -> signals -> line state -> checks -> alarms -> history.
+
+One :class:`Pipeline` owns all streaming state of one line (aligner, line-state and
+roll-change trackers, check windows, alarm states). Sources push
+:class:`~connectors.base.SampleBatch` objects with :meth:`Pipeline.ingest`; whoever
+drives the clock calls :meth:`Pipeline.advance` with the time up to which frames may
+be computed (the newest sample time minus a small lag in a replay, the wall clock
+minus the network latency allowance live). Everything per frame is numpy over a
+block of frames; Python loops run per block, per check and per alarm transition.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from connectors.base import SampleBatch
+from monitor.alarms import AlarmEngine, Transition
+from monitor.aligner import Aligner
+from monitor.checkset import alarm_points, build_checks
+from monitor.context import ContextRecorder
+from monitor.history import History
+from monitor.inputs import InputStats
+from monitor.line import Line
+from monitor.signals import SignalDeriver
+from rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason
+from rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
+
+
+@dataclass
+class CheckStats:
+    """Frames evaluated per check, by reason (OK, LINE_STATE, INPUT_BAD, ...)."""
+
+    by_reason: dict[tuple[str, str], np.ndarray] = field(default_factory=dict)
+
+    def add(self, key: tuple[str, str], reason: np.ndarray) -> None:
+        counts = np.bincount(reason.astype(np.int64), minlength=len(Reason))
+        if key in self.by_reason:
+            self.by_reason[key] += counts[: len(Reason)]
+        else:
+            self.by_reason[key] = counts[: len(Reason)].copy()
+
+
+class Pipeline:
+    """Streaming monitor of one line."""
+
+    def __init__(self, line: Line, history: History | None = None, *,
+                 on_transition: Callable[[Transition], None] | None = None, context: bool = True,
+                 replay_lag: float | None = None) -> None:
+        self.line = line
+        lw = line.config.line
+        self.names = tuple(line.tags)
+        self.frame_rate = lw.frame_rate
+        self.aligner = Aligner(self.names, lw.frame_rate)
+        self.deriver = SignalDeriver(line, self.names)
+        self.tracker = LineStateTracker(stop_speed=lw.stop_speed, thread_speed=lw.thread_speed,
+                                        accel_threshold=lw.accel_threshold, accel_window=lw.accel_window,
+                                        settle_time=lw.settle_time, frame_rate=lw.frame_rate)
+        self.rolls = {w.id: RollChangeDetector(jump=lw.roll_change_jump, settle_time=lw.roll_settle_time)
+                      for w in line.winders}
+        self.checks = build_checks(line)
+        self.points = alarm_points(line, self.checks)
+        self.engine = AlarmEngine(self.points)
+        self.inputs = InputStats()
+        self.check_stats = CheckStats()
+        self.history = history
+        self.on_transition = on_transition
+        self.context = ContextRecorder(lw.frame_rate) if context else None
+        self._inputs_of = {(c.kind, c.object_id): (c.inputs or (f"tag/{c.object_id}",)) for c in self.checks}
+        self.scale = np.array([line.tags[n].scale for n in self.names])
+        self.offset = np.array([line.tags[n].offset for n in self.names])
+        self._maps: dict[tuple[str, ...], np.ndarray] = {}
+        self._unknown_seen: set[str] = set()
+        self.lag = replay_lag if replay_lag is not None else 2.5 * max(i.sample_period for i in line.tags.values())
+        self.frames = 0
+        self.samples = 0
+        self.first_t: float | None = None
+        self.last_t: float | None = None
+        self.latest: dict[tuple[str, str], tuple[float, float, int]] = {}
+        self.line_state: int | None = None
+        self.transitions = 0
+
+    # --- input ---------------------------------------------------------------------------
+
+    def _map(self, tags: tuple[str, ...]) -> np.ndarray:
+        m = self._maps.get(tags)
+        if m is None:
+            index = {n: i for i, n in enumerate(self.names)}
+            m = np.array([index.get(t, -1) for t in tags], dtype=np.int64)
+            self._maps[tags] = m
+        return m
+
+    def ingest(self, batch: SampleBatch) -> None:
+        """Take a batch of raw samples: map tags, convert to SI, count bad input, queue for alignment."""
+        if len(batch) == 0:
+            return
+        col = self._map(batch.tags)[batch.tag]
+        unknown = col < 0
+        if unknown.any():
+            for i in np.unique(batch.tag[unknown]):
+                name = batch.tags[int(i)]
+                sel = unknown & (batch.tag == i)
+                refs = batch.ref[sel][:1] if name not in self._unknown_seen else []
+                self._unknown_seen.add(name)
+                self.inputs.add(name, "unknown tag", refs, count=int(sel.sum()))
+            keep = ~unknown
+            col, batch = col[keep], _take(batch, keep)
+        t, q, ref = batch.t, batch.quality, batch.ref
+        v = batch.value * self.scale[col] + self.offset[col]
+        bad_t = ~np.isfinite(t)
+        if bad_t.any():
+            for c in np.unique(col[bad_t]):
+                self.inputs.add(self.names[c], "malformed", ref[bad_t & (col == c)])
+            keep = ~bad_t
+            col, t, v, q, ref = col[keep], t[keep], v[keep], q[keep], ref[keep]
+        nonfinite = ~np.isfinite(v)
+        if nonfinite.any():
+            q = np.where(nonfinite, QUALITY_BAD, q).astype(np.int8)
+        for code, reason in ((QUALITY_UNCERTAIN, "uncertain quality"), (QUALITY_BAD, "bad quality")):
+            flagged = q == code
+            if flagged.any():
+                for c in np.unique(col[flagged]):
+                    self.inputs.add(self.names[c], reason, ref[flagged & (col == c)])
+        refused = self.aligner.push(col, t, v, q)
+        for reason, mask in refused.items():
+            if mask.any():
+                for c in np.unique(col[mask]):
+                    self.inputs.add(self.names[c], reason, ref[mask & (col == c)])
+        self.samples += int(t.size)
+        if t.size:
+            lo, hi = float(np.min(t)), float(np.max(t))
+            self.first_t = lo if self.first_t is None else min(self.first_t, lo)
+            self.last_t = hi if self.last_t is None else max(self.last_t, hi)
+
+    # --- processing ----------------------------------------------------------------------
+
+    def advance(self, until: float) -> list[Transition]:
+        """Compute every frame up to ``until`` (epoch s); return the alarm transitions they caused."""
+        out = self.aligner.emit(until)
+        if out is None:
+            return []
+        t, frames = out
+        signals = self.deriver.derive(frames)
+        block = Block(t=t, signals=signals, line_state=np.zeros(t.size, np.int8), tags=frames)
+        apply_line_state(block, self.tracker)
+        for wid, det in self.rolls.items():
+            block.roll_start[wid], block.roll_settling[wid] = det.update(
+                t, block.signal(f"diameter/{wid}"), signals.get(f"core_change/{wid}"), signals.get(f"length/{wid}"))
+        results: dict[tuple[str, str], CheckResult] = {}
+        for c in self.checks:
+            key = (c.kind, c.object_id)
+            res = c.update(block)
+            results[key] = res
+            self.check_stats.add(key, res.reason)
+            self.latest[key] = (float(t[-1]), float(res.value[-1]), int(res.reason[-1]))
+        transitions = self.engine.evaluate(t, results, block.line_state)
+        self.frames += t.size
+        self.line_state = int(block.line_state[-1])
+        self.transitions += len(transitions)
+        if self.context is not None:
+            series = {name: np.where(s.ok, s.value, np.nan) for name, s in signals.items()}
+            series.update({f"tag/{n}": frames.value[:, k] for k, n in enumerate(self.names)})
+            self.context.push(t, series)
+            for tr in transitions:
+                if tr.event == "raise":
+                    self.context.on_raise(tr.key, tr.t, self._inputs_of[(tr.point.kind, tr.point.object_id)])
+        if self.history is not None:
+            self.history.record(transitions)
+            if self.context is not None:
+                self.history.record_contexts(self.context.collect(float(t[-1])))
+        if self.on_transition is not None:
+            for tr in transitions:
+                self.on_transition(tr)
+        return transitions
+
+    def feed(self, batch: SampleBatch) -> list[Transition]:
+        """Ingest a batch and compute frames up to its newest sample minus the alignment lag (replay)."""
+        self.ingest(batch)
+        if self.last_t is None:
+            return []
+        return self.advance(self.last_t - self.lag)
+
+    def finish(self) -> list[Transition]:
+        """Compute the remaining frames, write pending contexts and the input summary."""
+        trs = self.advance(self.last_t) if self.last_t is not None else []
+        if self.history is not None:
+            if self.context is not None:
+                self.history.record_contexts(self.context.collect(float("inf"), flush=True))
+            self.history.finish_run(input_rows=self.inputs.rows(), data_start=self.first_t, data_end=self.last_t)
+        return trs
+
+
+def _take(b: SampleBatch, keep: np.ndarray) -> SampleBatch:
+    return SampleBatch(b.tags, b.tag[keep], b.t[keep], b.value[keep], b.quality[keep], b.ref[keep])
