@@ -47,10 +47,11 @@ class ReadProblems:
         kept.extend(nums[: max(0, self.keep - len(kept))])
 
 
-def _open_text(path: Path, mode: str) -> IO[str]:
-    if path.suffix == ".gz":
-        return io.TextIOWrapper(gzip.open(path, mode + "b"), encoding="utf-8", newline="")  # type: ignore[arg-type]
-    return open(path, mode, encoding="utf-8", newline="")
+def _open_text(path: Path, mode: str) -> tuple[IO[str], IO[bytes]]:
+    """Open a (gzip) text file; also return the raw file, whose position tells the progress."""
+    raw = open(path, mode + "b")  # noqa: SIM115
+    inner: IO[bytes] = gzip.GzipFile(fileobj=raw, mode=mode + "b") if path.suffix == ".gz" else raw  # type: ignore[assignment]
+    return io.TextIOWrapper(inner, encoding="utf-8", newline=""), raw
 
 
 def parse_times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -124,18 +125,21 @@ def _parse_values(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
 
 
 def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows: int = 200_000,
-                   problems: ReadProblems | None = None) -> Iterator[SampleBatch]:
+                   problems: ReadProblems | None = None, with_position: bool = False
+                   ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
     """Yield batches of samples from a recording, in file order.
 
     Rows for tags not in ``known_tags`` are counted under ``unknown tag: NAME`` (once
     per tag in the examples); malformed rows under ``malformed``; values that are NaN
     or infinite under ``non-finite value`` (and still yielded, as bad-quality samples).
     ``ref`` of each sample is its line number in the file (header is line 1).
+    With ``with_position``, yields ``(batch, bytes of the file read so far)``.
     """
     path = Path(path)
     problems = problems if problems is not None else ReadProblems()
     index = {name: i for i, name in enumerate(known_tags)}
-    with _open_text(path, "r") as fh:
+    fh, raw = _open_text(path, "r")
+    with raw, fh:
         reader = csv.reader(fh)
         try:
             header = next(reader)
@@ -161,7 +165,8 @@ def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows:
                 rows.append(row)
                 nums.append(reader.line_num)
             if rows:
-                yield _batch(rows, np.array(nums, dtype=np.int64), has_q, index, known_tags, problems)
+                batch = _batch(rows, np.array(nums, dtype=np.int64), has_q, index, known_tags, problems)
+                yield (batch, raw.tell()) if with_position else batch
 
 
 def _batch(rows: list[list[str]], lines: np.ndarray, has_q: bool, index: dict[str, int], known: tuple[str, ...],
@@ -203,7 +208,8 @@ def write_recording(path: str | Path, batches: Iterator[SampleBatch] | list[Samp
     path = Path(path)
     rows = 0
     quality_names = np.array(["good", "uncertain", "bad"])
-    with _open_text(path, "w") as fh:
+    fh, raw = _open_text(path, "w")
+    with raw, fh:
         fh.write(",".join(HEADER) + "\n")
         for b in batches:
             if len(b) == 0:

@@ -128,6 +128,163 @@ def check_config(
     console.print(f"[dim]{SAFETY_NOTE}[/]")
 
 
+@app.command("simulate")
+def simulate_cmd(
+    scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML): speed profile, roll changes, faults.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Recording to write (.csv or .csv.gz).")],
+    time_format: Annotated[str, typer.Option(help="Time column: 'iso' (ISO 8601, UTC) or 'epoch' seconds.")] = "iso",
+    progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+) -> None:
+    """Run the simulated line through a scenario; write the recording and its ground truth (.truth.json)."""
+    from connectors.simline import SimulatedLine, load_scenario
+    from monitor.simulate import simulate_to_file
+
+    try:
+        sc, cfg = load_scenario(scenario)
+        line = load_line(cfg)
+    except ConfigError as exc:
+        fail_config(exc)
+    if time_format not in ("iso", "epoch"):
+        err_console.print(f"--time-format: expected 'iso' or 'epoch', got {time_format!r}")
+        raise typer.Exit(2)
+    sim = SimulatedLine(line, sc)
+    rows, truth_path = simulate_to_file(sim, out, time_format=time_format, progress=progress, console=err_console)
+    console.print(f"wrote {rows} samples ({sc.scenario.duration / 60:.1f} simulated minutes) to {out}; "
+                  f"ground truth in {truth_path}", highlight=False)
+
+
+def _db_url(db: str) -> str:
+    return db if "://" in db else f"sqlite:///{db}"
+
+
+@app.command("replay")
+def replay_cmd(
+    recording: Annotated[Path, typer.Argument(help="Recording (CSV long form: time,tag,value,quality; .gz ok).")],
+    config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration (TOML).")],
+    db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
+    progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+) -> None:
+    """Run a recording through the checks as fast as the CPU allows; alarms go to the history database."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn, TransferSpeedColumn
+
+    from monitor.replay import replay
+
+    line = open_line(config)
+    if not recording.exists():
+        err_console.print(f"{recording}: no such recording")
+        raise typer.Exit(2)
+    bar = Progress(TextColumn("replay"), BarColumn(), TransferSpeedColumn(), TimeRemainingColumn(),
+                   console=err_console, disable=not progress)
+    with bar:
+        task = bar.add_task("replay", total=recording.stat().st_size)
+        try:
+            summary = replay(line, recording, _db_url(db), progress=lambda pos, tot: bar.update(task, completed=pos))
+        except ValueError as exc:
+            err_console.print(str(exc), highlight=False)
+            raise typer.Exit(2) from None
+    console.print(f"replayed {summary.samples} samples, {summary.frames} frames, "
+                  f"{summary.seconds_of_data / 60:.1f} min of data in {summary.wall_seconds:.2f} s "
+                  f"({summary.speedup:.0f}x real time); run {summary.run_id} in {db}", highlight=False)
+    if summary.raised:
+        console.print("alarms raised: " + ", ".join(f"{k} {n}" for k, n in sorted(summary.raised.items())))
+    else:
+        console.print("alarms raised: none")
+    for r in summary.input_rows:
+        refs = ", ".join(str(x) for x in r["refs"][:10])  # type: ignore[index]
+        console.print(f"input: {r['tag']}: {r['count']} x {r['reason']}" + (f" (lines {refs})" if refs else ""),
+                      highlight=False)
+
+
+@app.command("alarms")
+def alarms_cmd(
+    db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
+    run: Annotated[int | None, typer.Option(help="Only this run (default: all runs).")] = None,
+    check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
+    obj: Annotated[str | None, typer.Option("--object", help="Only this roller, zone, winder or tag.")] = None,
+    priority: Annotated[str | None, typer.Option(help="Only this priority: low, medium, high.")] = None,
+    level: Annotated[str | None, typer.Option(help="Only this level: warning or alarm.")] = None,
+    since: Annotated[str | None, typer.Option(help="Raised at or after this ISO 8601 time.")] = None,
+    until: Annotated[str | None, typer.Option(help="Raised before this ISO 8601 time.")] = None,
+    active: Annotated[bool, typer.Option("--active", help="Only alarms not yet cleared.")] = False,
+    fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
+) -> None:
+    """List alarms from a history database, with filters."""
+    import csv
+    import json
+    from datetime import datetime
+
+    from monitor.history import make_engine, query_episodes
+    from monitor.present import fmt_value
+
+    if fmt not in ("table", "csv", "json"):
+        err_console.print(f"--format: expected table, csv or json, got {fmt!r}")
+        raise typer.Exit(2)
+
+    def when(text: str | None, opt: str) -> float | None:
+        if text is None:
+            return None
+        try:
+            dt = datetime.fromisoformat(text)
+        except ValueError:
+            err_console.print(f"{opt}: expected an ISO 8601 time such as 2026-03-02T06:00:00+01:00, got {text!r}")
+            raise typer.Exit(2) from None
+        if dt.tzinfo is None:
+            err_console.print(f"{opt}: expected a time with a UTC offset (e.g. +01:00 or Z), got {text!r}")
+            raise typer.Exit(2)
+        return dt.timestamp()
+
+    url = _db_url(db)
+    if url.startswith("sqlite:///") and not Path(url.removeprefix("sqlite:///")).exists():
+        err_console.print(f"{db}: no such database")
+        raise typer.Exit(2)
+    rows = query_episodes(make_engine(url), run_id=run, kind=check, object_id=obj, priority=priority, level=level,
+                          since=when(since, "--since"), until=when(until, "--until"), active_only=active)
+    cols = ["raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
+            "unit", "line_state", "run", "config_hash"]
+    if fmt == "json":
+        typer.echo(json.dumps([{c: r[c] for c in cols} for r in rows], indent=1))
+    elif fmt == "csv":
+        w = csv.DictWriter(sys.stdout, fieldnames=cols, extrasaction="ignore", lineterminator="\n")
+        w.writeheader()
+        w.writerows(rows)
+    else:
+        t = Table(title=f"{len(rows)} alarm(s)", title_justify="left")
+        for c in ("raised", "cleared", "check", "object", "level", "priority", "value", "peak", "limit", "line state"):
+            t.add_column(c)
+        for r in rows:
+            t.add_row(r["raised"], r["cleared"] or "active", r["check"], r["object"], r["level"], r["priority"],
+                      fmt_value(r["value"], r["unit"]), fmt_value(r["peak"], r["unit"]),
+                      f"{r['limit']:g}", r["line_state"])
+        console.print(t)
+
+
+@app.command("demo")
+def demo_cmd(
+    scenario: Annotated[Path | None, typer.Option(help="Scenario to run (default: the built-in demo).")] = None,
+    speedup: Annotated[float, typer.Option(help="Simulated seconds per wall-clock second.")] = 16.0,
+    duration: Annotated[str | None, typer.Option(help="Stop after this much simulated time, e.g. '2 min'.")] = None,
+    db: Annotated[Path | None, typer.Option(help="Keep the alarm history in this SQLite file.")] = None,
+    pace: Annotated[bool, typer.Option(help="Pace against the wall clock (off: as fast as possible).")] = True,
+) -> None:
+    """Watch a simulated line raise traction, roll-build and sensor alarms as they happen (no arguments needed)."""
+    from monitor.demo import run_demo
+
+    dur = None
+    if duration is not None:
+        try:
+            dur = U.to_si(duration, U.TIME)
+        except U.UnitError as exc:
+            err_console.print(f"--duration: {exc}")
+            raise typer.Exit(2) from None
+    if speedup <= 0:
+        err_console.print(f"--speedup: expected a positive number, got {speedup}")
+        raise typer.Exit(2)
+    try:
+        run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace)
+    except ConfigError as exc:
+        fail_config(exc)
+
+
 def main() -> None:
     """Console-script entry point."""
     try:

@@ -182,13 +182,21 @@ class Pipeline:
             return []
         return self.advance(self.last_t - self.lag)
 
-    def finish(self) -> list[Transition]:
-        """Compute the remaining frames, write pending contexts and the input summary."""
-        trs = self.advance(self.last_t) if self.last_t is not None else []
+    def finish_frames(self) -> list[Transition]:
+        """Compute the frames still held back by the alignment lag (end of a recording)."""
+        return self.advance(self.last_t) if self.last_t is not None else []
+
+    def finish_history(self) -> None:
+        """Write pending context windows and the input summary; close the run."""
         if self.history is not None:
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float("inf"), flush=True))
             self.history.finish_run(input_rows=self.inputs.rows(), data_start=self.first_t, data_end=self.last_t)
+
+    def finish(self) -> list[Transition]:
+        """End of input: compute the remaining frames, then close the run in the history."""
+        trs = self.finish_frames()
+        self.finish_history()
         return trs
 
 

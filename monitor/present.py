@@ -1,0 +1,57 @@
+"""How alarms and values read to a person: units of the trade, ISO times, one line per transition."""
+
+from __future__ import annotations
+
+import math
+
+from monitor.alarms import Transition
+from monitor.history import state_name
+
+PRIORITY_STYLE = {"high": "bold red", "medium": "yellow", "low": "cyan"}
+
+
+def fmt_value(value: float | None, unit: str) -> str:
+    """A check value in its unit: ``%`` scales by 100; ``flag`` shows nothing; ``x band`` a multiple."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    if unit.startswith("%"):
+        return f"{value * 100:.2f} {unit}"
+    if unit == "flag":
+        return "on" if value >= 0.5 else "off"
+    if unit == "x band":
+        return f"{value:+.2f} x band"
+    return f"{value:.3f} {unit}"
+
+
+def fmt_limit(limit: float, unit: str, direction: str) -> str:
+    op = {"high": ">=", "low": "<=", "abs": "|x| >="}[direction]
+    if unit.startswith("%"):
+        return f"{op} {limit * 100:g} %"
+    if unit == "flag":
+        return ""
+    return f"{op} {limit:g}"
+
+
+def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
+    """One line describing a transition and the rich style to print it with."""
+    p = tr.point
+    clock = _clock(tr.t)
+    rel = f" (+{_mmss(tr.t - t0)})" if t0 is not None else ""
+    verb = "RAISE" if tr.event == "raise" else "clear"
+    value = fmt_value(tr.value if tr.event == "raise" else tr.peak, p.unit)
+    what = "value" if tr.event == "raise" else "peak"
+    text = (f"{clock}{rel}  {verb:5}  {p.priority:6}  {p.kind:14} {p.object_id:22} {p.level:7}  "
+            f"{what} {value} (limit {fmt_limit(p.limit, p.unit, p.direction)})  [{state_name(tr.line_state)}]")
+    style = PRIORITY_STYLE.get(p.priority, "") if tr.event == "raise" else "dim"
+    return text, style
+
+
+def _clock(t: float) -> str:
+    from datetime import UTC, datetime
+
+    return datetime.fromtimestamp(t, UTC).strftime("%H:%M:%S.%f")[:-4] + "Z"
+
+
+def _mmss(seconds: float) -> str:
+    s = max(0, int(seconds))
+    return f"{s // 60:02d}:{s % 60:02d}"
