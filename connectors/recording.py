@@ -7,13 +7,13 @@
   counted, and enter the pipeline as bad-quality samples.
 * ``quality``: ``good``, ``uncertain`` or ``bad`` (or 0, 1, 2); empty means good.
 
-A header row is required. Rows are read in chunks; a row that cannot be read is
+A header row is required; fields are separated by commas and not quoted (tag names
+cannot contain commas). Rows are read in chunks; a row that cannot be read is
 counted with its line number and skipped, never fatal.
 """
 
 from __future__ import annotations
 
-import csv
 import gzip
 import io
 from collections.abc import Iterator
@@ -140,60 +140,80 @@ def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows:
     index = {name: i for i, name in enumerate(known_tags)}
     fh, raw = _open_text(path, "r")
     with raw, fh:
-        reader = csv.reader(fh)
-        try:
-            header = next(reader)
-        except StopIteration:
+        first = fh.readline()
+        if not first:
             return
-        header = [h.strip().lower() for h in header]
+        header = [h.strip().strip('"').lower() for h in first.rstrip("\r\n").split(",")]
         if header[:3] != list(HEADER[:3]):
             raise ValueError(f"{path}: line 1: expected the header 'time,tag,value,quality', got {','.join(header)!r}")
         has_q = len(header) >= 4 and header[3] == "quality"
-        done = False
-        while not done:
-            rows: list[list[str]] = []
-            nums: list[int] = []
-            while len(rows) < chunk_rows:
-                try:
-                    row = next(reader)
-                except StopIteration:
-                    done = True
-                    break
-                except csv.Error:
-                    problems.add("malformed", [reader.line_num])
-                    continue
-                rows.append(row)
-                nums.append(reader.line_num)
-            if rows:
-                batch = _batch(rows, np.array(nums, dtype=np.int64), has_q, index, known_tags, problems)
-                yield (batch, raw.tell()) if with_position else batch
+        line_no = 1
+        hint = chunk_rows * 48  # bytes: about chunk_rows rows of this format
+        while True:
+            try:
+                lines = fh.readlines(hint)
+            except UnicodeDecodeError:
+                problems.add("malformed", [line_no + 1])
+                break
+            if not lines:
+                break
+            nums = np.arange(line_no + 1, line_no + 1 + len(lines), dtype=np.int64)
+            line_no += len(lines)
+            cols, kept, malformed = _columns(lines, 4 if has_q else 3, nums)
+            batch = _batch(cols, kept, malformed, index, known_tags, problems)
+            yield (batch, raw.tell()) if with_position else batch
 
 
-def _batch(rows: list[list[str]], lines: np.ndarray, has_q: bool, index: dict[str, int], known: tuple[str, ...],
-           problems: ReadProblems) -> SampleBatch:
-    width = 4 if has_q else 3
-    shaped = [len(r) == width or (len(r) == 3 and has_q) for r in rows]
-    shape_ok = np.array(shaped, dtype=bool)
-    if not shape_ok.all():
-        problems.add("malformed", lines[~shape_ok])
-        rows = [r for r, ok in zip(rows, shaped, strict=True) if ok]
-        lines = lines[shape_ok]
+def _columns(lines: list[str], width: int, nums: np.ndarray) -> tuple[list[list[str]], np.ndarray, np.ndarray]:
+    """Split lines into ``width`` columns; returns (columns, line numbers kept, line numbers malformed).
+
+    Fast path: one split of the whole chunk when every line has ``width`` fields.
+    Otherwise per line: rows with the wrong number of fields are counted as malformed
+    (a 3-field row where a quality column exists is fine: quality empty, i.e. good).
+    """
+    text = "".join(lines).replace("\r\n", "\n")
+    fields = text.replace("\n", ",").split(",")
+    if text.endswith("\n") and len(fields) == width * len(lines) + 1:
+        return [fields[k:-1:width] for k in range(width)], nums, nums[:0]
+    rows = [ln.rstrip("\r\n").split(",") for ln in lines]
+    ok = np.array([len(r) == width or (width == 4 and len(r) == 3) for r in rows], dtype=bool)
+    rows = [r if len(r) == width else [*r, ""] for r, good in zip(rows, ok, strict=True) if good]
     if not rows:
+        return [[] for _ in range(width)], nums[ok], nums[~ok]
+    return [list(c) for c in zip(*rows, strict=True)], nums[ok], nums[~ok]
+
+
+def _batch(cols: list[list[str]], lines: np.ndarray, bad_shape: np.ndarray, index: dict[str, int],
+           known: tuple[str, ...], problems: ReadProblems) -> SampleBatch:
+    malformed = [bad_shape]
+    if not cols[0]:
+        problems.add("malformed", np.sort(np.concatenate(malformed)))
         return SampleBatch.empty(known)
-    times, t_ok = parse_times([r[0] for r in rows])
-    tags = [r[1].strip() for r in rows]
-    vals, v_ok = _parse_values([r[2] for r in rows])
-    qual = np.array([_QUALITY_WORDS.get(r[3].strip().lower() if len(r) > 3 else "", -1) for r in rows], dtype=np.int8)
-    tag_idx = np.array([index.get(t, -1) for t in tags], dtype=np.int32)
-    bad = ~t_ok | ~v_ok | (qual < 0) | np.array([t == "" for t in tags])
-    if bad.any():
-        problems.add("malformed", lines[bad])
+    rows_n = len(cols[0])
+    times, t_ok = parse_times(list(cols[0]))
+    vals, v_ok = _parse_values(list(cols[2]))
+    # tags and quality words repeat: look each distinct string up once
+    raw_tags, tag_inv = np.unique(np.asarray(cols[1], dtype=object).astype(str), return_inverse=True)
+    names = np.array([t.strip().strip('"') for t in raw_tags], dtype=object)
+    tag_idx = np.array([index.get(t, -1) for t in names], dtype=np.int32)[tag_inv]
+    empty_tag = np.array([t == "" for t in names], dtype=bool)[tag_inv]
+    tags = names[tag_inv]
+    if len(cols) > 3:
+        raw_q, q_inv = np.unique(np.asarray(cols[3], dtype=object).astype(str), return_inverse=True)
+        qual = np.array([_QUALITY_WORDS.get(q.strip().lower(), -1) for q in raw_q], dtype=np.int8)[q_inv]
+    else:
+        qual = np.zeros(rows_n, dtype=np.int8)
+    bad = ~t_ok | ~v_ok | (qual < 0) | empty_tag
+    malformed.append(lines[bad])
+    problems.add("malformed", np.sort(np.concatenate(malformed)))  # in file order
     unknown = (tag_idx < 0) & ~bad
     if unknown.any():
         for name in sorted({tags[i] for i in np.flatnonzero(unknown)}):
-            sel = unknown & np.array([t == name for t in tags])
-            problems.add(f"unknown tag: {name}", lines[sel][:1])
-            problems.counts[f"unknown tag: {name}"] += int(sel.sum()) - 1
+            sel = unknown & (tags == name)
+            reason = f"unknown tag: {name}"
+            first = [] if reason in problems.lines else lines[sel][:1]  # one example per file
+            problems.add(reason, first)
+            problems.counts[reason] = problems.counts.get(reason, 0) + int(sel.sum()) - len(first)
     keep = ~bad & ~unknown
     nonfinite = keep & ~np.isfinite(vals)
     if nonfinite.any():

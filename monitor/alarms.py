@@ -51,7 +51,8 @@ class _State:
     cond: bool = False
     since: float = -np.inf  # time the condition took its current value
     active: bool = False
-    peak: float = float("nan")
+    peak: float = float("nan")  # largest severity of the episode
+    peak_value: float = float("nan")  # the check value (with its sign) at that severity
 
 
 class AlarmEngine:
@@ -109,7 +110,7 @@ class AlarmEngine:
                 if ready.size:
                     k += int(ready[0])
                     st.active = True
-                    st.peak = float(x[k]) if np.isfinite(x[k]) else float("nan")
+                    st.peak = st.peak_value = float("nan")
                     out.append(Transition(float(t[k]), p, "raise", float(res.value[k]), int(line_state[k])))
                     seg_start = k
             if st.active:
@@ -120,23 +121,21 @@ class AlarmEngine:
                         k = a + int(np.searchsorted(t[a:b], due - 1e-9))
                         hi = k
                         st.active = False
-                        self._track_peak(st, x[seg_start:hi])
+                        self._track_peak(st, x[seg_start:hi], res.value[seg_start:hi])
                         out.append(Transition(float(t[k]), p, "clear", float(res.value[k]), int(line_state[k]),
-                                              peak=self._signed(st.peak, p)))
+                                              peak=st.peak_value))
                         continue
-                self._track_peak(st, x[seg_start:hi])
+                self._track_peak(st, x[seg_start:hi], res.value[seg_start:hi])
         return out
 
     @staticmethod
-    def _track_peak(st: _State, xs: np.ndarray) -> None:
-        fin = xs[np.isfinite(xs)]
-        if fin.size:
-            m = float(fin.max())
-            st.peak = m if not np.isfinite(st.peak) else max(st.peak, m)
-
-    @staticmethod
-    def _signed(peak: float, p: AlarmPoint) -> float:
-        return -peak if p.direction == "low" else peak
+    def _track_peak(st: _State, xs: np.ndarray, values: np.ndarray) -> None:
+        """Keep the most abnormal severity of the episode and the signed check value it came from."""
+        fin = np.isfinite(xs)
+        if fin.any():
+            i = int(np.argmax(np.where(fin, xs, -np.inf)))
+            if not np.isfinite(st.peak) or xs[i] > st.peak:
+                st.peak, st.peak_value = float(xs[i]), float(values[i])
 
 
 def severity(value: np.ndarray, direction: str) -> np.ndarray:

@@ -124,11 +124,14 @@ class Pipeline:
                 for c in np.unique(col[flagged]):
                     self.inputs.add(self.names[c], reason, ref[flagged & (col == c)])
         refused = self.aligner.push(col, t, v, q)
+        accepted = np.ones(t.size, dtype=bool)
         for reason, mask in refused.items():
             if mask.any():
                 for c in np.unique(col[mask]):
                     self.inputs.add(self.names[c], reason, ref[mask & (col == c)])
-        self.samples += int(t.size)
+                if reason != "late":
+                    accepted &= ~mask
+        self.samples += int(accepted.sum())
         if t.size:
             lo, hi = float(np.min(t)), float(np.max(t))
             self.first_t = lo if self.first_t is None else min(self.first_t, lo)

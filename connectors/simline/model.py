@@ -93,7 +93,8 @@ class SimulatedLine:
         stack = truth.stack_factor if truth.stack_factor is not None else mat.stack_factor
         self.caliper = mat.caliper * stack
         ini = scenario.initial
-        # plant state
+        # plant state (time counted in whole steps so it never drifts)
+        self.steps = 0
         self.t = 0.0
         self.v_ref = scenario.speed[0].to if scenario.speed and scenario.speed[0].at == 0 else 0.0
         self.v_target = self.v_ref
@@ -249,7 +250,8 @@ class SimulatedLine:
         self.phase_r = (self.phase_r + 2.0 * v_r / d_r * dt) % (2.0 * math.pi)
         self._w = w
         self._v_u_surface = v_u_surface
-        self.t += dt
+        self.steps += 1
+        self.t = self.steps * dt
 
     def _undercount(self, tag: str | None) -> float:
         if tag is None:
@@ -349,7 +351,7 @@ class SimulatedLine:
 
     def advance(self, seconds: float) -> SampleBatch:
         """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit)."""
-        steps = max(0, round(seconds / self.dt))
+        steps = max(1, round(seconds / self.dt)) if seconds > 0 else 0
         tag_idx: list[int] = []
         times: list[float] = []
         values: list[float] = []
