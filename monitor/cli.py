@@ -44,7 +44,8 @@ def _root() -> None:
 
 def fail_config(exc: ConfigError) -> None:
     """Print a configuration error and exit with status 2."""
-    err_console.print(f"[bold red]configuration error[/]\n{exc}", highlight=False, markup=True)
+    err_console.print("configuration error", style="bold red")
+    err_console.print(str(exc), highlight=False, markup=False)
     raise typer.Exit(code=2)
 
 

@@ -135,8 +135,10 @@ def to_si(value: object, kind: Kind, *, default_unit: str | None = None) -> floa
         q = UREG.Quantity(text)
     except Exception as exc:
         raise UnitError(f"expected {kind.name} such as {kind.example}, got {value!r}") from exc
-    if not isinstance(q, pint.Quantity):  # a bare number inside a string
+    if not isinstance(q, pint.Quantity):
         q = UREG.Quantity(float(q), "")
+    if str(q.units) == "dimensionless" and kind is not DIMENSIONLESS:  # a bare number inside a string
+        raise UnitError(f"expected {kind.name} with a unit such as {kind.example}, got the bare number {value!r}")
     try:
         if kind is ROTATION and _unit_is_hertz(q):
             si = float(q.magnitude) * _hertz_scale(q)

@@ -20,7 +20,7 @@ from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, com
 def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:
     """Revolutions per second of a roll or roller: ``f1 = V / (pi D)``; NaN where D <= 0."""
     v, d = np.asarray(speed, dtype=float), np.asarray(diameter, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         f = np.abs(v) / (np.pi * d)
     return np.where(d > 0, f, np.nan)
 
@@ -34,16 +34,19 @@ def goertzel(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
 
     Source: G. Goertzel, "An algorithm for the evaluation of finite trigonometric
     series", Amer. Math. Monthly 65(1):34-35, 1958.
+
+    NaN (no exception) where w is not finite (fs = 0, freq infinite, or either NaN).
     """
     x = np.asarray(x, dtype=float)
-    w = 2.0 * np.pi * freq / fs
-    coeff = 2.0 * np.cos(w)
-    s1 = np.zeros(x.shape[:-1])
-    s2 = np.zeros(x.shape[:-1])
-    for k in range(x.shape[-1]):
-        s0 = x[..., k] + coeff * s1 - s2
-        s2, s1 = s1, s0
-    return np.exp(1j * w) * s1 - s2
+    with np.errstate(all="ignore"):
+        w = 2.0 * np.pi * np.float64(freq) / np.float64(fs)
+        coeff = 2.0 * np.cos(w)
+        s1 = np.zeros(x.shape[:-1])
+        s2 = np.zeros(x.shape[:-1])
+        for k in range(x.shape[-1]):
+            s0 = x[..., k] + coeff * s1 - s2
+            s2, s1 = s1, s0
+        return np.exp(1j * w) * s1 - s2
 
 
 def sinusoid_amplitude(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
@@ -53,8 +56,9 @@ def sinusoid_amplitude(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
     0.5
     """
     x = np.asarray(x, dtype=float)
-    x = x - x.mean(axis=-1, keepdims=True)
-    return 2.0 * np.abs(goertzel(x, freq, fs)) / x.shape[-1]
+    with np.errstate(all="ignore"):
+        x = x - x.mean(axis=-1, keepdims=True)
+        return 2.0 * np.abs(goertzel(x, freq, fs)) / x.shape[-1]
 
 
 def order_amplitude(x: ArrayLike, phase: ArrayLike) -> float:
@@ -66,8 +70,9 @@ def order_amplitude(x: ArrayLike, phase: ArrayLike) -> float:
     """
     x = np.asarray(x, dtype=float)
     p = np.asarray(phase, dtype=float)
-    xm = x - x.mean()
-    return float(2.0 * np.abs(np.sum(xm * np.exp(-1j * p))) / x.size)
+    with np.errstate(all="ignore"):
+        xm = x - x.mean()
+        return float(2.0 * np.abs(np.sum(xm * np.exp(-1j * p))) / x.size)
 
 
 DEFAULTS = AlarmDefaults(
@@ -109,7 +114,7 @@ class RunoutCheck:
         self.tension = f"tension/{zone}"
         self.rotation = rotation
         self.diameter = diameter
-        self.inputs = tuple(x for x in (self.tension, rotation, diameter, "speed/web") if x)
+        self.inputs = (self.tension, rotation) if rotation else (self.tension, diameter or "", "speed/web")
         self.fs = frame_rate
         self.revs = revolutions
         self.min_tension = min_tension
@@ -131,10 +136,15 @@ class RunoutCheck:
         ten = block.signal(self.tension)
         f1, okf = self._rev_per_s(block)
         dt = 1.0 / self.fs
-        step = np.where(okf & np.isfinite(f1), 2.0 * np.pi * f1 * dt, 0.0)
+        # The roll must turn: a window of whole revolutions must fit in the frames kept.
+        f_min = self.revs * self.fs / (self.max_frames - 1)
+        with np.errstate(invalid="ignore"):
+            turning = okf & np.isfinite(f1) & (f1 >= f_min)
+        with np.errstate(all="ignore"):
+            step = np.where(turning, 2.0 * np.pi * f1 * dt, 0.0)
         phase = self._phase0 + np.cumsum(step)
         self._phase0 = float(phase[-1]) if n else self._phase0
-        ok = ten.ok & okf & np.isfinite(ten.value)
+        ok = ten.ok & turning & np.isfinite(ten.value)
         xs = np.concatenate([self._tail_x, np.where(ok, ten.value, 0.0)])
         ps = np.concatenate([self._tail_p, phase])
         oks = np.concatenate([self._tail_ok, ok])
@@ -155,7 +165,8 @@ class RunoutCheck:
             rel = amp / mean
         full = (start > 0) | (ps[0] <= ps[m:] - self.revs * 2.0 * np.pi)
         window_ok = (cbad[end] - cbad[start]) == 0
-        undersampled = f1 > self.fs / 4.0
+        with np.errstate(invalid="ignore"):
+            undersampled = f1 > self.fs / 4.0
         keep = min(self.max_frames, xs.shape[0])
         self._tail_x, self._tail_p, self._tail_ok = xs[-keep:], ps[-keep:], oks[-keep:]
         # Keep the stored phase small so exp() stays accurate after days of running.
@@ -166,8 +177,8 @@ class RunoutCheck:
         reason = combine_reasons(
             (~block.in_states((LineState.RUNNING, LineState.ACCELERATING, LineState.DECELERATING)),
              Reason.LINE_STATE),
-            (~(ten.ok & okf), Reason.INPUT_BAD),
-            (undersampled | (mean < self.min_tension), Reason.OUT_OF_DOMAIN),
+            (~(ten.ok & okf & np.isfinite(ten.value) & ~np.isnan(f1)), Reason.INPUT_BAD),
+            (~turning | undersampled | ~(mean >= self.min_tension), Reason.OUT_OF_DOMAIN),
             (~(full & window_ok) | (count > self.max_frames - 1), Reason.WARMING_UP),
             n=n,
         )

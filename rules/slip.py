@@ -25,7 +25,8 @@ def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:
     >>> round(float(surface_speed(1.0, 0.1)), 4)
     0.3142
     """
-    return np.pi * np.asarray(diameter, dtype=float) * np.asarray(rev_per_s, dtype=float)
+    with np.errstate(all="ignore"):
+        return np.pi * np.asarray(diameter, dtype=float) * np.asarray(rev_per_s, dtype=float)
 
 
 def slip_ratio(v_roller: ArrayLike, v_web: ArrayLike, draw: ArrayLike = 0.0, min_speed: float = 0.0) -> np.ndarray:
@@ -33,17 +34,17 @@ def slip_ratio(v_roller: ArrayLike, v_web: ArrayLike, draw: ArrayLike = 0.0, min
 
     ``draw`` is the roller's commanded speed offset relative to the web-speed reference
     (0.002 for +0.2 %). Positive s: the roller surface runs ahead of the web. NaN where
-    |V_web| <= min_speed or an input is not finite.
+    |V_web| <= min_speed or an input (or the expected speed) is not finite.
 
     >>> round(float(slip_ratio(1.02, 1.0)), 4)
     0.02
     """
     vr = np.asarray(v_roller, dtype=float)
     vw = np.asarray(v_web, dtype=float)
-    expected = vw * (1.0 + np.asarray(draw, dtype=float))
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
+        expected = vw * (1.0 + np.asarray(draw, dtype=float))
         s = vr / expected - 1.0
-    ok = (np.abs(vw) > min_speed) & np.isfinite(s)
+        ok = (np.abs(vw) > min_speed) & np.isfinite(s) & np.isfinite(vw) & np.isfinite(vr) & np.isfinite(expected)
     return np.where(ok, s, np.nan)
 
 

@@ -29,7 +29,8 @@ def span_tension_rate(t2: ArrayLike, t1: ArrayLike, v1: ArrayLike, v2: ArrayLike
     """
     t2, t1 = np.asarray(t2, dtype=float), np.asarray(t1, dtype=float)
     v1, v2 = np.asarray(v1, dtype=float), np.asarray(v2, dtype=float)
-    return (np.asarray(et, dtype=float) * (v2 - v1) + v1 * t1 - v2 * t2) / np.asarray(length, dtype=float)
+    with np.errstate(all="ignore"):
+        return (np.asarray(et, dtype=float) * (v2 - v1) + v1 * t1 - v2 * t2) / np.asarray(length, dtype=float)
 
 
 def steady_span_tension(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike) -> np.ndarray:
@@ -43,7 +44,7 @@ def steady_span_tension(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLi
     """
     t1 = np.asarray(t1, dtype=float)
     v1, v2 = np.asarray(v1, dtype=float), np.asarray(v2, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         t2 = (np.asarray(et, dtype=float) * (v2 - v1) + v1 * t1) / v2
     return np.where((v2 > 0) & np.isfinite(t2), t2, np.nan)
 
@@ -57,7 +58,8 @@ def draw_for_tension(t1: ArrayLike, t2: ArrayLike, et: ArrayLike) -> np.ndarray:
     1.001
     """
     et = np.asarray(et, dtype=float)
-    return (et - np.asarray(t1, dtype=float)) / (et - np.asarray(t2, dtype=float))
+    with np.errstate(all="ignore"):
+        return (et - np.asarray(t1, dtype=float)) / (et - np.asarray(t2, dtype=float))
 
 
 def draw_band(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike, *, modulus_tol: float,
@@ -68,10 +70,10 @@ def draw_band(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike, *, mod
     uncertainty ``Et * ratio_tol``; the two load-cell accuracies (T1 scaled by V1 / V2).
     """
     v1, v2, et = np.asarray(v1, dtype=float), np.asarray(v2, dtype=float), np.asarray(et, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(all="ignore"):
         e_mod = modulus_tol * et * (v2 - v1) / v2
         e_t1 = np.asarray(t1_acc, dtype=float) * v1 / v2
-    return np.sqrt(e_mod**2 + (et * ratio_tol) ** 2 + e_t1**2 + np.asarray(t2_acc, dtype=float) ** 2)
+        return np.sqrt(e_mod**2 + (et * ratio_tol) ** 2 + e_t1**2 + np.asarray(t2_acc, dtype=float) ** 2)
 
 
 DEFAULTS = AlarmDefaults(

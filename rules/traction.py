@@ -173,10 +173,12 @@ class NoDriveCheck:
 
     def update(self, block: Block) -> CheckResult:
         up, down = block.signal(self.t_up), block.signal(self.t_down)
-        flag = (np.fmax(up.value, down.value) < self.min_t).astype(float)
+        finite = np.isfinite(up.value) & np.isfinite(down.value)
+        with np.errstate(invalid="ignore"):
+            flag = (np.maximum(up.value, down.value) < self.min_t).astype(float)
         reason = combine_reasons(
             (~block.in_states(PRODUCTION_STATES), Reason.LINE_STATE),
-            (~(up.ok & down.ok), Reason.INPUT_BAD),
+            (~(up.ok & down.ok & finite), Reason.INPUT_BAD),
             n=block.n,
         )
         return finalise(flag, reason)

@@ -226,7 +226,9 @@ class RollDiameterCheck:
         d, ln = block.signal(self.d_name), block.signal(self.l_name)
         starts = block.roll_start.get(self.object_id, np.zeros(n, dtype=bool))
         settling = block.roll_settling.get(self.object_id, np.zeros(n, dtype=bool))
-        usable = d.ok & ln.ok & ~settling & (d.value > 0)
+        finite = np.isfinite(d.value) & np.isfinite(ln.value)
+        with np.errstate(invalid="ignore"):
+            usable = d.ok & ln.ok & finite & ~settling & (d.value > 0)
         value = np.full(n, np.nan)
         resid = np.full(n, np.nan)
         band = np.full(n, np.nan)
@@ -235,13 +237,16 @@ class RollDiameterCheck:
         # Split at roll starts; each segment continues the state of the one before it.
         cuts = np.flatnonzero(starts)
         bounds = [0, *[int(c) for c in cuts if c > 0], n]
-        for lo, hi in itertools.pairwise(bounds):
-            if starts[lo]:
-                self._reset()
-            self._segment(slice(lo, hi), block.t, d.value, ln.value, usable, value, resid, band, t_eff, warming)
+        with np.errstate(all="ignore"):  # huge but finite inputs give inf, marked invalid by finalise
+            for lo, hi in itertools.pairwise(bounds):
+                if starts[lo]:
+                    self._reset()
+                self._segment(slice(lo, hi), block.t, d.value, ln.value, usable, value, resid, band, t_eff,
+                              warming)
         reason = combine_reasons(
             (settling, Reason.ROLL_CHANGE),
-            (~(d.ok & ln.ok), Reason.INPUT_BAD),
+            (~(d.ok & ln.ok & finite), Reason.INPUT_BAD),
+            (~usable, Reason.OUT_OF_DOMAIN),
             (warming, Reason.WARMING_UP),
             n=n,
         )
@@ -325,11 +330,13 @@ class SpeedDiameterCheck:
         with np.errstate(invalid="ignore", divide="ignore"):
             rel = d / d_speed - 1.0
         settling = block.roll_settling.get(self.object_id, np.zeros(block.n, dtype=bool))
+        with np.errstate(invalid="ignore"):
+            no_roll = (np.abs(rot) < self.min_n) | ~(d > 0)
         reason = combine_reasons(
             (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
             (settling, Reason.ROLL_CHANGE),
             (~(okd & okn & okv), Reason.INPUT_BAD),
-            (np.abs(rot) < self.min_n, Reason.OUT_OF_DOMAIN),
+            (no_roll, Reason.OUT_OF_DOMAIN),
             n=block.n,
         )
         return finalise(rel, reason, diameter_speed=d_speed)

@@ -1,0 +1,223 @@
+"""Wound-roll geometry and winding tension (pure functions of rules/woundroll.py).
+
+Expectations come from independent computations written out here (a wrap-by-wrap sum of
+circumferences, numerical quadrature with scipy) and from physical identities.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+from scipy.integrate import quad
+
+from rules.woundroll import (
+    diameter_from_speed,
+    effective_caliper,
+    taper_tension,
+    unwound_diameter,
+    wound_diameter,
+    wound_length,
+    wound_on_tension,
+)
+
+# --- hostile-input helpers (any float, including NaN, +-inf, 0, -0, subnormals) -------------
+
+ANY_FLOAT = st.floats(allow_nan=True, allow_infinity=True)
+N_FUZZ = 7
+
+
+def any_array():
+    return arrays(np.float64, N_FUZZ, elements=ANY_FLOAT)
+
+
+SPECIAL = np.array([np.nan, np.inf, -np.inf, 0.0, -0.0, -1.0, 1.0, 0.3, 1e308, -1e308, 5e-324, 1e-300, 1e300])
+
+
+def special_grid(k, rows=4000, seed=1):
+    """k columns of rows drawn from SPECIAL: covers most pairs of special values deterministically."""
+    rng = np.random.default_rng(seed)
+    return [SPECIAL[rng.integers(0, SPECIAL.size, rows)] for _ in range(k)]
+
+
+def nan_or(out, ok):
+    return bool(np.all(np.isnan(out) | ok))
+
+
+# --- wound length against independent computations ------------------------------------------
+
+
+def wrap_by_wrap_length(core, caliper, wraps):
+    """Sum of the mid-line circumferences of N concentric wraps: sum_k pi (Dc + (2k + 1) t)."""
+    k = np.arange(wraps, dtype=float)
+    return float(np.sum(np.pi * (core + (2 * k + 1) * caliper)))
+
+
+@pytest.mark.parametrize(("core", "caliper", "wraps"), [
+    (0.0762, 25.4e-6, 18185),   # 3 in core, 1 mil film, about a 1 m roll
+    (0.1524, 30.48e-6 * 1.04, 9000),  # 6 in core, 1.2 mil BOPP with a 4 % stack factor
+    (0.0762, 100e-6, 500),      # board-like caliper, small roll
+    (0.3, 12e-6, 1),            # a single wrap
+])
+def test_wound_length_equals_wrap_by_wrap_sum(core, caliper, wraps):
+    # Independent computation: N = (D - Dc) / (2 t) wraps, each adds its mid-line circumference.
+    diameter = core + 2 * caliper * wraps
+    assert float(wound_length(diameter, core, caliper)) == pytest.approx(
+        wrap_by_wrap_length(core, caliper, wraps), rel=1e-9)
+
+
+@pytest.mark.parametrize(("diameter", "core", "caliper"), [(1.0, 0.0762, 25.4e-6), (0.7, 0.0762, 31.7e-6),
+                                                            (1.8, 0.15, 150e-6)])
+def test_wound_length_equals_quadrature(diameter, core, caliper):
+    # dL = pi D dD / (2 t): each wrap of circumference pi D adds 2 t to the diameter; integrate with scipy.
+    length, _ = quad(lambda d: np.pi * d / (2 * caliper), core, diameter)
+    assert float(wound_length(diameter, core, caliper)) == pytest.approx(length, rel=1e-9)
+
+
+def test_wound_length_worked_value():
+    # Independent: a 1 m roll of 1 mil (25.4 um, exact) film on a 3 in (76.2 mm) core holds about 30.74 km.
+    expected = wrap_by_wrap_length(0.0762, 25.4e-6, round((1.0 - 0.0762) / (2 * 25.4e-6)))
+    assert float(wound_length(1.0, 0.0762, 25.4e-6)) == pytest.approx(expected, rel=1e-4)
+    assert 30_700 < float(wound_length(1.0, 0.0762, 25.4e-6)) < 30_800
+
+
+def test_wound_length_nan_without_positive_caliper():
+    assert np.all(np.isnan(wound_length(1.0, 0.0762, [0.0, -1e-6, np.nan])))
+
+
+def test_unwind_consistent_with_quadrature():
+    # Unwind from D0: after paying out L the diameter D satisfies L = integral_D^D0 pi D' / (2 t) dD'.
+    d0, t = 0.9, 31.7e-6
+    for paid_out in (1.0, 500.0, 5000.0, 15000.0):
+        d = float(unwound_diameter(paid_out, d0, t))
+        length, _ = quad(lambda x: np.pi * x / (2 * t), d, d0)
+        assert length == pytest.approx(paid_out, rel=1e-9)
+    # Asking for more web than the roll holds has no diameter.
+    full = float(wound_length(d0, 0.0, t))
+    assert np.isnan(unwound_diameter(full * 1.01, d0, t))
+
+
+def test_wound_diameter_grows_by_two_calipers_per_wrap():
+    # One wrap around diameter D adds pi (D + t) of web (mid-line) and 2 t to the diameter.
+    core, t = 0.0762, 50e-6
+    d = float(wound_diameter(np.pi * (core + t), core, t))
+    assert d == pytest.approx(core + 2 * t, rel=1e-12)
+
+
+@settings(max_examples=200)
+@given(core=st.floats(0.02, 0.5), caliper=st.floats(1e-6, 1e-3), build=st.floats(1e-4, 1.5))
+def test_wound_length_and_diameter_are_inverses(core, caliper, build):
+    diameter = core + build
+    length = float(wound_length(diameter, core, caliper))
+    assert float(wound_diameter(length, core, caliper)) == pytest.approx(diameter, rel=1e-9)
+    # unwinding the same length from the full roll returns to the core
+    assert float(unwound_diameter(length, diameter, caliper)) == pytest.approx(core, rel=1e-6, abs=1e-9)
+    # and the secant caliper of the two diameters recovers t
+    assert float(effective_caliper(diameter, core, length)) == pytest.approx(caliper, rel=1e-9)
+    assert float(effective_caliper(core, diameter, length)) == pytest.approx(caliper, rel=1e-9)
+
+
+@settings(max_examples=200)
+@given(core=st.floats(0.02, 0.5), caliper=st.floats(1e-6, 1e-3), length=st.floats(0.0, 1e5))
+def test_wound_diameter_then_length_roundtrip(core, caliper, length):
+    d = float(wound_diameter(length, core, caliper))
+    assume(d > core * (1 + 1e-6))  # below this the difference of squares loses the digits
+    assert float(wound_length(d, core, caliper)) == pytest.approx(length, rel=1e-6)
+
+
+def test_effective_caliper_from_wrap_sum():
+    # Independent: length from the wrap-by-wrap sum; the caliper recovered from the two diameters.
+    core, t, wraps = 0.0762, 28e-6, 4000
+    d = core + 2 * t * wraps
+    assert float(effective_caliper(d, core, wrap_by_wrap_length(core, t, wraps))) == pytest.approx(t, rel=1e-9)
+    assert np.all(np.isnan(effective_caliper(d, core, [0.0, -1.0, np.nan])))
+
+
+# --- diameter from speed -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("speed", "rps", "diameter"), [
+    (5.0, 2.0, 5.0 / (2.0 * math.pi)),        # 300 m/min at 120 rpm
+    (1000 * 0.3048 / 60, 100 / 60, 0.3048 * 1000 / 100 / math.pi),  # 1000 fpm at 100 rpm: 10 ft per turn
+    (-5.0, -2.0, 5.0 / (2.0 * math.pi)),      # reverse running
+])
+def test_diameter_from_speed(speed, rps, diameter):
+    # Independent: circumference = web advanced per revolution = V / n, and D = circumference / pi.
+    assert float(diameter_from_speed(speed, rps)) == pytest.approx(diameter, rel=1e-12)
+
+
+def test_diameter_from_speed_nan_when_roll_stands_still():
+    assert np.all(np.isnan(diameter_from_speed([5.0, 5.0, 5.0], [0.0, np.nan, np.inf])))
+
+
+# --- taper ----------------------------------------------------------------------------------
+
+
+@given(d=st.floats(0.0762, 2.0), t0=st.floats(1.0, 2000.0), core=st.floats(0.02, 0.3))
+def test_hyperbolic_taper_k1_is_constant_torque(d, t0, core):
+    # Physical identity: torque per width = T * D / 2; constant torque means T(D) * D = T0 * Dc.
+    assert float(taper_tension(d, t0, 1.0, core)) * d == pytest.approx(t0 * core, rel=1e-12)
+
+
+@pytest.mark.parametrize("k", [0.0, 0.2, 0.5, 1.0])
+def test_taper_end_points(k):
+    core, dmax, t0 = 0.0762, 0.7, 140.0
+    # Linear taper: T0 at the core, T0 (1 - k) at the full diameter, halfway in between.
+    lin = taper_tension(np.array([core, (core + dmax) / 2, dmax]), t0, k, core, dmax, model="linear")
+    np.testing.assert_allclose(lin, [t0, t0 * (1 - k / 2), t0 * (1 - k)], rtol=1e-12)
+    # Hyperbolic: T0 at the core; T0 (1 - k (1 - Dc / Dmax)) at the full diameter (physics.md §5).
+    hyp = taper_tension(np.array([core, dmax]), t0, k, core, model="hyperbolic")
+    np.testing.assert_allclose(hyp, [t0, t0 * (1 - k * (1 - core / dmax))], rtol=1e-12)
+
+
+def test_taper_argument_errors():
+    with pytest.raises(ValueError, match="max_diameter"):
+        taper_tension(0.5, 100.0, 0.2, 0.0762, model="linear")
+    with pytest.raises(ValueError, match="hyperbolic"):
+        taper_tension(0.5, 100.0, 0.2, 0.0762, 0.7, model="exponential")
+
+
+def test_wound_on_tension_pfeiffer():
+    # physics.md §5 (Pfeiffer 1968): WOT = T_w + mu_k N; 1 pli web tension, 10 pli nip, mu_k = 0.3.
+    pli = 4.4482216152605 / 0.0254  # N/m per pli (NIST SP 811: lbf and inch)
+    assert float(wound_on_tension(1 * pli, 10 * pli, 0.3)) == pytest.approx(4 * pli, rel=1e-12)
+
+
+# --- no exception and no numpy warning on any float input ---------------------------------
+
+
+PURE = {
+    "wound_length": (wound_length, 3, None),
+    "wound_diameter": (wound_diameter, 3, lambda o: nan_or(o, o >= 0)),
+    "unwound_diameter": (unwound_diameter, 3, lambda o: nan_or(o, o >= 0)),
+    "diameter_from_speed": (diameter_from_speed, 2, lambda o: nan_or(o, o >= 0)),
+    "effective_caliper": (effective_caliper, 3, lambda o: nan_or(o, o >= 0)),
+    "taper_hyperbolic": (lambda d, t0, k, dc: taper_tension(d, t0, k, dc, model="hyperbolic"), 4, None),
+    "taper_linear": (lambda d, t0, k, dc, dm: taper_tension(d, t0, k, dc, dm, model="linear"), 5, None),
+    "wound_on_tension": (wound_on_tension, 3, None),
+}
+
+
+def _call_and_check(name, args):
+    func, _, prop = PURE[name]
+    out = func(*args)
+    assert isinstance(out, np.ndarray)
+    assert out.shape == np.broadcast_shapes(*(np.shape(a) for a in args))
+    if prop is not None:
+        assert prop(out), f"{name} returned a value outside its documented range: {out}"
+
+
+@pytest.mark.parametrize("name", sorted(PURE))
+def test_pure_functions_special_value_grid(name):
+    _call_and_check(name, special_grid(PURE[name][1]))
+
+
+@pytest.mark.parametrize("name", sorted(PURE))
+@settings(max_examples=60, deadline=None)
+@given(data=st.data())
+def test_pure_functions_any_float(name, data):
+    _call_and_check(name, [data.draw(any_array()) for _ in range(PURE[name][1])])
