@@ -285,6 +285,107 @@ class CheckSection(AlarmOverride):
     overrides: dict[Ident, AlarmOverride] = Field(default_factory=dict)
 
 
+def _secret(value: Any) -> str:
+    """A secret given as ``env:NAME``, ``file:/path`` or (discouraged) inline; resolved at connect time."""
+    if not isinstance(value, str) or not value:
+        raise ValueError("expected a secret such as \"env:SPANWATCH_PASSWORD\" or \"file:/etc/spanwatch/pw\"")
+    return value
+
+
+Secret = Annotated[str, AfterValidator(_secret)]
+
+
+class OpcUaSource(Strict):
+    """An OPC UA server; tags with ``source = NAME`` give their node id in ``address``."""
+
+    kind: Literal["opcua"]
+    endpoint: str = Field(pattern=r"^opc\.tcp://")
+    security_policy: Literal["None", "Basic256Sha256"] = "None"
+    security_mode: Literal["None", "Sign", "SignAndEncrypt"] = "None"
+    certificate: str | None = None
+    private_key: str | None = None
+    server_certificate: str | None = None
+    username: str | None = None
+    password: Secret | None = None
+    publishing_interval: PosDuration = 0.1
+    sampling_interval: Duration | None = None  # default: each tag's sample period
+    queue_size: int = Field(default=10, ge=1, le=100_000)
+    timeout: PosDuration = 4.0
+    watchdog_interval: PosDuration = 1.0
+    reconnect_min: PosDuration = 0.5
+    reconnect_max: PosDuration = 30.0
+
+    @model_validator(mode="after")
+    def _security(self) -> OpcUaSource:
+        if (self.security_policy == "None") != (self.security_mode == "None"):
+            raise ValueError("expected security_policy and security_mode both \"None\" or both set "
+                             f"(got {self.security_policy!r} and {self.security_mode!r})")
+        if self.security_policy != "None" and not (self.certificate and self.private_key):
+            raise ValueError("expected certificate and private_key files with a security policy")
+        return self
+
+
+class TopicMap(Strict):
+    """Map topics matching an MQTT filter to tag names: ``{1}``, ``{2}`` are the wildcard levels."""
+
+    pattern: str
+    tag: str
+
+
+class MqttSource(Strict):
+    """An MQTT broker; tags with ``source = NAME`` give their topic in ``address`` (or match ``topic_map``)."""
+
+    kind: Literal["mqtt"]
+    host: str = "127.0.0.1"
+    port: int = Field(default=1883, ge=1, le=65535)
+    client_id: str = "spanwatch"
+    tls: bool = False
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    username: str | None = None
+    password: Secret | None = None
+    qos: int = Field(default=1, ge=0, le=2)
+    clean_start: bool = False
+    session_expiry: PosDuration = 3600.0
+    keepalive: PosDuration = 10.0
+    subscribe: list[str] = Field(default_factory=list)
+    topic_map: list[TopicMap] = Field(default_factory=list)
+    payload: Literal["number", "json"] = "number"
+    value_path: str = "value"
+    time_path: str | None = "time"
+    quality_path: str | None = "quality"
+    time_unit: Literal["s", "ms", "iso"] = "s"
+    max_payload: int = Field(default=65536, ge=16)
+    queue_size: int = Field(default=100_000, ge=100)
+    overflow: Literal["block", "drop_oldest"] = "block"
+    alarm_topic: str | None = None
+    active_topic: str | None = None
+    reconnect_min: PosDuration = 0.5
+    reconnect_max: PosDuration = 30.0
+
+
+class SimulatedSource(Strict):
+    """The simulated line of a scenario file, in process (demo, tests)."""
+
+    kind: Literal["simulated"]
+    scenario: str
+    speedup: PosNumber = 1.0
+
+
+Source = Annotated[OpcUaSource | MqttSource | SimulatedSource, Field(discriminator="kind")]
+
+
+class DaemonSection(Strict):
+    """How ``spanwatch run`` runs: history, HTTP endpoint, latency allowance."""
+
+    history: str = "sqlite:///spanwatch.db"
+    http: str = "127.0.0.1:9108"
+    latency: PosDuration = 0.3
+    tick: PosDuration = 0.05
+    log_level: Literal["debug", "info", "warning", "error"] = "info"
+
+
 class LineConfig(Strict):
     """The whole file."""
 
@@ -295,6 +396,8 @@ class LineConfig(Strict):
     spans: list[SpanSection]
     tags: dict[TagName, TagSection]
     checks: dict[str, CheckSection] = Field(default_factory=dict)
+    sources: dict[Ident, Source] = Field(default_factory=dict)
+    daemon: DaemonSection = Field(default_factory=DaemonSection)
 
 
 # --- loading --------------------------------------------------------------------------

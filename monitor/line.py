@@ -343,6 +343,14 @@ def _check_tag_refs(cfg: LineConfig, tags: dict[str, TagInfo], elements: dict[st
         if tags[tag].kind not in kinds:
             err.add(key, f"expected a {role} tag with a unit of {' or '.join(k.name for k in kinds)}, got "
                          f"{tag!r} in {tags[tag].unit!r}")
+    if cfg.sources:
+        for name, t in cfg.tags.items():
+            if t.source not in cfg.sources:
+                err.add(f'tags."{name}".source', f"expected one of the sources {', '.join(sorted(cfg.sources))}, "
+                                                 f"got {t.source!r}")
+            elif cfg.sources[t.source].kind in ("opcua", "mqtt") and not t.address and not (
+                    cfg.sources[t.source].kind == "mqtt" and cfg.sources[t.source].topic_map):  # type: ignore[union-attr]
+                err.add(f'tags."{name}".address', f"expected the node id or topic of this tag on source {t.source!r}")
     wsf = cfg.line.web_speed_from
     if wsf is not None:
         el = elements.get(wsf)
