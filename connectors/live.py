@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import abc
 import asyncio
+import contextlib
 import random
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -66,17 +67,15 @@ class LiveConnector(abc.ABC):
                 delay = self.reconnect_min
             except asyncio.CancelledError:
                 raise
-            except Exception as exc:  # noqa: BLE001 - any failure means: reconnect later
+            except Exception as exc:  # any failure means: reconnect later
                 self.stats.last_error = f"{type(exc).__name__}: {exc}"[:300]
             if self._stop.is_set():
                 break
             first = False
             self.stats.reconnects += 1
             self.state = "reconnecting"
-            try:
+            with contextlib.suppress(TimeoutError):
                 await asyncio.wait_for(self._stop.wait(), timeout=delay * (0.8 + 0.4 * random.random()))
-            except TimeoutError:
-                pass
             delay = min(self.reconnect_max, delay * 2.0)
         self.state = "stopped"
 
