@@ -65,6 +65,15 @@ class AlarmEngine:
     def active(self) -> list[AlarmPoint]:
         return [p for p in self.points if self.state[p.key].active]
 
+    def restore(self, key: str, since: float) -> bool:
+        """Mark an alarm active as left by a previous run (its condition is taken to hold since ``since``)."""
+        st = self.state.get(key)
+        if st is None:
+            return False
+        st.active = st.cond = True
+        st.since = since
+        return True
+
     def evaluate(self, t: np.ndarray, results: dict[tuple[str, str], CheckResult],
                  line_state: np.ndarray) -> list[Transition]:
         out: list[Transition] = []

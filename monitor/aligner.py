@@ -34,6 +34,14 @@ class Aligner:
         self.next_frame: int | None = None  # index of the next frame to emit
         self.late = 0
 
+    def start_at(self, t: float, grace: float = 0.0) -> None:
+        """Start the frame grid at ``t`` even before any sample arrives, so a tag that never reports goes
+        stale; ``grace`` seconds are allowed for connecting before a never-seen tag ages."""
+        if self.next_frame is None:
+            self.next_frame = math.ceil(t * self.rate - 1e-9)
+        never = self.held_t == -np.inf
+        self.held_t[never] = t + grace
+
     @property
     def emitted_until(self) -> float:
         return -np.inf if self.next_frame is None else (self.next_frame - 1) / self.rate

@@ -14,6 +14,7 @@ import typer
 from rich.console import Console
 from rich.table import Table
 
+from monitor import __version__
 from monitor import units as U
 from monitor.checkset import alarm_points, build_checks
 from monitor.config import ConfigError
@@ -284,6 +285,63 @@ def demo_cmd(
         run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace)
     except ConfigError as exc:
         fail_config(exc)
+
+
+@app.command("run")
+def run_cmd(
+    config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration with [sources] (TOML).")],
+    db: Annotated[str | None, typer.Option(help="History (SQLite path or SQLAlchemy URL); default: [daemon].")] = None,
+    http: Annotated[str | None, typer.Option(help="HOST:PORT for /healthz and /metrics; default: [daemon].")] = None,
+    log_level: Annotated[str | None, typer.Option(help="debug, info, warning or error.")] = None,
+) -> None:
+    """Run the monitor as a daemon on the live sources of the config (OPC UA, MQTT) until SIGTERM or Ctrl-C."""
+    import asyncio
+    import logging
+
+    from monitor.daemon import run_daemon
+
+    line = open_line(config)
+    if not line.config.sources:
+        fail_config(ConfigError(config, "sources", "expected at least one [sources.NAME] table (kind = \"opcua\", "
+                                                   "\"mqtt\" or \"simulated\") for spanwatch run"))
+    level = (log_level or line.config.daemon.log_level).upper()
+    logging.basicConfig(level=getattr(logging, level, logging.INFO),
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.getLogger("spanwatch").info("spanwatch %s monitoring %s; %s", __version__, line.name, SAFETY_NOTE)
+    try:
+        asyncio.run(run_daemon(line, history_url=_db_url(db) if db else None, http=http))
+    except OSError as exc:
+        err_console.print(f"cannot start: {exc}", highlight=False, markup=False)
+        raise typer.Exit(1) from None
+
+
+@app.command("opcua-browse")
+def opcua_browse_cmd(
+    endpoint: Annotated[str, typer.Argument(help="Server endpoint, e.g. opc.tcp://10.0.0.5:4840.")],
+    node: Annotated[str | None, typer.Option(help="Start node id (default: the Objects folder).")] = None,
+    depth: Annotated[int, typer.Option(help="How many levels to descend.")] = 3,
+    fmt: Annotated[str, typer.Option("--format", help="table or toml (a [tags] skeleton).")] = "table",
+) -> None:
+    """List the variables under a node of an OPC UA server, to fill in the tag map."""
+    import asyncio
+
+    from connectors.opcua import browse
+
+    try:
+        rows = asyncio.run(browse(endpoint, node, depth))
+    except Exception as exc:  # connection refused, bad endpoint, security
+        err_console.print(f"{endpoint}: {type(exc).__name__}: {exc}", highlight=False, markup=False)
+        raise typer.Exit(1) from None
+    if fmt == "toml":
+        for r in rows:
+            typer.echo(f'[tags."{r["path"]}"]\nunit = ""  # fill in\nsource = "plc"\naddress = "{r["node_id"]}"\n')
+        return
+    t = Table(title=f"{len(rows)} variable(s) under {node or 'Objects'}", title_justify="left")
+    for c in ("node id", "browse path", "data type", "value"):
+        t.add_column(c)
+    for r in rows:
+        t.add_row(str(r["node_id"]), str(r["path"]), str(r.get("data_type", "")), str(r.get("value", "")))
+    console.print(t)
 
 
 def main() -> None:

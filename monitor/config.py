@@ -252,7 +252,7 @@ class TagSection(Strict):
     frozen_tolerance: float = 0.0
     accuracy: float | str | None = Field(
         default=None, description="absolute, in the tag's unit, or relative such as \"0.5 %\"")
-    source: str = "line"
+    source: str | None = Field(default=None, description="the [sources] entry; default: the only source")
     address: str | None = None
 
     @model_validator(mode="after")
@@ -383,6 +383,7 @@ class DaemonSection(Strict):
     http: str = "127.0.0.1:9108"
     latency: PosDuration = 0.3
     tick: PosDuration = 0.05
+    startup_grace: Duration = 10.0
     log_level: Literal["debug", "info", "warning", "error"] = "info"
 
 

@@ -40,7 +40,7 @@ from sqlalchemy import (
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column
 
-from monitor.alarms import Transition
+from monitor.alarms import AlarmEngine, Transition
 from rules.base import LineState
 
 
@@ -191,6 +191,31 @@ class History:
             s.flush()
             self.run_id = run.id
         return self.run_id
+
+    def restore_open(self, engine: AlarmEngine) -> int:
+        """Carry on alarms a previous run left open: mark them active in ``engine`` and adopt their episodes.
+
+        Open episodes whose alarm no longer exists in the current configuration are closed at the
+        time of this run's start. Returns the number of alarms restored.
+        """
+        restored = 0
+        with Session(self.engine) as s, s.begin():
+            start = s.get(Run, self.run_id)
+            if start is None:
+                return 0
+            same_kind = select(Run.id).where(Run.mode == start.mode, Run.line_name == start.line_name,
+                                             Run.id != self.run_id)
+            rows = s.scalars(select(AlarmEpisode).where(AlarmEpisode.cleared_t.is_(None),
+                                                        AlarmEpisode.run_id.in_(same_kind))).all()
+            for ep in rows:
+                if ep.alarm_key in self._open:
+                    continue
+                if engine.restore(ep.alarm_key, ep.raised_t):
+                    self._open[ep.alarm_key] = ep.id
+                    restored += 1
+                else:
+                    ep.cleared_t = start.started_at
+        return restored
 
     def record(self, transitions: Iterable[Transition]) -> None:
         """Write transitions in one transaction: journal rows, new episodes, completed episodes."""

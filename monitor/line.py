@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor import units as U
-from monitor.config import ConfigError, LineConfig, RollerSection, WinderSection, load_config
+from monitor.config import ConfigError, LineConfig, RollerSection, TagSection, WinderSection, load_config
 from rules.airfilm import air_viscosity, combined_roughness, effective_cof
 from rules.traction import capstan_ratio_limit, traction_utilisation
 from rules.woundroll import taper_tension
@@ -107,6 +107,11 @@ class Line:
 
     def zone_after(self, element_id: str) -> Zone | None:
         return next((z for z in self.zones if z.upstream == element_id), None)
+
+    def tags_of_source(self, source: str) -> dict[str, TagSection]:
+        """The config tags a source delivers (a tag without ``source`` belongs to the only source)."""
+        only = next(iter(self.config.sources)) if len(self.config.sources) == 1 else None
+        return {n: t for n, t in self.config.tags.items() if (t.source or only) == source}
 
     def zone(self, zone_id: str) -> Zone:
         return next(z for z in self.zones if z.id == zone_id)
@@ -345,12 +350,19 @@ def _check_tag_refs(cfg: LineConfig, tags: dict[str, TagInfo], elements: dict[st
                          f"{tag!r} in {tags[tag].unit!r}")
     if cfg.sources:
         for name, t in cfg.tags.items():
-            if t.source not in cfg.sources:
+            if t.source is None and len(cfg.sources) > 1:
+                err.add(f'tags."{name}".source', f"expected one of the sources {', '.join(sorted(cfg.sources))} "
+                                                 f"(there is more than one), got nothing")
+                continue
+            src = t.source if t.source is not None else next(iter(cfg.sources))
+            if src not in cfg.sources:
                 err.add(f'tags."{name}".source', f"expected one of the sources {', '.join(sorted(cfg.sources))}, "
                                                  f"got {t.source!r}")
-            elif cfg.sources[t.source].kind in ("opcua", "mqtt") and not t.address and not (
-                    cfg.sources[t.source].kind == "mqtt" and cfg.sources[t.source].topic_map):  # type: ignore[union-attr]
-                err.add(f'tags."{name}".address', f"expected the node id or topic of this tag on source {t.source!r}")
+            else:
+                spec = cfg.sources[src]
+                mapped = spec.kind == "mqtt" and bool(spec.topic_map)  # type: ignore[union-attr]
+                if spec.kind in ("opcua", "mqtt") and not t.address and not mapped:
+                    err.add(f'tags."{name}".address', f"expected the node id or topic of this tag on source {src!r}")
     wsf = cfg.line.web_speed_from
     if wsf is not None:
         el = elements.get(wsf)

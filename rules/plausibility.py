@@ -55,7 +55,7 @@ FROZEN_DEFAULTS = _flag("flag", "low", 0.0, 5.0,
 def out_of_range(value: np.ndarray, low: float, high: float) -> np.ndarray:
     """True where value is outside [low, high] or not finite."""
     with np.errstate(invalid="ignore"):
-        return ~((value >= low) & (value <= high))
+        return ~((value >= low) & (value <= high) & np.isfinite(value))
 
 
 class _TagCheck:

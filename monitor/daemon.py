@@ -1,0 +1,274 @@
+"""``spanwatch run``: the daemon beside the drives.
+
+One asyncio loop runs every live connector of the config, a tick task that feeds
+their samples through the pipeline and computes frames up to ``clock() - latency``
+(so a tag that stops updating goes stale on time even when nothing arrives), and a
+small HTTP server on localhost with ``/healthz`` and Prometheus ``/metrics``.
+
+Alarms are committed to the history at every tick that has transitions (SQLite in
+WAL mode or PostgreSQL), so a crash or ``kill -9`` loses nothing committed; on the
+next start, alarms left open by the previous run are restored as active, so the
+restart carries on instead of raising them again. SIGTERM and SIGINT stop the
+connectors, process what has arrived, close the run and the database.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import logging
+import signal
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
+
+from connectors.base import SampleBatch
+from connectors.live import LiveConnector
+from monitor.alarms import Transition
+from monitor.history import History
+from monitor.line import Line
+from monitor.pipeline import Pipeline
+
+log = logging.getLogger("spanwatch.daemon")
+
+
+@dataclass
+class TickStats:
+    ticks: int = 0
+    eval_seconds: float = 0.0
+    last_tick_wall: float = 0.0
+    transitions: dict[str, int] = field(default_factory=lambda: {"raise": 0, "clear": 0})
+
+
+def build_connectors(line: Line, sink: Callable[[SampleBatch], None]) -> list[LiveConnector]:
+    """One connector per configured source (OPC UA, MQTT or simulated)."""
+    out: list[LiveConnector] = []
+    cfg = line.config
+    for name, spec in cfg.sources.items():
+        tags = line.tags_of_source(name)
+        if spec.kind == "opcua":
+            from connectors.opcua import OpcUaConnector
+
+            out.append(OpcUaConnector(name, spec, tags, sink))
+        elif spec.kind == "mqtt":
+            from connectors.mqtt import MqttConnector
+
+            out.append(MqttConnector(name, spec, tags, sink))
+        else:
+            from pathlib import Path
+
+            from connectors.simsource import SimulatedConnector
+
+            scenario = Path(spec.scenario)
+            if not scenario.is_absolute():
+                scenario = Path(line.file).resolve().parent / scenario
+            out.append(SimulatedConnector(name, line, scenario, sink, speedup=spec.speedup))
+    return out
+
+
+class Daemon:
+    """Owns the pipeline, the connectors, the history and the HTTP endpoint of one line."""
+
+    def __init__(self, line: Line, *, history_url: str | None = None, http: str | None = None,
+                 clock: Callable[[], float] = time.time, latency: float | None = None, tick: float | None = None,
+                 connectors: list[LiveConnector] | None = None,
+                 on_transition: Callable[[Transition], None] | None = None, mode: str = "daemon") -> None:
+        d = line.config.daemon
+        self.line = line
+        self.clock = clock
+        self.latency = d.latency if latency is None else latency
+        self.tick = d.tick if tick is None else tick
+        self.http = d.http if http is None else http
+        self.history = History(history_url or d.history)
+        self.history.start_run(mode=mode, line_name=line.name, config_file=line.file, config_hash=line.config_hash,
+                               source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
+        self.pipe = Pipeline(line, self.history, on_transition=on_transition)
+        restored = self.history.restore_open(self.pipe.engine)
+        if restored:
+            log.info("carrying on %d alarm(s) left active by the previous run", restored)
+        self.inbox: list[SampleBatch] = []
+        self.connectors = connectors if connectors is not None else build_connectors(line, self.inbox.append)
+        self.publishers = self._publishers()
+        self.stats = TickStats()
+        self.stopping = asyncio.Event()
+        self.registry = CollectorRegistry()
+        self.registry.register(_Collector(self))
+        self._server: asyncio.Server | None = None
+        self.http_port: int | None = None
+
+    def _publishers(self) -> list:  # type: ignore[type-arg]
+        pubs = []
+        for spec in self.line.config.sources.values():
+            if spec.kind == "mqtt" and (spec.alarm_topic or spec.active_topic):
+                from connectors.mqtt import MqttAlarmPublisher
+
+                pubs.append(MqttAlarmPublisher(spec))
+        return pubs
+
+    # --- the loop --------------------------------------------------------------------------
+
+    async def run(self) -> None:
+        """Run until :meth:`request_stop` (or SIGTERM / SIGINT when installed)."""
+        self.pipe.aligner.start_at(self.clock(), grace=self.line.config.daemon.startup_grace)
+        if self.http:
+            await self._start_http()
+        for p in self.publishers:
+            p.start()
+        tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
+        try:
+            while not self.stopping.is_set():
+                self.step()
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(self.stopping.wait(), timeout=self.tick)
+        finally:
+            for c in self.connectors:
+                await c.stop()
+            for t in tasks:
+                t.cancel()
+            await asyncio.gather(*tasks, return_exceptions=True)
+            self.step(final=True)
+            self.pipe.finish_history()
+            for p in self.publishers:
+                p.stop()
+            if self._server is not None:
+                self._server.close()
+                await self._server.wait_closed()
+            self.history.close()
+
+    def step(self, *, final: bool = False) -> list[Transition]:
+        """Feed what arrived, compute frames up to now minus the latency allowance, record, publish."""
+        t0 = time.perf_counter()
+        batches, self.inbox[:] = list(self.inbox), []
+        for b in batches:
+            self.pipe.ingest(b)
+        until = self.clock() - (0.0 if final else self.latency)
+        trs = self.pipe.advance(until)
+        self.stats.ticks += 1
+        self.stats.eval_seconds += time.perf_counter() - t0
+        self.stats.last_tick_wall = time.time()
+        for tr in trs:
+            self.stats.transitions[tr.event] = self.stats.transitions.get(tr.event, 0) + 1
+        if trs and self.publishers:
+            active = self.pipe.engine.active()
+            for p in self.publishers:
+                p.publish(trs, active)
+        return trs
+
+    def request_stop(self) -> None:
+        self.stopping.set()
+
+    def install_signal_handlers(self) -> None:
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            loop.add_signal_handler(sig, self.request_stop)
+
+    # --- status and HTTP -------------------------------------------------------------------
+
+    def status(self) -> dict[str, object]:
+        now = time.time()
+        fresh = now - self.stats.last_tick_wall < max(5.0, 20 * self.tick)
+        up = [c for c in self.connectors if c.state == "connected"]
+        healthy = fresh and (bool(up) or not self.connectors)
+        return {
+            "status": "ok" if healthy else "degraded",
+            "line": self.line.name,
+            "line_state": None if self.pipe.line_state is None else int(self.pipe.line_state),
+            "frames": self.pipe.frames,
+            "samples": self.pipe.samples,
+            "active_alarms": [p.key for p in self.pipe.engine.active()],
+            "connectors": {c.name: {"kind": c.kind, "state": c.state, "samples_in": c.stats.samples_in,
+                                    "reconnects": c.stats.reconnects, "malformed": c.stats.malformed_total,
+                                    "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error}
+                           for c in self.connectors},
+            "input_issues": {f"{r['tag']}: {r['reason']}": r["count"] for r in self.pipe.inputs.rows()},
+        }
+
+    async def _start_http(self) -> None:
+        host, _, port = self.http.rpartition(":")
+        self._server = await asyncio.start_server(self._handle, host or "127.0.0.1", int(port))
+        self.http_port = self._server.sockets[0].getsockname()[1]
+        log.info("HTTP on %s:%s (/healthz, /metrics)", host, self.http_port)
+
+    async def _handle(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        try:
+            request = await asyncio.wait_for(reader.readline(), timeout=5.0)
+            while (await asyncio.wait_for(reader.readline(), timeout=5.0)) not in (b"\r\n", b"\n", b""):
+                pass
+            parts = request.decode("latin-1").split()
+            path = parts[1] if len(parts) >= 2 else "/"
+            if path.startswith("/healthz") or path.startswith("/status"):
+                st = self.status()
+                code = 200 if st["status"] == "ok" else 503
+                body, ctype = json.dumps(st).encode(), "application/json"
+            elif path.startswith("/metrics"):
+                code, body, ctype = 200, generate_latest(self.registry), "text/plain; version=0.0.4; charset=utf-8"
+            else:
+                code, body, ctype = 404, b"not found\n", "text/plain"
+            reason = {200: "OK", 404: "Not Found", 503: "Service Unavailable"}[code]
+            writer.write(f"HTTP/1.1 {code} {reason}\r\nContent-Type: {ctype}\r\nContent-Length: {len(body)}\r\n"
+                         f"Connection: close\r\n\r\n".encode() + body)
+            await writer.drain()
+        except (TimeoutError, ConnectionError, UnicodeDecodeError):
+            pass
+        finally:
+            writer.close()
+
+
+class _Collector:
+    """Prometheus collector that reads the daemon's state at scrape time."""
+
+    def __init__(self, daemon: Daemon) -> None:
+        self.d = daemon
+
+    def collect(self):
+        d = self.d
+        samples = CounterMetricFamily("spanwatch_samples_in", "Samples received, by source", labels=["source"])
+        up = GaugeMetricFamily("spanwatch_connector_up", "1 when the source is connected", labels=["source"])
+        reconnects = CounterMetricFamily("spanwatch_connector_reconnects", "Reconnections", labels=["source"])
+        depth = GaugeMetricFamily("spanwatch_queue_depth", "Samples waiting in the connector queue",
+                                  labels=["source"])
+        overflow = CounterMetricFamily("spanwatch_queue_overflow", "Queue overflow events", labels=["source"])
+        malformed = CounterMetricFamily("spanwatch_malformed_messages", "Malformed messages", labels=["source"])
+        for c in d.connectors:
+            samples.add_metric([c.name], c.stats.samples_in)
+            up.add_metric([c.name], 1.0 if c.state == "connected" else 0.0)
+            reconnects.add_metric([c.name], c.stats.reconnects)
+            depth.add_metric([c.name], c.stats.queue_depth)
+            overflow.add_metric([c.name], c.stats.overflow)
+            malformed.add_metric([c.name], c.stats.malformed_total)
+        yield from (samples, up, reconnects, depth, overflow, malformed)
+        evals = SummaryMetricFamily("spanwatch_check_evaluation_seconds", "Time per tick spent in the pipeline",
+                                    count_value=d.stats.ticks, sum_value=d.stats.eval_seconds)
+        yield evals
+        frames = CounterMetricFamily("spanwatch_frames", "Frames computed")
+        frames.add_metric([], d.pipe.frames)
+        yield frames
+        active = GaugeMetricFamily("spanwatch_active_alarms", "Active alarms by priority", labels=["priority"])
+        counts = {"low": 0, "medium": 0, "high": 0}
+        for p in d.pipe.engine.active():
+            counts[p.priority] = counts.get(p.priority, 0) + 1
+        for prio, n in counts.items():
+            active.add_metric([prio], n)
+        yield active
+        trans = CounterMetricFamily("spanwatch_alarm_transitions", "Alarm transitions", labels=["event"])
+        for ev, n in d.stats.transitions.items():
+            trans.add_metric([ev], n)
+        yield trans
+        issues = CounterMetricFamily("spanwatch_input_issues", "Samples refused or flagged", labels=["reason"])
+        by_reason: dict[str, int] = {}
+        for r in d.pipe.inputs.rows():
+            by_reason[str(r["reason"])] = by_reason.get(str(r["reason"]), 0) + int(r["count"])  # type: ignore[call-overload]
+        for reason, n in by_reason.items():
+            issues.add_metric([reason], n)
+        yield issues
+
+
+async def run_daemon(line: Line, *, history_url: str | None = None, http: str | None = None) -> None:
+    """Entry point of ``spanwatch run``."""
+    daemon = Daemon(line, history_url=history_url, http=http)
+    daemon.install_signal_handlers()
+    await daemon.run()
