@@ -113,6 +113,17 @@ def check_config(
     console.print(f"air model: {lw.air_film_model}, speed convention: {lw.air_speed_convention}, "
                   f"air viscosity {line.viscosity:.4g} Pa s at {lw.air_temperature - 273.15:.1f} degC")
 
+    if cfg.sources:
+        st = Table(title="Live sources", title_justify="left")
+        for col in ("source", "kind", "where", "tags"):
+            st.add_column(col)
+        for name, spec in cfg.sources.items():
+            where = {"opcua": lambda s: f"{s.endpoint} ({s.security_policy}/{s.security_mode})",
+                     "mqtt": lambda s: f"{s.host}:{s.port} qos {s.qos}{' tls' if s.tls else ''}",
+                     "simulated": lambda s: f"scenario {s.scenario}"}[spec.kind](spec)
+            st.add_row(name, spec.kind, where, str(len(line.tags_of_source(name))))
+        console.print(st)
+
     checks = build_checks(line)
     points = alarm_points(line, checks)
     kinds: dict[str, list[str]] = {}

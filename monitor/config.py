@@ -446,9 +446,13 @@ def parse_config(data: dict[str, Any], file: str | Path = "<config>") -> LineCon
         raise ConfigError(file, *problems[0], more=problems[1:]) from None
 
 
-def load_config(path: str | Path) -> LineConfig:
-    """Read and validate a line file (see :func:`monitor.line.load_line` for the derived line)."""
-    path = Path(path)
+def read_toml(path: Path, _depth: int = 0) -> tuple[dict[str, Any], list[Path]]:
+    """Read a TOML file, following ``extends = "base.toml"`` (relative to the file).
+
+    The file's tables are merged into its base's, key by key (arrays and values replace);
+    so a live-source variant of a line lists only its ``[sources]``, ``[daemon]`` and the tag
+    addresses. Returns the merged document and the files it came from, base first.
+    """
     try:
         raw = path.read_bytes()
     except OSError as exc:
@@ -459,4 +463,33 @@ def load_config(path: str | Path) -> LineConfig:
         raise ConfigError(path, "", "expected a UTF-8 text file") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(path, "", f"expected valid TOML: {exc}") from None
-    return parse_config(data, path)
+    base = data.pop("extends", None)
+    if base is None:
+        return data, [path]
+    if not isinstance(base, str):
+        raise ConfigError(path, "extends", f"expected the path of a base line file, got {base!r}")
+    if _depth >= 4:
+        raise ConfigError(path, "extends", "expected at most 4 levels of extends")
+    base_path = Path(base) if Path(base).is_absolute() else path.parent / base
+    merged, files = read_toml(base_path, _depth + 1)
+    return _merge(merged, data), [*files, path]
+
+
+def _merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
+    out = dict(base)
+    for k, v in over.items():
+        out[k] = _merge(out[k], v) if isinstance(v, dict) and isinstance(out.get(k), dict) else v
+    return out
+
+
+def config_files(path: str | Path) -> list[Path]:
+    """The files a line config is made of (itself and what it extends), base first."""
+    return read_toml(Path(path))[1]
+
+
+def load_config(path: str | Path) -> LineConfig:
+    """Read and validate a line file (see :func:`monitor.line.load_line` for the derived line)."""
+    path = Path(path)
+    data, files = read_toml(path)
+    name = str(path) if len(files) == 1 else f"{path} (extends {', '.join(str(f) for f in files[:-1])})"
+    return parse_config(data, name)

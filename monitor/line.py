@@ -17,7 +17,15 @@ from pathlib import Path
 import numpy as np
 
 from monitor import units as U
-from monitor.config import ConfigError, LineConfig, RollerSection, TagSection, WinderSection, load_config
+from monitor.config import (
+    ConfigError,
+    LineConfig,
+    RollerSection,
+    TagSection,
+    WinderSection,
+    config_files,
+    load_config,
+)
 from rules.airfilm import air_viscosity, combined_roughness, effective_cof
 from rules.traction import capstan_ratio_limit, traction_utilisation
 from rules.woundroll import taper_tension
@@ -210,7 +218,10 @@ def load_line(path: str | Path) -> Line:
     """Read, validate and derive a line from a TOML file (raises ConfigError)."""
     path = Path(path)
     cfg = load_config(path)
-    return build_line(cfg, str(path), hashlib.sha256(path.read_bytes()).hexdigest()[:16])
+    digest = hashlib.sha256()
+    for f in config_files(path):
+        digest.update(f.read_bytes())
+    return build_line(cfg, str(path), digest.hexdigest()[:16])
 
 
 def build_line(cfg: LineConfig, file: str = "<config>", config_hash: str = "") -> Line:
