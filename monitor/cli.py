@@ -6,6 +6,7 @@ Exit codes: 0 success, 1 the command ran but found a problem it was asked to fin
 
 from __future__ import annotations
 
+import contextlib
 import sys
 from pathlib import Path
 from typing import Annotated
@@ -144,11 +145,17 @@ def check_config(
 @app.command("simulate")
 def simulate_cmd(
     scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML): speed profile, roll changes, faults.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Recording to write (.csv or .csv.gz).")],
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Recording to write (.csv or .csv.gz).")] = None,
     time_format: Annotated[str, typer.Option(help="Time column: 'iso' (ISO 8601, UTC) or 'epoch' seconds.")] = "iso",
     progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+    serve_opcua: Annotated[str | None, typer.Option(help="Serve the line live as an OPC UA server at this "
+                                                          "endpoint, e.g. opc.tcp://127.0.0.1:4840.")] = None,
+    publish_mqtt: Annotated[str | None, typer.Option(help="Publish the line live to this MQTT broker, HOST:PORT.")]
+    = None,
+    topic_prefix: Annotated[str, typer.Option(help="Topic prefix for --publish-mqtt.")] = "quillmere",
+    speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
-    """Run the simulated line through a scenario; write the recording and its ground truth (.truth.json)."""
+    """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
     from connectors.simline import SimulatedLine, load_scenario
     from monitor.simulate import simulate_to_file
 
@@ -160,7 +167,32 @@ def simulate_cmd(
     if time_format not in ("iso", "epoch"):
         err_console.print(f"--time-format: expected 'iso' or 'epoch', got {time_format!r}")
         raise typer.Exit(2)
+    if sum(x is not None for x in (out, serve_opcua, publish_mqtt)) != 1:
+        err_console.print("expected exactly one of --out, --serve-opcua or --publish-mqtt")
+        raise typer.Exit(2)
     sim = SimulatedLine(line, sc)
+    if publish_mqtt is not None:
+        import asyncio
+
+        from monitor.simulate import publish_mqtt as publish
+
+        host, _, port = publish_mqtt.rpartition(":")
+        if not port.isdigit():
+            err_console.print(f"--publish-mqtt: expected HOST:PORT, got {publish_mqtt!r}")
+            raise typer.Exit(2)
+        asyncio.run(publish(sim, host or "127.0.0.1", int(port), prefix=topic_prefix, speedup=speedup,
+                            console=console))
+        return
+    if serve_opcua is not None:
+        import asyncio
+
+        from connectors.opcua_server import serve_forever
+
+        console.print(f"serving {line.name} at {serve_opcua} ({speedup:g}x); Ctrl-C stops", highlight=False)
+        with contextlib.suppress(KeyboardInterrupt):
+            asyncio.run(serve_forever(sim, serve_opcua, speedup=speedup))
+        return
+    assert out is not None
     rows, truth_path = simulate_to_file(sim, out, time_format=time_format, progress=progress, console=err_console)
     console.print(f"wrote {rows} samples ({sc.scenario.duration / 60:.1f} simulated minutes) to {out}; "
                   f"ground truth in {truth_path}", highlight=False)

@@ -42,3 +42,52 @@ def simulate_to_file(sim: SimulatedLine, out: Path, *, time_format: str = "iso",
     truth = truth_path_for(out)
     truth.write_text(json.dumps(sim.truth(), indent=1), encoding="utf-8")
     return rows, truth
+
+
+def tag_topic(prefix: str, tag: str) -> str:
+    """The topic a simulated tag is published on: ``prefix/`` + the tag with dots as levels."""
+    return f"{prefix.rstrip('/')}/{tag.replace('.', '/')}"
+
+
+async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str = "quillmere", speedup: float = 1.0,
+                       tick: float = 0.1, qos: int = 1, duration: float | None = None,
+                       console: Console | None = None) -> int:
+    """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality"}``, paced.
+
+    The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``.
+    Returns the number of messages published.
+    """
+    import asyncio
+    import time
+
+    import paho.mqtt.client as mqtt
+
+    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"spanwatch-sim-{int(time.time())}",
+                         protocol=mqtt.MQTTv5)
+    client.max_queued_messages_set(0)
+    client.connect(host, port)
+    client.loop_start()
+    sim.t0 = time.time()
+    end = min(duration, sim.sc.scenario.duration) if duration else sim.sc.scenario.duration
+    topics = [tag_topic(prefix, t) for t in sim.tag_names]
+    sent = 0
+    last = None
+    wall0 = time.perf_counter()
+    try:
+        while sim.t < end - 1e-9:
+            b = sim.advance(min(tick * speedup, end - sim.t))
+            for k, t, v in zip(b.tag.tolist(), b.t.tolist(), b.value.tolist(), strict=True):
+                payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good"})
+                last = client.publish(topics[k], payload, qos=qos)
+                sent += 1
+            lag = wall0 + sim.t / speedup - time.perf_counter()
+            if lag > 0:
+                await asyncio.sleep(lag)
+        if last is not None:
+            last.wait_for_publish(timeout=30)
+    finally:
+        client.loop_stop()
+        client.disconnect()
+    if console is not None:
+        console.print(f"published {sent} messages to {host}:{port} under {prefix}/", highlight=False)
+    return sent
