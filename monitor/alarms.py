@@ -29,6 +29,8 @@ from monitor.checkset import AlarmPoint
 from rules.base import CheckResult, Reason
 from rules.windows import forward_fill_index
 
+_OK, _LINE_STATE = int(Reason.OK), int(Reason.LINE_STATE)
+
 
 @dataclass(frozen=True)
 class Transition:
@@ -61,6 +63,9 @@ class AlarmEngine:
     def __init__(self, points: list[AlarmPoint]) -> None:
         self.points = points
         self.state = {p.key: _State() for p in points}
+        self.groups: dict[tuple[str, str], list[AlarmPoint]] = {}
+        for p in points:
+            self.groups.setdefault((p.kind, p.object_id), []).append(p)
 
     def active(self) -> list[AlarmPoint]:
         return [p for p in self.points if self.state[p.key].active]
@@ -77,29 +82,36 @@ class AlarmEngine:
     def evaluate(self, t: np.ndarray, results: dict[tuple[str, str], CheckResult],
                  line_state: np.ndarray) -> list[Transition]:
         out: list[Transition] = []
-        for p in self.points:
-            res = results.get((p.kind, p.object_id))
-            if res is not None:
-                out.extend(self._point(p, t, res, line_state))
+        if t.shape[0] == 0:
+            return out
+        for key, pts in self.groups.items():
+            res = results.get(key)
+            if res is None:
+                continue
+            valid = res.reason == _OK
+            gated = res.reason == _LINE_STATE
+            sev: dict[str, np.ndarray] = {}
+            for p in pts:
+                x = sev.get(p.direction)
+                if x is None:
+                    x = sev[p.direction] = severity(res.value, p.direction)
+                out.extend(self._point(p, t, res, x, valid, gated, line_state))
         out.sort(key=lambda tr: tr.t)
         return out
 
-    def _point(self, p: AlarmPoint, t: np.ndarray, res: CheckResult, line_state: np.ndarray) -> list[Transition]:
+    def _point(self, p: AlarmPoint, t: np.ndarray, res: CheckResult, x: np.ndarray, valid: np.ndarray,
+               gated: np.ndarray, line_state: np.ndarray) -> list[Transition]:
         st = self.state[p.key]
         n = t.shape[0]
-        if n == 0:
-            return []
-        x = severity(res.value, p.direction)
         limit = p.limit if p.direction != "low" else -p.limit
-        valid = res.reason == Reason.OK
         with np.errstate(invalid="ignore"):
             sets = valid & (x >= limit)
-            resets = (valid & (x < limit - p.deadband)) | (res.reason == Reason.LINE_STATE)
+            if not st.active and not st.cond and not sets.any():
+                return []  # quiet: nothing pending, nothing to raise
+            resets = (valid & (x < limit - p.deadband)) | gated
         code = np.where(sets, 1, np.where(resets, 0, -1))
         idx = forward_fill_index(code >= 0)
         cond = np.where(idx >= 0, code[np.maximum(idx, 0)] == 1, st.cond)
-        if not st.active and not cond.any() and not st.cond:
-            return []  # quiet: nothing pending, nothing to raise
         prev = np.r_[st.cond, cond[:-1]]
         cuts = np.flatnonzero(cond != prev)
         cut_set = set(cuts.tolist())

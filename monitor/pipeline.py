@@ -33,14 +33,20 @@ from rules.linestate import LineStateTracker, RollChangeDetector, apply_line_sta
 class CheckStats:
     """Frames evaluated per check, by reason (OK, LINE_STATE, INPUT_BAD, ...)."""
 
-    by_reason: dict[tuple[str, str], np.ndarray] = field(default_factory=dict)
+    keys: list[tuple[str, str]] = field(default_factory=list)
+    counts: np.ndarray = field(default_factory=lambda: np.zeros((0, len(Reason)), dtype=np.int64))
 
-    def add(self, key: tuple[str, str], reason: np.ndarray) -> None:
-        counts = np.bincount(reason.astype(np.int64), minlength=len(Reason))
-        if key in self.by_reason:
-            self.by_reason[key] += counts[: len(Reason)]
-        else:
-            self.by_reason[key] = counts[: len(Reason)].copy()
+    def add_block(self, keys: list[tuple[str, str]], reasons: np.ndarray) -> None:
+        """``reasons``: (checks, frames) reason codes of one block, rows in the order of ``keys``."""
+        if keys != self.keys:
+            self.keys = list(keys)
+            self.counts = np.zeros((len(keys), len(Reason)), dtype=np.int64)
+        for r in range(len(Reason)):
+            self.counts[:, r] += (reasons == r).sum(axis=1)
+
+    @property
+    def by_reason(self) -> dict[tuple[str, str], np.ndarray]:
+        return {k: self.counts[i] for i, k in enumerate(self.keys)}
 
 
 class Pipeline:
@@ -153,11 +159,13 @@ class Pipeline:
                 t, block.signal(f"diameter/{wid}"), signals.get(f"core_change/{wid}"), signals.get(f"length/{wid}"))
         results: dict[tuple[str, str], CheckResult] = {}
         for c in self.checks:
-            key = (c.kind, c.object_id)
-            res = c.update(block)
-            results[key] = res
-            self.check_stats.add(key, res.reason)
-            self.latest[key] = (float(t[-1]), float(res.value[-1]), int(res.reason[-1]))
+            results[(c.kind, c.object_id)] = c.update(block)
+        keys = list(results)
+        reasons = np.stack([r.reason for r in results.values()])
+        last_values = np.array([r.value[-1] for r in results.values()])
+        self.check_stats.add_block(keys, reasons)
+        t_last = float(t[-1])
+        self.latest = {k: (t_last, float(v), int(r)) for k, v, r in zip(keys, last_values, reasons[:, -1], strict=True)}
         transitions = self.engine.evaluate(t, results, block.line_state)
         self.frames += t.size
         self.line_state = int(block.line_state[-1])

@@ -50,6 +50,22 @@ class LineState(IntEnum):
 MOVING_STATES = (LineState.THREADING, LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
 PRODUCTION_STATES = (LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
 
+# Plain ints for the per-block hot path (enum attribute access costs microseconds).
+_OK = int(Reason.OK)
+_OUT_OF_DOMAIN = int(Reason.OUT_OF_DOMAIN)
+_STATE_LUT: dict[tuple[int, ...], np.ndarray] = {}
+
+
+def state_mask(line_state: np.ndarray, states: Iterable[LineState]) -> np.ndarray:
+    """True where the line state is one of ``states`` (a lookup table per set of states)."""
+    key = tuple(int(s) for s in states)
+    lut = _STATE_LUT.get(key)
+    if lut is None:
+        lut = np.zeros(len(LineState), dtype=bool)
+        lut[list(key)] = True
+        _STATE_LUT[key] = lut
+    return lut[line_state]
+
 
 @dataclass(frozen=True)
 class Signal:
@@ -107,7 +123,7 @@ class Block:
         return sig if sig is not None else Signal.missing(self.n)
 
     def in_states(self, states: Iterable[LineState]) -> BoolArray:
-        return np.isin(self.line_state, np.asarray([int(s) for s in states], dtype=np.int8))
+        return state_mask(self.line_state, states)
 
 
 @dataclass(frozen=True)
@@ -120,7 +136,7 @@ class CheckResult:
 
     @property
     def valid(self) -> BoolArray:
-        return self.reason == Reason.OK
+        return self.reason == _OK
 
 
 @dataclass(frozen=True)
@@ -168,8 +184,11 @@ def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:
 def finalise(value: FloatArray, reason: np.ndarray, **extras: FloatArray) -> CheckResult:
     """Mark non-finite values as OUT_OF_DOMAIN, blank invalid frames, wrap as a result."""
     value = np.asarray(value, dtype=float)
-    bad = (reason == Reason.OK) & ~np.isfinite(value)
-    reason = reason.copy()
-    reason[bad] = int(Reason.OUT_OF_DOMAIN)
-    value = np.where(reason == Reason.OK, value, np.nan)
+    ok = reason == _OK
+    bad = ok & ~np.isfinite(value)
+    if bad.any():
+        reason = reason.copy()
+        reason[bad] = _OUT_OF_DOMAIN
+        ok &= ~bad
+    value = np.where(ok, value, np.nan)
     return CheckResult(value=value, reason=reason, extras=extras)

@@ -22,6 +22,10 @@ import numpy as np
 from rules.base import Block, LineState, Signal
 from rules.windows import Lagged, RollingMean, forward_fill_index
 
+_STOPPED, _THREADING, _ACCELERATING, _RUNNING, _DECELERATING = (
+    int(LineState.STOPPED), int(LineState.THREADING), int(LineState.ACCELERATING), int(LineState.RUNNING),
+    int(LineState.DECELERATING))
+
 
 def classify_line_state(speed: np.ndarray, accel: np.ndarray, *, stop_speed: float, thread_speed: float,
                         accel_threshold: float) -> np.ndarray:
@@ -60,20 +64,20 @@ class LineStateTracker:
         v = np.where(speed.ok, speed.value, np.nan)
         state = classify_line_state(v, accel, **self.kw)
         # Hold ACCELERATING / DECELERATING for settle_time after the ramp ends.
-        transient = (state == LineState.ACCELERATING) | (state == LineState.DECELERATING)
+        transient = (state == _ACCELERATING) | (state == _DECELERATING)
         idx = forward_fill_index(transient)
         last_t = np.where(idx >= 0, t[np.maximum(idx, 0)], self._last_transient_t)
         last_s = np.where(idx >= 0, state[np.maximum(idx, 0)], self._last_transient_state)
-        hold = (state == LineState.RUNNING) & (t - last_t < self.settle)
+        hold = (state == _RUNNING) & (t - last_t < self.settle)
         state = np.where(hold, last_s, state).astype(np.int8)
         if t.size:
             self._last_transient_t = float(last_t[-1])
             self._last_transient_state = int(last_s[-1])
         # Anything slower than running (stopped, threading) also needs settling before RUNNING.
-        slow = (state == LineState.STOPPED) | (state == LineState.THREADING)
+        slow = (state == _STOPPED) | (state == _THREADING)
         idx = forward_fill_index(slow)
         t_slow = np.where(idx >= 0, t[np.maximum(idx, 0)], self._last_slow_t)
-        after = (state == LineState.RUNNING) & (t - t_slow < self.settle)
+        after = (state == _RUNNING) & (t - t_slow < self.settle)
         state[after] = int(LineState.ACCELERATING)
         if t.size:
             self._last_slow_t = float(t_slow[-1])

@@ -124,7 +124,7 @@ class DrawCheck:
         sig = [block.signal(n) for n in self.names]
         avg = [m.update(s.value, s.ok) for m, s in zip(self._means, sig, strict=True)]
         (t1, ok1), (t2, ok2), (v1, okv1), (v2, okv2) = avg
-        running = block.line_state == LineState.RUNNING
+        running = block.line_state == int(LineState.RUNNING)
         _, steady = self._steady.update(running.astype(float), running)
         pred = steady_span_tension(t1, v1, v2, self.et)
         acc1 = self.t1_acc[0] + self.t1_acc[1] * np.abs(t1)

@@ -146,7 +146,7 @@ class TractionCheck:
         u = traction_utilisation(up.value, down.value, mu_eff, self.wrap)
         no_drive = np.fmax(up.value, down.value) < self.min_t
         reason = combine_reasons(
-            (block.line_state == LineState.STOPPED, Reason.LINE_STATE),
+            (block.line_state == int(LineState.STOPPED), Reason.LINE_STATE),
             (~(up.ok & down.ok & vw.ok & vr.ok), Reason.INPUT_BAD),
             (no_drive | (lower <= 0), Reason.OUT_OF_DOMAIN),
             n=block.n,
