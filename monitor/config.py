@@ -381,7 +381,9 @@ class DaemonSection(Strict):
 
     history: str = "sqlite:///spanwatch.db"
     http: str = "127.0.0.1:9108"
-    latency: PosDuration = 0.3
+    latency: PosDuration | None = Field(
+        default=None, description="how far behind the clock frames are computed; default 50 ms plus the longest "
+                                  "OPC UA publishing interval")
     tick: PosDuration = 0.05
     startup_grace: Duration = 10.0
     log_level: Literal["debug", "info", "warning", "error"] = "info"

@@ -80,7 +80,10 @@ class Daemon:
         d = line.config.daemon
         self.line = line
         self.clock = clock
-        self.latency = d.latency if latency is None else latency
+        if latency is None:
+            latency = d.latency if d.latency is not None else 0.05 + max(
+                [s.publishing_interval for s in line.config.sources.values() if s.kind == "opcua"], default=0.0)
+        self.latency = latency
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
         self.history = History(history_url or d.history)
