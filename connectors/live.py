@@ -15,6 +15,7 @@ import abc
 import asyncio
 import contextlib
 import random
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -62,6 +63,7 @@ class LiveConnector(abc.ABC):
         first = True
         while not self._stop.is_set():
             self.state = "connecting" if first else "reconnecting"
+            began = time.monotonic()
             try:
                 await self._session()  # returns or raises when the connection ends
                 delay = self.reconnect_min
@@ -69,6 +71,8 @@ class LiveConnector(abc.ABC):
                 raise
             except Exception as exc:  # any failure means: reconnect later
                 self.stats.last_error = f"{type(exc).__name__}: {exc}"[:300]
+                if time.monotonic() - began > 60.0:  # a long session that ended: start the backoff afresh
+                    delay = self.reconnect_min
             if self._stop.is_set():
                 break
             first = False

@@ -186,7 +186,7 @@ def simulate_cmd(
     if serve_opcua is not None:
         import asyncio
 
-        from connectors.opcua_server import serve_forever
+        from monitor.simulate import serve_forever
 
         console.print(f"serving {line.name} at {serve_opcua} ({speedup:g}x); Ctrl-C stops", highlight=False)
         with contextlib.suppress(KeyboardInterrupt):
@@ -306,10 +306,13 @@ def alarms_cmd(
 @app.command("demo")
 def demo_cmd(
     scenario: Annotated[Path | None, typer.Option(help="Scenario to run (default: the built-in demo).")] = None,
-    speedup: Annotated[float, typer.Option(help="Simulated seconds per wall-clock second.")] = 16.0,
+    speedup: Annotated[float, typer.Option(help="Simulated seconds per wall-clock second.")] = 6.0,
     duration: Annotated[str | None, typer.Option(help="Stop after this much simulated time, e.g. '2 min'.")] = None,
     db: Annotated[Path | None, typer.Option(help="Keep the alarm history in this SQLite file.")] = None,
-    pace: Annotated[bool, typer.Option(help="Pace against the wall clock (off: as fast as possible).")] = True,
+    pace: Annotated[bool, typer.Option(help="Pace against the wall clock (off: as fast as possible, in process).")]
+    = True,
+    transport: Annotated[str, typer.Option(help="opcua: through an embedded OPC UA server and the OPC UA client; "
+                                                "direct: samples straight into the pipeline.")] = "opcua",
 ) -> None:
     """Watch a simulated line raise traction, roll-build and sensor alarms as they happen (no arguments needed)."""
     from monitor.demo import run_demo
@@ -324,8 +327,11 @@ def demo_cmd(
     if speedup <= 0:
         err_console.print(f"--speedup: expected a positive number, got {speedup}")
         raise typer.Exit(2)
+    if transport not in ("opcua", "direct"):
+        err_console.print(f"--transport: expected opcua or direct, got {transport!r}")
+        raise typer.Exit(2)
     try:
-        run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace)
+        run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
     except ConfigError as exc:
         fail_config(exc)
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import json
 import logging
 import signal
@@ -75,6 +76,7 @@ class Daemon:
 
     def __init__(self, line: Line, *, history_url: str | None = None, http: str | None = None,
                  clock: Callable[[], float] = time.time, latency: float | None = None, tick: float | None = None,
+                 max_latency: float | None = None,
                  connectors: list[LiveConnector] | None = None,
                  on_transition: Callable[[Transition], None] | None = None, mode: str = "daemon") -> None:
         d = line.config.daemon
@@ -84,6 +86,7 @@ class Daemon:
             latency = d.latency if d.latency is not None else 0.05 + max(
                 [s.publishing_interval for s in line.config.sources.values() if s.kind == "opcua"], default=0.0)
         self.latency = latency
+        self.max_latency = max(latency, d.max_latency if max_latency is None else max_latency)
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
         self.history = History(history_url or d.history)
@@ -122,6 +125,7 @@ class Daemon:
         for p in self.publishers:
             p.start()
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
+        gc.freeze()  # long-lived objects of the start-up out of the collector's way: shorter GC pauses
         try:
             while not self.stopping.is_set():
                 self.step()
@@ -148,8 +152,7 @@ class Daemon:
         batches, self.inbox[:] = list(self.inbox), []
         for b in batches:
             self.pipe.ingest(b)
-        until = self.clock() - (0.0 if final else self.latency)
-        trs = self.pipe.advance(until)
+        trs = self.pipe.advance(self._until(final))
         self.stats.ticks += 1
         self.stats.eval_seconds += time.perf_counter() - t0
         self.stats.last_tick_wall = time.time()
@@ -160,6 +163,17 @@ class Daemon:
             for p in self.publishers:
                 p.publish(trs, active)
         return trs
+
+    def _until(self, final: bool) -> float:
+        """How far frames may be computed: ``clock - latency``, but not past the newest sample while data
+        lags (a slow delivery must not read as a stale tag), and never more than ``max_latency`` behind."""
+        newest = self.pipe.last_t
+        if final:
+            return newest if newest is not None else self.clock()
+        until = self.clock() - self.latency
+        if newest is not None and newest < until:
+            until = max(newest, self.clock() - self.max_latency)
+        return until
 
     def request_stop(self) -> None:
         self.stopping.set()

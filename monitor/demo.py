@@ -1,17 +1,21 @@
 """``spanwatch demo``: the simulated line, monitored live, alarms printed as they happen.
 
-The simulated line runs paced against the wall clock at a speed-up factor; every
-tick its new samples go through the same pipeline the daemon uses, and every alarm
-transition is printed the moment it is computed. Nothing is written outside a
-temporary folder unless a database path is given.
+By default the simulated line runs behind an embedded OPC UA server on loopback (as a
+PLC would serve it) and spanwatch monitors it through its real OPC UA client and the
+same daemon that ``spanwatch run`` uses, paced against the wall clock at a speed-up
+factor; every alarm transition is printed the moment it is computed. ``transport =
+"direct"`` (or no pacing) feeds the simulated samples straight into the pipeline
+instead. Nothing is written outside a temporary folder unless a database path is given.
 """
 
 from __future__ import annotations
 
+import asyncio
 import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.table import Table
@@ -19,9 +23,12 @@ from rich.table import Table
 from connectors.simline import SimulatedLine, load_scenario
 from monitor.alarms import Transition
 from monitor.history import History, query_episodes, sqlite_url, state_name
-from monitor.line import load_line
+from monitor.line import Line, load_line
 from monitor.pipeline import Pipeline
 from monitor.present import fmt_value, transition_line
+
+if TYPE_CHECKING:
+    from monitor.daemon import Daemon
 
 REPO = Path(__file__).resolve().parent.parent
 DEFAULT_SCENARIO = REPO / "config" / "scenarios" / "demo.toml"
@@ -36,18 +43,93 @@ class DemoResult:
     wall_seconds: float
 
 
-def run_demo(console: Console, *, scenario: Path | None = None, speedup: float = 16.0, duration: float | None = None,
-             db: Path | None = None, tick: float = 0.1, pace: bool = True, status_every: float = 30.0) -> DemoResult:
+def run_demo(console: Console, *, scenario: Path | None = None, speedup: float = 6.0, duration: float | None = None,
+             db: Path | None = None, tick: float = 0.1, pace: bool = True, status_every: float = 30.0,
+             transport: str = "opcua") -> DemoResult:
     """Run the demo; returns what was raised and where the history went."""
     scenario = scenario or DEFAULT_SCENARIO
     sc, cfg_path = load_scenario(scenario)
     line = load_line(cfg_path)
     sim = SimulatedLine(line, sc)
     total = min(duration, sc.scenario.duration) if duration else sc.scenario.duration
-    tmp = None
+    tmp = tempfile.TemporaryDirectory(prefix="spanwatch-demo-")
     if db is None:
-        tmp = tempfile.TemporaryDirectory(prefix="spanwatch-demo-")
         db = Path(tmp.name) / "demo.db"
+    try:
+        if transport == "opcua" and pace:
+            return asyncio.run(_demo_opcua(console, sim, sc.scenario.name, scenario, total, speedup, db, Path(tmp.name),
+                                           status_every))
+        return _demo_direct(console, sim, line, scenario, total, speedup, db, tick, pace, status_every)
+    finally:
+        tmp.cleanup()
+
+
+def _banner(console: Console, line_name: str, plant: str, name: str, total: float, speedup: float, db: Path,
+            faults: str, via: str) -> None:
+    console.print(f"[bold]spanwatch demo[/]: {line_name} ({plant}), scenario [bold]{name}[/], {total / 60:.1f} "
+                  f"simulated minutes at {speedup:g}x (about {total / speedup:.0f} s) {via}; history in {db}",
+                  highlight=False)
+    console.print("Faults injected: " + faults, highlight=False)
+
+
+def _faults(sim: SimulatedLine) -> str:
+    return "; ".join(f"{f.kind} on {f.target or 'line'} from {f.start:.0f} s to {f.end:.0f} s" for f in sim.faults)
+
+
+async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario: Path, total: float, speedup: float,
+                      db: Path, tmp: Path, status_every: float) -> DemoResult:
+    """The simulated line behind an embedded OPC UA server, monitored through the OPC UA client and the daemon."""
+    import logging
+
+    from connectors.opcua_server import SimLineServer, opcua_line_config
+    from monitor.daemon import Daemon
+
+    logging.getLogger("asyncua").setLevel(logging.CRITICAL)
+    line = sim.line
+    natural = sum(1.0 / t.sample_period for t in line.tags.values())
+    server = SimLineServer(sim, speedup=speedup, start_time=time.time(),
+                           max_write_rate=min(6000.0, max(1500.0, 1.05 * natural * speedup)))
+    await server.start()
+    live_cfg = tmp / "line-opcua.toml"
+    # a queue per tag deep enough for a publishing interval at this speed-up, with room for a stalled loop
+    queue = int(min(5000, 50 * speedup * 10))
+    live_cfg.write_text(opcua_line_config(server.endpoint, base=line.file, queue_size=queue), encoding="utf-8")
+    live_line = load_line(live_cfg)
+    raised: list[Transition] = []
+
+    def show(tr: Transition) -> None:
+        text, style = transition_line(tr, sim.t0)
+        console.print(text, style=style, highlight=False, markup=False)
+        if tr.event == "raise":
+            raised.append(tr)
+
+    publishing = max(s.publishing_interval for s in live_line.config.sources.values())  # type: ignore[union-attr]
+    daemon = Daemon(live_line, history_url=sqlite_url(str(db)), http="", clock=server.clock,
+                    latency=(publishing + 0.05) * speedup, max_latency=2.0 * speedup, on_transition=show, mode="demo")
+    _banner(console, line.name, line.config.line.plant, name, total, speedup, db, _faults(sim),
+            f"behind an OPC UA server at {server.endpoint}")
+    wall0 = time.perf_counter()
+    task = asyncio.create_task(daemon.run())
+    next_status = status_every
+    try:
+        while sim.t < total - 1e-9 and not task.done():
+            await asyncio.sleep(0.1)
+            if sim.t >= next_status:
+                _status(console, daemon.pipe, sim.t, daemon)
+                next_status += status_every
+    finally:
+        daemon.request_stop()
+        await task
+        await server.stop()
+    wall = time.perf_counter() - wall0
+    episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=daemon.history.run_id)
+    _summary(console, episodes, daemon.pipe, sim.t, wall)
+    return DemoResult(str(db), raised, episodes, sim.t, wall)
+
+
+def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Path, total: float, speedup: float,
+                 db: Path, tick: float, pace: bool, status_every: float) -> DemoResult:
+    """The simulated samples straight into the pipeline (no transport), paced or as fast as possible."""
     history = History(sqlite_url(str(db)))
     history.start_run(mode="demo", line_name=line.name, config_file=line.file, config_hash=line.config_hash,
                       source=f"simulated: {scenario.name}")
@@ -60,11 +142,8 @@ def run_demo(console: Console, *, scenario: Path | None = None, speedup: float =
             raised.append(tr)
 
     pipe = Pipeline(line, history, on_transition=show)
-    console.print(f"[bold]spanwatch demo[/]: {line.name} ({line.config.line.plant}), scenario "
-                  f"[bold]{sc.scenario.name}[/], {total / 60:.1f} simulated minutes at {speedup:g}x "
-                  f"(about {total / speedup:.0f} s); history in {db}", highlight=False)
-    console.print("Faults injected: " + "; ".join(
-        f"{f.kind} on {f.target or 'line'} from {f.start:.0f} s to {f.end:.0f} s" for f in sc.fault), highlight=False)
+    _banner(console, line.name, line.config.line.plant, sim.sc.scenario.name, total, speedup, db, _faults(sim),
+            "fed in process" if pace else "as fast as possible, in process")
     wall0 = time.perf_counter()
     step = tick * speedup
     next_status = status_every
@@ -83,17 +162,16 @@ def run_demo(console: Console, *, scenario: Path | None = None, speedup: float =
     finally:
         history.close()
     wall = time.perf_counter() - wall0
-    episodes = query_episodes(History(sqlite_url(str(db))).engine)
+    episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=history.run_id)
     _summary(console, episodes, pipe, sim.t, wall)
-    result = DemoResult(str(db), raised, episodes, sim.t, wall)
-    if tmp is not None:
-        tmp.cleanup()
-        result.db_path = "(temporary, removed)"
-    return result
+    return DemoResult(str(db), raised, episodes, sim.t, wall)
 
 
-def _status(console: Console, pipe: Pipeline, t: float) -> None:
+def _status(console: Console, pipe: Pipeline, t: float, daemon: Daemon | None = None) -> None:
     parts = [f"+{int(t) // 60:02d}:{int(t) % 60:02d}", state_name(pipe.line_state or 0)]
+    if daemon is not None:
+        for c in daemon.connectors:
+            parts.append(f"{c.kind} {c.state}")
     for (kind, obj), (_, value, reason) in pipe.latest.items():
         if kind == "traction":
             parts.append(f"traction {obj} {value:.2f}" if reason == 0 else f"traction {obj} -")

@@ -40,8 +40,9 @@ def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
     verb = "RAISE" if tr.event == "raise" else "clear"
     value = fmt_value(tr.value if tr.event == "raise" else tr.peak, p.unit)
     what = "value" if tr.event == "raise" else "peak"
-    text = (f"{clock}{rel}  {verb:5}  {p.priority:6}  {p.kind:14} {p.object_id:22} {p.level:7}  "
-            f"{what} {value} (limit {fmt_limit(p.limit, p.unit, p.direction)})  [{state_name(tr.line_state)}]")
+    limit = fmt_limit(p.limit, p.unit, p.direction)
+    text = (f"{clock}{rel} {verb:5} {p.priority:6} {p.kind + ' ' + p.object_id:34} {p.level:7} {what} {value}"
+            f"{f' (limit {limit})' if limit else ''} [{state_name(tr.line_state)}]")
     style = PRIORITY_STYLE.get(p.priority, "") if tr.event == "raise" else "dim"
     return text, style
 

@@ -91,3 +91,20 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     if console is not None:
         console.print(f"published {sent} messages to {host}:{port} under {prefix}/", highlight=False)
     return sent
+
+
+async def serve_forever(sim: SimulatedLine, endpoint: str, *, speedup: float = 1.0) -> None:
+    """Serve the simulated line as an OPC UA server at ``endpoint`` (opc.tcp://HOST:PORT/...) until cancelled.
+
+    Sample times start at the wall clock now, so at ``speedup = 1`` a daemon reading the server
+    sees real times. Node ids are ``ns=2;s=<tag name>`` (see config/quillmere-q2-opcua.toml).
+    """
+    import time
+    from urllib.parse import urlparse
+
+    from connectors.opcua_server import SimLineServer
+
+    url = urlparse(endpoint)
+    server = SimLineServer(sim, host=url.hostname or "127.0.0.1", port=url.port or 4840, speedup=speedup,
+                           start_time=time.time())
+    await server.run(sim.sc.scenario.duration - sim.t)

@@ -94,6 +94,21 @@ def test_clean_shift_raises_nothing(tmp_path):
     assert query_episodes(History(sqlite_url(str(db))).engine) == []
 
 
+def test_demo_over_opcua(tmp_path):
+    # The default demo: the simulated line behind an embedded OPC UA server, read by the OPC UA client.
+    db = tmp_path / "demo.db"
+    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--duration", "50 s", "--speedup", "5",
+                           "--db", str(db)], capture_output=True, text=True, timeout=300, cwd=ROOT)
+    assert proc.returncode == 0, proc.stderr
+    flat = " ".join(proc.stdout.split())
+    assert "OPC UA server at opc.tcp://127.0.0.1:" in flat
+    episodes = query_episodes(History(sqlite_url(str(db))).engine)
+    # the speed ramp from 20 s pushes pull_2 into air entrainment; nothing else may alarm in 50 s
+    assert {(e["check"], e["object"]) for e in episodes} <= {("traction", "pull_2"), ("idler_lag", "idler_3"),
+                                                             ("idler_lag", "idler_5")}
+    assert any(e["check"] == "traction" and e["object"] == "pull_2" for e in episodes)
+
+
 def test_demo_command_runs(tmp_path):
     db = tmp_path / "demo.db"
     proc = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--duration", "2 min", "--no-pace",
