@@ -135,6 +135,7 @@ class SimLineServer:
         self.sim = sim
         if start_time is not None:  # sample times from this epoch on (e.g. time.time(): real times at 1x)
             sim.t0 = start_time - sim.t
+        self._follow_wall = start_time is not None
         self.host = host
         self.port = port or free_port(host)
         self.speedup, self.tick, self.max_write_rate = float(speedup), float(tick), float(max_write_rate)
@@ -359,6 +360,8 @@ class SimLineServer:
     async def _pump(self) -> None:
         sim = self.sim
         if self._anchor is None:
+            if self._follow_wall:  # starting the server takes seconds: sample times follow the wall from here
+                sim.t0 = time.time() - sim.t
             self._anchor = (time.monotonic(), sim.t)
         else:  # restarted: the line ran on while the server was down; what it produced then is lost
             lost = self._due(time.monotonic())

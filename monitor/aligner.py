@@ -33,14 +33,14 @@ class Aligner:
         self._pend: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(k)]
         self.next_frame: int | None = None  # index of the next frame to emit
         self.late = 0
+        self.grace_until = -np.inf  # until then, a tag's age counts from this time at the earliest
 
     def start_at(self, t: float, grace: float = 0.0) -> None:
         """Start the frame grid at ``t`` even before any sample arrives, so a tag that never reports goes
         stale; ``grace`` seconds are allowed for connecting before a never-seen tag ages."""
         if self.next_frame is None:
             self.next_frame = math.ceil(t * self.rate - 1e-9)
-        never = self.held_t == -np.inf
-        self.held_t[never] = t + grace
+        self.grace_until = t + grace
 
     @property
     def emitted_until(self) -> float:
@@ -112,7 +112,7 @@ class Aligner:
                 value[:, c] = self.held_v[c]
                 quality[:, c] = self.held_q[c]
                 st = np.full(n, self.held_t[c])
-            age[:, c] = frames - st
+            age[:, c] = frames - np.maximum(st, self.grace_until)
             # carry the newest sample at or before the last frame; keep the rest pending
             m = int(np.searchsorted(pt, t_end, side="right"))
             if m > 0:

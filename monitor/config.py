@@ -384,7 +384,7 @@ class DaemonSection(Strict):
     latency: PosDuration | None = Field(
         default=None, description="how far behind the clock frames are computed; default 50 ms plus the longest "
                                   "OPC UA publishing interval")
-    max_latency: PosDuration = 2.0
+    max_latency: PosDuration = 10.0
     tick: PosDuration = 0.05
     startup_grace: Duration = 10.0
     log_level: Literal["debug", "info", "warning", "error"] = "info"

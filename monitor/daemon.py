@@ -87,6 +87,9 @@ class Daemon:
                 [s.publishing_interval for s in line.config.sources.values() if s.kind == "opcua"], default=0.0)
         self.latency = latency
         self.max_latency = max(latency, d.max_latency if max_latency is None else max_latency)
+        self.delay = 0.0  # observed delivery delay (decaying maximum), seconds of the clock
+        self._delay_wall = time.monotonic()
+        self.frame_latency = latency
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
         self.history = History(history_url or d.history)
@@ -152,7 +155,7 @@ class Daemon:
         batches, self.inbox[:] = list(self.inbox), []
         for b in batches:
             self.pipe.ingest(b)
-        trs = self.pipe.advance(self._until(final))
+        trs = self.pipe.advance(self._until(final, batches))
         self.stats.ticks += 1
         self.stats.eval_seconds += time.perf_counter() - t0
         self.stats.last_tick_wall = time.time()
@@ -164,16 +167,25 @@ class Daemon:
                 p.publish(trs, active)
         return trs
 
-    def _until(self, final: bool) -> float:
-        """How far frames may be computed: ``clock - latency``, but not past the newest sample while data
-        lags (a slow delivery must not read as a stale tag), and never more than ``max_latency`` behind."""
-        newest = self.pipe.last_t
+    def _until(self, final: bool, batches: list[SampleBatch]) -> float:
+        """How far frames may be computed.
+
+        ``clock - (latency + observed delivery delay)``: the delay is how far behind the clock the newest
+        sample of each batch was when it was handed over (slow delivery, a source clock behind ours), kept
+        as a slowly decaying maximum, so a late batch does not read as stale tags; capped at ``max_latency``
+        so a source that has really stopped still goes stale within that time.
+        """
+        now = self.clock()
         if final:
-            return newest if newest is not None else self.clock()
-        until = self.clock() - self.latency
-        if newest is not None and newest < until:
-            until = max(newest, self.clock() - self.max_latency)
-        return until
+            return self.pipe.last_t if self.pipe.last_t is not None else now
+        wall = time.monotonic()
+        self.delay *= 0.5 ** ((wall - self._delay_wall) / 30.0)
+        self._delay_wall = wall
+        for b in batches:
+            if len(b):
+                self.delay = max(self.delay, now - float(b.t.max()))
+        self.frame_latency = min(self.max_latency, self.latency + max(0.0, self.delay))
+        return now - self.frame_latency
 
     def request_stop(self) -> None:
         self.stopping.set()
@@ -195,6 +207,7 @@ class Daemon:
             "line": self.line.name,
             "line_state": None if self.pipe.line_state is None else int(self.pipe.line_state),
             "frames": self.pipe.frames,
+            "frame_latency_s": round(self.frame_latency, 3),
             "samples": self.pipe.samples,
             "active_alarms": [p.key for p in self.pipe.engine.active()],
             "connectors": {c.name: {"kind": c.kind, "state": c.state, "samples_in": c.stats.samples_in,
@@ -264,6 +277,9 @@ class _Collector:
         frames = CounterMetricFamily("spanwatch_frames", "Frames computed")
         frames.add_metric([], d.pipe.frames)
         yield frames
+        lat = GaugeMetricFamily("spanwatch_frame_latency_seconds", "How far behind the clock frames are computed")
+        lat.add_metric([], d.frame_latency)
+        yield lat
         active = GaugeMetricFamily("spanwatch_active_alarms", "Active alarms by priority", labels=["priority"])
         counts = {"low": 0, "medium": 0, "high": 0}
         for p in d.pipe.engine.active():
