@@ -331,6 +331,20 @@ class TopicMap(Strict):
     pattern: str
     tag: str
 
+    @model_validator(mode="after")
+    def _wildcards(self) -> TopicMap:
+        levels = self.pattern.split("/")
+        for i, level in enumerate(levels):  # MQTT filter rules: '+' alone in a level, '#' alone and last
+            if ("+" in level and level != "+") or ("#" in level and (level != "#" or i != len(levels) - 1)):
+                raise ValueError(f"expected an MQTT topic filter ('+' alone in a level, '#' alone at the end), "
+                                 f"got {self.pattern!r}")
+        wild = sum(lv in ("+", "#") for lv in levels)
+        for n in re.findall(r"\{(\d+)\}", self.tag):
+            if not 1 <= int(n) <= wild:
+                raise ValueError(f"expected placeholders {{1}}..{{{wild}}} in the tag template (the filter has {wild} "
+                                 f"wildcard level(s)), got {self.tag!r}")
+        return self
+
 
 class MqttSource(Strict):
     """An MQTT broker; tags with ``source = NAME`` give their topic in ``address`` (or match ``topic_map``)."""
@@ -345,6 +359,9 @@ class MqttSource(Strict):
     key_file: str | None = None
     username: str | None = None
     password: Secret | None = None
+    protocol: Literal["5", "3.1.1"] = Field(
+        default="5", description="MQTT version; 3.1.1 decodes faster in paho but has no session expiry or "
+                                 "retain handling")
     qos: int = Field(default=1, ge=0, le=2)
     clean_start: bool = False
     session_expiry: PosDuration = 3600.0
@@ -381,9 +398,9 @@ class DaemonSection(Strict):
 
     history: str = "sqlite:///spanwatch.db"
     http: str = "127.0.0.1:9108"
-    latency: PosDuration | None = Field(
-        default=None, description="how far behind the clock frames are computed; default 50 ms plus the longest "
-                                  "OPC UA publishing interval")
+    latency: PosDuration = Field(
+        default=0.02, description="how far behind the clock frames are computed, on top of the delivery delay "
+                                  "the daemon observes (which follows e.g. an OPC UA publishing interval)")
     max_latency: PosDuration = 10.0
     tick: PosDuration = 0.05
     startup_grace: Duration = 10.0

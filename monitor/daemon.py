@@ -21,9 +21,11 @@ import json
 import logging
 import signal
 import time
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
+import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
 
@@ -82,13 +84,11 @@ class Daemon:
         d = line.config.daemon
         self.line = line
         self.clock = clock
-        if latency is None:
-            latency = d.latency if d.latency is not None else 0.05 + max(
-                [s.publishing_interval for s in line.config.sources.values() if s.kind == "opcua"], default=0.0)
+        latency = d.latency if latency is None else latency
         self.latency = latency
         self.max_latency = max(latency, d.max_latency if max_latency is None else max_latency)
-        self.delay = 0.0  # observed delivery delay (decaying maximum), seconds of the clock
-        self._delay_wall = time.monotonic()
+        self.delay = 0.0  # observed delivery delay (95th percentile of recent batches), seconds of the clock
+        self._delays: deque[float] = deque(maxlen=500)
         self.frame_latency = latency
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
@@ -99,8 +99,8 @@ class Daemon:
         restored = self.history.restore_open(self.pipe.engine)
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
-        self.inbox: list[SampleBatch] = []
-        self.connectors = connectors if connectors is not None else build_connectors(line, self.inbox.append)
+        self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
+        self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
         self.publishers = self._publishers()
         self.stats = TickStats()
         self.stopping = asyncio.Event()
@@ -126,7 +126,7 @@ class Daemon:
         if self.http:
             await self._start_http()
         for p in self.publishers:
-            p.start()
+            p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
         gc.freeze()  # long-lived objects of the start-up out of the collector's way: shorter GC pauses
         try:
@@ -149,13 +149,20 @@ class Daemon:
                 await self._server.wait_closed()
             self.history.close()
 
+    def receive(self, batch: SampleBatch) -> None:
+        """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
+        if len(batch):
+            self.inbox.append((self.clock(), batch))
+
     def step(self, *, final: bool = False) -> list[Transition]:
         """Feed what arrived, compute frames up to now minus the latency allowance, record, publish."""
         t0 = time.perf_counter()
-        batches, self.inbox[:] = list(self.inbox), []
-        for b in batches:
+        arrived, self.inbox[:] = list(self.inbox), []
+        for b in _merged([b for _, b in arrived]):
             self.pipe.ingest(b)
-        trs = self.pipe.advance(self._until(final, batches))
+        for at, b in arrived:
+            self._delays.append(at - float(b.t.max()))
+        trs = self.pipe.advance(self._until(final))
         self.stats.ticks += 1
         self.stats.eval_seconds += time.perf_counter() - t0
         self.stats.last_tick_wall = time.time()
@@ -167,23 +174,19 @@ class Daemon:
                 p.publish(trs, active)
         return trs
 
-    def _until(self, final: bool, batches: list[SampleBatch]) -> float:
+    def _until(self, final: bool) -> float:
         """How far frames may be computed.
 
         ``clock - (latency + observed delivery delay)``: the delay is how far behind the clock the newest
-        sample of each batch was when it was handed over (slow delivery, a source clock behind ours), kept
-        as a slowly decaying maximum, so a late batch does not read as stale tags; capped at ``max_latency``
-        so a source that has really stopped still goes stale within that time.
+        sample of each batch was when it arrived (slow delivery, a source clock behind ours), the
+        95th percentile over the last 500 batches, so ordinary delivery does not read as stale tags; capped
+        at ``max_latency`` so a source that has really stopped still goes stale within that time.
         """
         now = self.clock()
         if final:
             return self.pipe.last_t if self.pipe.last_t is not None else now
-        wall = time.monotonic()
-        self.delay *= 0.5 ** ((wall - self._delay_wall) / 30.0)
-        self._delay_wall = wall
-        for b in batches:
-            if len(b):
-                self.delay = max(self.delay, now - float(b.t.max()))
+        if self._delays:
+            self.delay = float(np.percentile(self._delays, 95))
         self.frame_latency = min(self.max_latency, self.latency + max(0.0, self.delay))
         return now - self.frame_latency
 
@@ -246,6 +249,20 @@ class Daemon:
             pass
         finally:
             writer.close()
+
+
+def _merged(batches: list[SampleBatch]) -> list[SampleBatch]:
+    """Join consecutive batches that share a tag list, so a tick ingests one batch per source."""
+    out: list[SampleBatch] = []
+    run: list[SampleBatch] = []
+    for b in batches:
+        if run and b.tags != run[0].tags:
+            out.append(SampleBatch.concat(run) if len(run) > 1 else run[0])
+            run = []
+        run.append(b)
+    if run:
+        out.append(SampleBatch.concat(run) if len(run) > 1 else run[0])
+    return out
 
 
 class _Collector:

@@ -28,3 +28,44 @@ def example_line():
 
 
 # --- end of physics and config test fixtures ------------------------------------------------
+
+
+# --- MQTT broker fixtures (tests/mqtt_broker.py) ----------------------------------------------
+# A real mosquitto per test on a free port of 127.0.0.1 (never the system broker on 1883). Missing mosquitto:
+# the test fails under CI=true and is skipped elsewhere, with the reason.
+
+
+@pytest.fixture
+def mqtt_broker(tmp_path: Path):
+    """A running mosquitto (anonymous, persistence on) with ``.host``, ``.port``, ``.stop()``, ``.restart()``."""
+    from mqtt_broker import MosquittoBroker, find_mosquitto, need
+
+    need("the mosquitto broker (mosquitto or /usr/sbin/mosquitto)", find_mosquitto())
+    broker = MosquittoBroker(tmp_path / "mosquitto").start()
+    try:
+        yield broker
+    finally:
+        broker.stop()
+
+
+@pytest.fixture
+def mqtt_broker_factory(tmp_path: Path):
+    """Make more brokers with options (``password_file``, ``tls``, ``require_certificate``); all stopped at the end."""
+    from mqtt_broker import MosquittoBroker, find_mosquitto, need
+
+    need("the mosquitto broker (mosquitto or /usr/sbin/mosquitto)", find_mosquitto())
+    made: list[MosquittoBroker] = []
+
+    def make(**options: object) -> MosquittoBroker:
+        broker = MosquittoBroker(tmp_path / f"mosquitto-{len(made)}", **options)  # type: ignore[arg-type]
+        made.append(broker)
+        return broker.start()
+
+    try:
+        yield make
+    finally:
+        for b in made:
+            b.stop()
+
+
+# --- end of MQTT broker fixtures -------------------------------------------------------------
