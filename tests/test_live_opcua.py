@@ -86,3 +86,43 @@ def test_daemon_rides_through_an_opcua_server_restart(tmp_path):
     assert {k.split(":")[1] for k in raised if k.startswith("tag_stale")} == set(load_line(tmp_path / "line.toml").tags)
     assert raised == cleared and open_eps == 0  # every alarm of the outage committed, raised and cleared
     assert not errors, errors
+
+
+def test_daemon_says_clearly_when_the_secured_server_refuses_it(tmp_path, monkeypatch, caplog):
+    """Basic256Sha256 SignAndEncrypt server with a user list; the daemon comes with the wrong password."""
+    from connectors.opcua_server import make_test_pki
+
+    logging.getLogger("asyncua").setLevel(logging.CRITICAL)
+    caplog.set_level(logging.INFO, logger="spanwatch")
+    pki = make_test_pki(tmp_path / "pki")
+    right, wrong = "Tarn-17!operator", "Tarn-17!operat0r"
+    monkeypatch.setenv("SPANWATCH_TEST_PW", wrong)
+
+    async def scenario() -> dict:
+        sc, cfg = load_scenario(STEADY)
+        sim = SimulatedLine(load_line(cfg), sc)
+        server = SimLineServer(sim, security=("SignAndEncrypt",), certificate=pki["server_cert"],
+                               private_key=pki["server_key"], trusted=[pki["ca_dir"]], users={"operator": right})
+        await server.start(pump=False)
+        live = tmp_path / "line.toml"
+        live.write_text(opcua_line_config(
+            server.endpoint, security_policy="Basic256Sha256", security_mode="SignAndEncrypt",
+            certificate=str(pki["client_cert"]), private_key=str(pki["client_key"]),
+            server_certificate=str(pki["server_cert"]), username="operator", password="env:SPANWATCH_TEST_PW",
+            reconnect_min="0.2 s", reconnect_max="1 s"), encoding="utf-8")
+        daemon = Daemon(load_line(live), history_url=sqlite_url(str(tmp_path / "h.db")), http="")
+        task = asyncio.create_task(daemon.run())
+        try:
+            await until(lambda: bool(daemon.connectors[0].stats.last_error), 20, "the refusal")
+            return daemon.status()
+        finally:
+            daemon.request_stop()
+            await task
+            await server.stop()
+
+    status = asyncio.run(scenario())
+    plc = status["connectors"]["plc"]
+    assert status["status"] == "degraded" and plc["state"] != "connected"
+    assert "refused" in plc["last_error"] and "BadUserAccessDenied" in plc["last_error"], plc["last_error"]
+    logs = "\n".join(r.getMessage() for r in caplog.records)
+    assert wrong not in str(status) and wrong not in logs and right not in logs
