@@ -95,13 +95,7 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     queue = int(min(5000, 50 * speedup * 10))
     live_cfg.write_text(opcua_line_config(server.endpoint, base=line.file, queue_size=queue), encoding="utf-8")
     live_line = load_line(live_cfg)
-    raised: list[Transition] = []
-
-    def show(tr: Transition) -> None:
-        text, style = transition_line(tr, sim.t0)
-        console.print(text, style=style, highlight=False, markup=False)
-        if tr.event == "raise":
-            raised.append(tr)
+    show = _Printer(console, sim.t0)
 
     publishing = max(s.publishing_interval for s in live_line.config.sources.values())  # type: ignore[union-attr]
     daemon = Daemon(live_line, history_url=sqlite_url(str(db)), http="", clock=server.clock,
@@ -124,7 +118,7 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     wall = time.perf_counter() - wall0
     episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=daemon.history.run_id)
     _summary(console, episodes, daemon.pipe, sim.t, wall)
-    return DemoResult(str(db), raised, episodes, sim.t, wall)
+    return DemoResult(str(db), show.raised, episodes, sim.t, wall)
 
 
 def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Path, total: float, speedup: float,
@@ -133,13 +127,7 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
     history = History(sqlite_url(str(db)))
     history.start_run(mode="demo", line_name=line.name, config_file=line.file, config_hash=line.config_hash,
                       source=f"simulated: {scenario.name}")
-    raised: list[Transition] = []
-
-    def show(tr: Transition) -> None:
-        text, style = transition_line(tr, sim.t0)
-        console.print(text, style=style, highlight=False, markup=False)
-        if tr.event == "raise":
-            raised.append(tr)
+    show = _Printer(console, sim.t0)
 
     pipe = Pipeline(line, history, on_transition=show)
     _banner(console, line.name, line.config.line.plant, sim.sc.scenario.name, total, speedup, db, _faults(sim),
@@ -164,7 +152,21 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
     wall = time.perf_counter() - wall0
     episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=history.run_id)
     _summary(console, episodes, pipe, sim.t, wall)
-    return DemoResult(str(db), raised, episodes, sim.t, wall)
+    return DemoResult(str(db), show.raised, episodes, sim.t, wall)
+
+
+class _Printer:
+    """Prints each alarm transition the moment it is computed; keeps the raises for the result."""
+
+    def __init__(self, console: Console, t0: float) -> None:
+        self.console, self.t0 = console, t0
+        self.raised: list[Transition] = []
+
+    def __call__(self, tr: Transition) -> None:
+        text, style = transition_line(tr, self.t0)
+        self.console.print(text, style=style, highlight=False, markup=False)
+        if tr.event == "raise":
+            self.raised.append(tr)
 
 
 def _status(console: Console, pipe: Pipeline, t: float, daemon: Daemon | None = None) -> None:
