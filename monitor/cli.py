@@ -356,6 +356,8 @@ def run_cmd(
     level = (log_level or line.config.daemon.log_level).upper()
     logging.basicConfig(level=getattr(logging, level, logging.INFO),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    if level != "DEBUG":  # asyncua logs a traceback for every lost connection; the connector reports it once
+        logging.getLogger("asyncua").setLevel(logging.CRITICAL)
     logging.getLogger("spanwatch").info("spanwatch %s monitoring %s; %s", __version__, line.name, SAFETY_NOTE)
     try:
         asyncio.run(run_daemon(line, history_url=_db_url(db) if db else None, http=http))
