@@ -117,6 +117,9 @@ class MosquittoBroker:
             f"persistence_location {self.folder}/",
             "persistence_file mosquitto.db",
             "autosave_interval 1800",
+            # mosquitto keeps at most 1000 QoS 1 messages per session by default and drops the rest silently;
+            # a broker feeding spanwatch should hold more (as the README says), and so does this one
+            "max_queued_messages 100000",
             f"log_dest file {self.log_path}",
             "log_type error",
             "log_type warning",
