@@ -370,7 +370,7 @@ off_delay = "0 s"
             time.sleep(0.002)
         return seen
 
-    cycles = 10
+    cycles = 30
     start_bad = time.time() + seconds
     plan.update(start=start_bad, cycles=cycles)
     pub = await asyncio.create_subprocess_exec(sys.executable, __file__, "--line-publisher", json.dumps(plan),
