@@ -25,3 +25,14 @@ def special_grid(k: int, rows: int = 4000, seed: int = 0) -> list[np.ndarray]:
 def nan_or(out: np.ndarray, ok: np.ndarray) -> bool:
     """Every element is NaN or satisfies ok."""
     return bool(np.all(np.isnan(out) | ok))
+
+
+def check_pure(table: dict, name: str, args: list) -> None:
+    """Call ``table[name] = (func, n_args, property)`` on ``args``: an array of the broadcast shape comes back,
+    no exception, and every element satisfies the documented property (when one is given)."""
+    func, _, prop = table[name]
+    out = func(*args)
+    assert isinstance(out, np.ndarray)
+    assert out.shape == np.broadcast_shapes(*(np.shape(a) for a in args))
+    if prop is not None:
+        assert prop(out), f"{name} returned a value outside its documented range: {out}"

@@ -19,6 +19,7 @@ import uuid
 from pathlib import Path
 
 import paho.mqtt.client as mqtt
+from livewait import until
 from paho.mqtt.enums import CallbackAPIVersion
 
 from connectors.simline import SimulatedLine, load_scenario
@@ -29,15 +30,6 @@ from monitor.simulate import publish_mqtt
 
 ROOT = Path(__file__).resolve().parent.parent
 STEADY = ROOT / "config" / "scenarios" / "steady.toml"
-
-
-async def until(pred, timeout: float, what: str) -> float:
-    start = time.monotonic()
-    while time.monotonic() - start < timeout:
-        if pred():
-            return time.monotonic() - start
-        await asyncio.sleep(0.1)
-    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
 
 
 def test_daemon_rides_through_a_broker_restart_and_publishes_its_alarms(mqtt_broker, tmp_path):

@@ -14,6 +14,8 @@ import sqlite3
 import time
 from pathlib import Path
 
+from livewait import until
+
 from connectors.opcua_server import SimLineServer, opcua_line_config
 from connectors.simline import SimulatedLine, load_scenario
 from monitor.daemon import Daemon
@@ -22,15 +24,6 @@ from monitor.line import load_line
 
 ROOT = Path(__file__).resolve().parent.parent
 STEADY = ROOT / "config" / "scenarios" / "steady.toml"
-
-
-async def until(pred, timeout: float, what: str) -> float:
-    start = time.monotonic()
-    while time.monotonic() - start < timeout:
-        if pred():
-            return time.monotonic() - start
-        await asyncio.sleep(0.1)
-    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
 
 
 def test_daemon_rides_through_an_opcua_server_restart(tmp_path):

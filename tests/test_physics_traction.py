@@ -10,7 +10,7 @@ import math
 
 import numpy as np
 import pytest
-from hostile import ANY_FLOAT, N_FUZZ, any_array, nan_or, special_grid
+from hostile import ANY_FLOAT, N_FUZZ, any_array, check_pure, nan_or, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -295,25 +295,16 @@ PURE = {
 }
 
 
-def _call_and_check(name, args):
-    func, _, prop = PURE[name]
-    out = func(*args)
-    assert isinstance(out, np.ndarray)
-    assert out.shape == np.broadcast_shapes(*(np.shape(a) for a in args))
-    if prop is not None:
-        assert prop(out), f"{name} returned a value outside its documented range: {out}"
-
-
 @pytest.mark.parametrize("name", sorted(PURE))
 def test_pure_functions_special_value_grid(name):
-    _call_and_check(name, special_grid(PURE[name][1], seed=0))
+    check_pure(PURE, name, special_grid(PURE[name][1], seed=0))
 
 
 @pytest.mark.parametrize("name", sorted(PURE))
 @settings(max_examples=60, deadline=None)
 @given(data=st.data())
 def test_pure_functions_any_float(name, data):
-    _call_and_check(name, [data.draw(any_array()) for _ in range(PURE[name][1])])
+    check_pure(PURE, name, [data.draw(any_array()) for _ in range(PURE[name][1])])
 
 
 @settings(max_examples=100, deadline=None)
