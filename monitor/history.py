@@ -180,6 +180,7 @@ class History:
         self.run_id: int | None = None
         self.config_hash = ""
         self._open: dict[str, int] = {}  # alarm key -> open episode id
+        self._raised: dict[tuple[str, float], int] = {}  # (alarm key, raise time) -> episode id, until its context
 
     def start_run(self, *, mode: str, line_name: str, config_file: str, config_hash: str, source: str = "",
                   started_at: float | None = None) -> int:
@@ -238,6 +239,7 @@ class History:
                     s.add(ep)
                     s.flush()
                     self._open[p.key] = ep.id
+                    self._raised[(p.key, tr.t)] = ep.id
                 elif tr.event == "clear":
                     ep_id = self._open.pop(p.key, None)
                     if ep_id is not None:
@@ -247,21 +249,20 @@ class History:
                             ep2.peak_value = _finite(tr.peak)
 
     def record_contexts(self, contexts: Iterable[Context]) -> None:
+        """Write context windows; each belongs to the episode raised at its ``raised_t``."""
         rows = []
+        done = set()
         for c in contexts:
-            ep_id = self._episode_for(c.key, c.raised_t)
+            ep_id = self._raised.get((c.key, c.raised_t))
             if ep_id is not None:
                 rows.append(AlarmContext(episode_id=ep_id, signal=c.signal, t0=c.t0, dt=c.dt,
                                          values=json.dumps(c.values)))
+                done.add((c.key, c.raised_t))
+        for k in done:
+            del self._raised[k]
         if rows:
             with Session(self.engine) as s, s.begin():
                 s.add_all(rows)
-
-    def _episode_for(self, key: str, raised_t: float) -> int | None:
-        with Session(self.engine) as s:
-            return s.scalar(select(AlarmEpisode.id).where(
-                AlarmEpisode.run_id == self.run_id, AlarmEpisode.alarm_key == key,
-                AlarmEpisode.raised_t == raised_t))
 
     def finish_run(self, *, input_rows: list[dict[str, object]], data_start: float | None = None,
                    data_end: float | None = None) -> None:

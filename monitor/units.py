@@ -140,7 +140,7 @@ def to_si(value: object, kind: Kind, *, default_unit: str | None = None) -> floa
     if str(q.units) == "dimensionless" and kind is not DIMENSIONLESS:  # a bare number inside a string
         raise UnitError(f"expected {kind.name} with a unit such as {kind.example}, got the bare number {value!r}")
     try:
-        if kind is ROTATION and _unit_is_hertz(q):
+        if kind is ROTATION and _is_hertz(str(q.units)):
             si = float(q.magnitude) * _hertz_scale(q)
         elif kind is FREQUENCY:
             si = float(q.to("1/s").magnitude) if not _unit_is_rotation(q) else float(q.to("turn/s").magnitude)
@@ -151,10 +151,6 @@ def to_si(value: object, kind: Kind, *, default_unit: str | None = None) -> floa
     if not math.isfinite(si):
         raise UnitError(f"expected a finite {kind.name} such as {kind.example}, got {value!r}")
     return si
-
-
-def _unit_is_hertz(q: pint.Quantity) -> bool:
-    return str(q.units) in {"hertz", "kilohertz", "megahertz"}
 
 
 def _hertz_scale(q: pint.Quantity) -> float:

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import asyncio
+import sqlite3
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
+from pathlib import Path
 
 
 async def until(pred: Callable[[], object], timeout: float, what: str) -> float:
@@ -15,3 +17,17 @@ async def until(pred: Callable[[], object], timeout: float, what: str) -> float:
             return time.monotonic() - start
         await asyncio.sleep(0.1)
     raise AssertionError(f"timed out after {timeout} s waiting for {what}")
+
+
+def assert_outage_committed(db: Path, tags: Iterable[str]) -> None:
+    """Every tag went stale during the outage, and every alarm raised was also cleared, in the history."""
+    con = sqlite3.connect(db)
+    try:
+        rows = con.execute("select alarm_key, event from alarm_events order by id").fetchall()
+        open_eps = con.execute("select count(*) from alarm_episodes where cleared_t is null").fetchone()[0]
+    finally:
+        con.close()
+    raised = {k for k, e in rows if e == "raise"}
+    cleared = {k for k, e in rows if e == "clear"}
+    assert {k.split(":")[1] for k in raised if k.startswith("tag_stale")} == set(tags)
+    assert raised == cleared and open_eps == 0

@@ -118,3 +118,11 @@ def test_demo_command_runs(tmp_path):
     assert "advisory" in proc.stdout
     episodes = query_episodes(History(sqlite_url(str(db))).engine)
     assert any(e["check"] == "traction" and e["object"] == "pull_2" for e in episodes)
+    # every raise keeps a context window of the signals its check read (before and after the raise)
+    import sqlite3
+
+    con = sqlite3.connect(db)
+    counts = con.execute("select e.id, count(c.id) from alarm_episodes e left join alarm_context c "
+                         "on c.episode_id = e.id group by e.id").fetchall()
+    con.close()
+    assert counts and all(n >= 1 for _, n in counts), counts

@@ -12,14 +12,13 @@ from __future__ import annotations
 
 import asyncio
 import json
-import sqlite3
 import threading
 import time
 import uuid
 from pathlib import Path
 
 import paho.mqtt.client as mqtt
-from livewait import until
+from livewait import assert_outage_committed, until
 from paho.mqtt.enums import CallbackAPIVersion
 
 from connectors.simline import SimulatedLine, load_scenario
@@ -103,14 +102,7 @@ startup_grace = "2 s"
         listener.disconnect()
     assert out["before"] == []
     assert out["reconnects"] >= 1
-    con = sqlite3.connect(tmp_path / "h.db")
-    rows = con.execute("select alarm_key, event from alarm_events order by id").fetchall()
-    open_eps = con.execute("select count(*) from alarm_episodes where cleared_t is null").fetchone()[0]
-    con.close()
-    raised = {k for k, e in rows if e == "raise"}
-    cleared = {k for k, e in rows if e == "clear"}
-    assert {k.split(":")[1] for k in raised if k.startswith("tag_stale")} == set(line.tags)
-    assert raised == cleared and open_eps == 0
+    assert_outage_committed(tmp_path / "h.db", line.tags)
     # the transitions went out on the alarm topic too (QoS 1, persistent listener session): at least the clears,
     # which happen after the broker is back
     with lock:

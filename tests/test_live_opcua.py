@@ -10,11 +10,10 @@ from __future__ import annotations
 
 import asyncio
 import logging
-import sqlite3
 import time
 from pathlib import Path
 
-from livewait import until
+from livewait import assert_outage_committed, until
 
 from connectors.opcua_server import SimLineServer, opcua_line_config
 from connectors.simline import SimulatedLine, load_scenario
@@ -70,14 +69,7 @@ def test_daemon_rides_through_an_opcua_server_restart(tmp_path):
     out = asyncio.run(scenario())
     assert out["before"] == []  # a clean line before the outage
     assert out["reconnects"] >= 1
-    con = sqlite3.connect(tmp_path / "h.db")
-    rows = con.execute("select alarm_key, event from alarm_events order by id").fetchall()
-    open_eps = con.execute("select count(*) from alarm_episodes where cleared_t is null").fetchone()[0]
-    con.close()
-    raised = {k for k, e in rows if e == "raise"}
-    cleared = {k for k, e in rows if e == "clear"}
-    assert {k.split(":")[1] for k in raised if k.startswith("tag_stale")} == set(load_line(tmp_path / "line.toml").tags)
-    assert raised == cleared and open_eps == 0  # every alarm of the outage committed, raised and cleared
+    assert_outage_committed(tmp_path / "h.db", load_line(tmp_path / "line.toml").tags)
     assert not errors, errors
 
 
