@@ -167,8 +167,13 @@ def test_sigkill_loses_no_committed_alarm_and_restart_carries_on(tmp_path):
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     proc = subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
     try:
-        committed = wait_for(lambda: db.exists() and [e for e in episodes(db) if "q2.unwind.rpm" in e[1]], 60,
-                             "the stale alarm to be committed")
+        def stale_committed() -> list[tuple]:
+            try:  # the file exists a moment before the daemon has created its tables
+                return [e for e in episodes(db) if "q2.unwind.rpm" in e[1]] if db.exists() else []
+            except sqlite3.OperationalError:
+                return []
+
+        committed = wait_for(stale_committed, 60, "the stale alarm to be committed")
         proc.send_signal(signal.SIGKILL)
         proc.wait(timeout=10)
     finally:
