@@ -19,7 +19,7 @@ $(STAMP): pyproject.toml
 
 test: $(STAMP)
 	$(PY) -m ruff check .
-	$(PY) -m pytest
+	$(VENV)/bin/pytest
 
 demo: $(STAMP)
 	$(VENV)/bin/spanwatch demo

@@ -1,7 +1,7 @@
 """Sustained MQTT ingest: messages per second with zero loss, and end-to-end latency.
 
 Starts its own mosquitto on a free port of 127.0.0.1 (like the test fixture; the system
-broker is never used), runs an :class:`~connectors.mqtt.MqttConnector` in this process and
+broker is never used), runs an :class:`~spanwatch.connectors.mqtt.MqttConnector` in this process and
 a publisher in a separate process (this script with ``--publisher``), all on loopback.
 
 1. **Throughput.** ``--count`` JSON messages across ``--tags`` topics at QoS 1, as fast
@@ -190,7 +190,7 @@ def line_publisher(plan: dict) -> None:
 
 
 def spec_for(port: int, queue_size: int, overflow: str) -> object:
-    from monitor.config import MqttSource
+    from spanwatch.monitor.config import MqttSource
 
     return MqttSource(kind="mqtt", port=port, client_id="bench-connector", payload="json", value_path="value",
                       time_path="time", quality_path=None, subscribe=["quillmere/q2/bench/#"],
@@ -209,9 +209,9 @@ async def _wait(pred, timeout: float) -> bool:
 
 async def throughput(port: int, count: int, tags: int, queue_size: int, overflow: str, inflight: int,
                      tool: str) -> dict:
-    from connectors.base import SampleBatch
-    from connectors.mqtt import MqttConnector
-    from monitor.config import TagSection
+    from spanwatch.connectors.base import SampleBatch
+    from spanwatch.connectors.mqtt import MqttConnector
+    from spanwatch.monitor.config import TagSection
 
     names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}
     seen = np.zeros(count, dtype=np.int32)
@@ -258,9 +258,9 @@ async def throughput(port: int, count: int, tags: int, queue_size: int, overflow
 
 async def latency(port: int, rate: float, seconds: float, tags: int, queue_size: int, overflow: str,
                   inflight: int) -> dict:
-    from connectors.base import SampleBatch
-    from connectors.mqtt import MqttConnector
-    from monitor.config import TagSection
+    from spanwatch.connectors.base import SampleBatch
+    from spanwatch.connectors.mqtt import MqttConnector
+    from spanwatch.monitor.config import TagSection
 
     count = int(rate * seconds)
     names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}
@@ -295,7 +295,7 @@ async def latency(port: int, rate: float, seconds: float, tags: int, queue_size:
 async def to_alarm_row(port: int, seconds: float, rate: float) -> dict | None:
     """Line Q2 over MQTT through the daemon; publish -> committed tag_range raise. None without the daemon."""
     try:
-        import monitor.daemon  # noqa: F401
+        import spanwatch.monitor.daemon  # noqa: F401
     except ImportError:
         return None
     folder = Path(tempfile.mkdtemp(prefix="spanwatch-bench-"))
@@ -308,9 +308,9 @@ async def to_alarm_row(port: int, seconds: float, rate: float) -> dict | None:
 async def _to_alarm_row(port: int, seconds: float, folder: Path, rate: float) -> dict:
     import sqlite3
 
-    from monitor.daemon import Daemon
-    from monitor.history import sqlite_url
-    from monitor.line import load_line
+    from spanwatch.monitor.daemon import Daemon
+    from spanwatch.monitor.history import sqlite_url
+    from spanwatch.monitor.line import load_line
 
     base = load_line(ROOT / "config" / "quillmere-q2.toml")
     tags = base.config.tags

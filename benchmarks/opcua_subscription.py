@@ -4,7 +4,7 @@ Usage: python benchmarks/opcua_subscription.py [--minutes 10] [--tags 200] [--wa
 
 An in-process asyncua server (https://github.com/FreeOpcUa/opcua-asyncio) serves ``--tags``
 Double variables and writes a new value with a fresh SourceTimestamp into every one of them every
-100 ms; an :class:`connectors.opcua.OpcUaConnector` subscribes to all of them (sampling 100 ms,
+100 ms; an :class:`spanwatch.connectors.opcua.OpcUaConnector` subscribes to all of them (sampling 100 ms,
 publishing 100 ms) and hands its batches to a sink that only counts them. After ``--warmup``
 seconds the process's resident memory (RSS, from /proc/self/statm) is sampled every 10 s for
 ``--minutes`` minutes. Printed: RSS at the start (after warm-up) and at the end, the slope of a
@@ -33,11 +33,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from asyncua import Server, ua  # noqa: E402
-
-from connectors.base import SampleBatch  # noqa: E402
-from connectors.opcua import OpcUaConnector  # noqa: E402
-from connectors.opcua_server import free_port  # noqa: E402
-from monitor.config import OpcUaSource, TagSection  # noqa: E402
+from spanwatch.connectors.base import SampleBatch  # noqa: E402
+from spanwatch.connectors.opcua import OpcUaConnector  # noqa: E402
+from spanwatch.connectors.opcua_server import free_port  # noqa: E402
+from spanwatch.monitor.config import OpcUaSource, TagSection  # noqa: E402
 
 PAGE = os.sysconf("SC_PAGE_SIZE")
 RSS_EVERY = 10.0  # seconds

@@ -32,13 +32,13 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from connectors.recording import read_recording  # noqa: E402
-from connectors.simline import SimulatedLine  # noqa: E402
-from connectors.simline.scenario import parse_scenario  # noqa: E402
-from monitor.line import load_line  # noqa: E402
-from monitor.simulate import simulate_to_file  # noqa: E402
-from rules.airfilm import combined_roughness, effective_cof  # noqa: E402
-from rules.traction import traction_utilisation  # noqa: E402
+from spanwatch.connectors.recording import read_recording  # noqa: E402
+from spanwatch.connectors.simline import SimulatedLine  # noqa: E402
+from spanwatch.connectors.simline.scenario import parse_scenario  # noqa: E402
+from spanwatch.monitor.line import load_line  # noqa: E402
+from spanwatch.monitor.simulate import simulate_to_file  # noqa: E402
+from spanwatch.rules.airfilm import combined_roughness, effective_cof  # noqa: E402
+from spanwatch.rules.traction import traction_utilisation  # noqa: E402
 
 CONFIG = ROOT / "config" / "quillmere-q2.toml"
 
@@ -62,7 +62,7 @@ def make_recording(path: Path, minutes: float) -> tuple[int, float]:
 
 def child_replay(recording: str, db: str) -> None:
     """Run in a fresh process so ru_maxrss is the replay's own peak."""
-    from monitor.replay import replay
+    from spanwatch.monitor.replay import replay
 
     line = load_line(CONFIG)
     s = replay(line, recording, f"sqlite:///{db}")

@@ -1,6 +1,5 @@
-"""Sample sources: the simulated line, recordings, and (later) live OPC UA and MQTT connectors.
+"""Adapters: OPC UA, MQTT, recordings and the history store. They import only :mod:`spanwatch.rules`.
 
-Every source hands the monitor :class:`connectors.base.SampleBatch` objects: tag
-samples with their source timestamp, raw value in the tag's configured unit, and a
-quality code.
+Every source hands the application :class:`spanwatch.rules.samples.SampleBatch` objects: tag
+samples with their source timestamp, raw value in the tag's configured unit, and a quality code.
 """

@@ -23,7 +23,7 @@ queue holds the network thread: the broker's in-flight window fills and it keeps
 queued for the session: backpressure instead of loss (up to the broker's own queue limit).
 With ``"drop_oldest"`` the oldest queued sample makes room and is counted. A task on the
 event loop drains the queue every few milliseconds and hands whole batches to ``sink``
-(a :class:`~connectors.base.SampleBatch` of many samples per call), so the checks never
+(a :class:`~spanwatch.connectors.base.SampleBatch` of many samples per call), so the checks never
 run on the network thread and ``sink`` is always called on the event loop's thread.
 
 **Connection.** :meth:`LiveConnector.run` owns the reconnect loop (capped exponential
@@ -73,14 +73,13 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from paho.mqtt.subscribeoptions import SubscribeOptions
-
-from connectors.base import QUALITY_CODES, SampleBatch
-from connectors.live import ConnectorStats, LiveConnector
-from connectors.secrets import SecretError, redact, resolve_secret
-from monitor.alarms import Transition
-from monitor.checkset import AlarmPoint
-from monitor.config import MqttSource, TagSection, TopicMap
-from monitor.history import iso, state_name
+from spanwatch.connectors.base import QUALITY_CODES, SampleBatch
+from spanwatch.connectors.live import ConnectorStats, LiveConnector
+from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.checkset import AlarmPoint
+from spanwatch.monitor.config import MqttSource, TagSection, TopicMap
+from spanwatch.monitor.history import iso, state_name
 
 log = logging.getLogger("spanwatch.mqtt")
 

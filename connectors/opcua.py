@@ -1,7 +1,7 @@
 """Live OPC UA source: a data-change subscription on the tags of one server, delivered as sample batches.
 
-:class:`OpcUaConnector` is a :class:`~connectors.live.LiveConnector` built from a ``[sources.NAME]``
-table with ``kind = "opcua"`` (:class:`monitor.config.OpcUaSource`) and the tags whose ``source``
+:class:`OpcUaConnector` is a :class:`~spanwatch.connectors.live.LiveConnector` built from a ``[sources.NAME]``
+table with ``kind = "opcua"`` (:class:`spanwatch.monitor.config.OpcUaSource`) and the tags whose ``source``
 is NAME; each tag's ``address`` is a node id (``ns=2;s=Q2.S5.Tension``, ``ns=3;i=1042``, or with
 the namespace URI instead of its index, ``nsu=urn:plc:q2;s=Q2.S5.Tension``, resolved at every
 connect because a server may renumber its namespaces when it restarts).
@@ -13,14 +13,14 @@ backoff by :meth:`LiveConnector.run`):
    ``Basic256Sha256`` with ``Sign`` / ``SignAndEncrypt`` (client certificate and private key files;
    the server certificate pinned from ``server_certificate`` if given, otherwise taken from the
    server's endpoint description without verification), and a user name and password (the password
-   resolved by :func:`connectors.secrets.resolve_secret` at every connect, never logged, redacted from
+   resolved by :func:`spanwatch.connectors.secrets.resolve_secret` at every connect, never logged, redacted from
    every error text).
 2. Create one subscription (publishing interval ``publishing_interval``) with one monitored item per
    tag: sampling interval ``sampling_interval`` or the tag's ``sample_period``, server queue
    ``queue_size``, and a DataChangeFilter with trigger StatusValueTimestamp, so a value that repeats
    with a new source timestamp (a frozen sensor) is still reported as an update and not mistaken for a
    stale tag. Servers that refuse the filter get the item without it.
-3. Every Publish response becomes one :class:`~connectors.base.SampleBatch` handed to ``sink`` on the
+3. Every Publish response becomes one :class:`~spanwatch.connectors.base.SampleBatch` handed to ``sink`` on the
    event loop (one call per publishing interval, split above ``max_batch`` samples): the value as a
    float (booleans 0/1), the SourceTimestamp in epoch seconds UTC, else the ServerTimestamp (counted in
    ``stats.server_timestamps``), else the arrival time (also counted there); the quality from the
@@ -73,11 +73,10 @@ from asyncua.common.subscription import Subscription
 from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
 from cryptography import x509
 from cryptography.x509.oid import NameOID
-
-from connectors.base import SampleBatch
-from connectors.live import LiveConnector
-from connectors.secrets import SecretError, redact, resolve_secret
-from monitor.config import OpcUaSource, TagSection
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.live import LiveConnector
+from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
+from spanwatch.monitor.config import OpcUaSource, TagSection
 
 log = logging.getLogger("spanwatch.opcua")
 

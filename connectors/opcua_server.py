@@ -1,6 +1,6 @@
 """An OPC UA server for the simulated line, in process: what a PLC would serve, for the demo, tests and benchmarks.
 
-:class:`SimLineServer` serves a :class:`~connectors.simline.SimulatedLine` with asyncua's
+:class:`SimLineServer` serves a :class:`~spanwatch.connectors.simline.SimulatedLine` with asyncua's
 ``Server`` (https://github.com/FreeOpcUa/opcua-asyncio): one object for the line
 (``ns=<idx>;s=line``, browse name the line's name) and under it one variable per config tag,
 node id ``ns=<idx>;s=<tag name>`` (``ns=2;s=q2.s5.tension``: the namespace ``urn:spanwatch:simline``
@@ -67,10 +67,9 @@ from asyncua.server.user_managers import UserManager
 from cryptography import x509
 from cryptography.hazmat.primitives.serialization import Encoding
 from cryptography.x509.oid import ExtendedKeyUsageOID
-
-from connectors.base import SampleBatch
-from connectors.simline import SimulatedLine
-from monitor import units as U
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.simline import SimulatedLine
+from spanwatch.monitor import units as U
 
 NAMESPACE_URI = "urn:spanwatch:simline"
 SERVER_URI = "urn:spanwatch:simline-server"
@@ -490,7 +489,7 @@ def opcua_line_config(endpoint: str, *, base: str | Path = EXAMPLE_CONFIG, sourc
     block.append("")
     out: list[str] = [
         "# Line Q2 read live over OPC UA: the example line (quillmere-q2.toml) with an OPC UA source.",
-        f"# Made by connectors.opcua_server.opcua_line_config; every tag has source = \"{source}\" and the "
+        f"# Made by spanwatch.connectors.opcua_server.opcua_line_config; every tag has source = \"{source}\" and the "
         "node id", "# the simulated line's server gives it (SimLineServer: ns=2;s=<tag name>).", ""]
     lines = text.splitlines()
     first_tag = next((k for k, ln in enumerate(lines) if _TAG_HEADER.match(ln)), len(lines))
@@ -507,8 +506,8 @@ def opcua_line_config(endpoint: str, *, base: str | Path = EXAMPLE_CONFIG, sourc
     if insert_at >= len(lines):
         out.extend(block)
     result = "\n".join(out) + "\n"
-    from monitor.config import parse_config
-    from monitor.line import build_line
+    from spanwatch.monitor.config import parse_config
+    from spanwatch.monitor.line import build_line
 
     build_line(parse_config(tomllib.loads(result), "<opcua_line_config>"), "<opcua_line_config>")
     return result

@@ -1,3 +1,1 @@
-"""spanwatch monitor: alignment, line state, pipeline, alarms, history and the CLI."""
-
-__version__ = "0.1.0"
+"""The application: config, line model, pipeline, daemon, CLI, demo and replay; wires rules and connectors."""

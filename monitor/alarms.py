@@ -1,6 +1,6 @@
 """Alarm handling: from check values to raised and cleared alarms.
 
-Each :class:`~monitor.checkset.AlarmPoint` (a check on one object at one level) is a
+Each :class:`~spanwatch.monitor.checkset.AlarmPoint` (a check on one object at one level) is a
 small state machine, evaluated over whole blocks of frames with numpy:
 
 1. **Condition with deadband** (ISA-18.2 / IEC 62682 nuisance-alarm tools): the
@@ -24,10 +24,9 @@ import itertools
 from dataclasses import dataclass
 
 import numpy as np
-
-from monitor.checkset import AlarmPoint
-from rules.base import CheckResult, Reason
-from rules.windows import forward_fill_index
+from spanwatch.monitor.checkset import AlarmPoint
+from spanwatch.rules.base import CheckResult, Reason
+from spanwatch.rules.windows import forward_fill_index
 
 _OK, _LINE_STATE = int(Reason.OK), int(Reason.LINE_STATE)
 

@@ -12,8 +12,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-
-from rules.base import QUALITY_NONE, TagFrames
+from spanwatch.rules.base import QUALITY_NONE, TagFrames
 
 REJECT_OUT_OF_ORDER = "out of order"
 REJECT_DUPLICATE = "duplicate timestamp"

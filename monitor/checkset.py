@@ -11,18 +11,17 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
-
-from monitor.config import AlarmOverride, CheckSection, ConfigError, RollerSection, WinderSection
-from monitor.line import Line
-from rules.airfilm import combined_roughness
-from rules.base import Block, Check
-from rules.catalog import CHECK_KINDS
-from rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
-from rules.runout import RunoutCheck
-from rules.slip import IdlerLagCheck, SlipCheck
-from rules.span import DrawCheck
-from rules.traction import NoDriveCheck, TractionCheck
-from rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
+from spanwatch.monitor.config import AlarmOverride, CheckSection, ConfigError, RollerSection, WinderSection
+from spanwatch.monitor.line import Line
+from spanwatch.rules.airfilm import combined_roughness
+from spanwatch.rules.base import Block, Check
+from spanwatch.rules.catalog import CHECK_KINDS
+from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
+from spanwatch.rules.runout import RunoutCheck
+from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
+from spanwatch.rules.span import DrawCheck
+from spanwatch.rules.traction import NoDriveCheck, TractionCheck
+from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
 
 LEVELS = ("warning", "alarm")
 

@@ -14,12 +14,11 @@ from typing import Annotated
 import typer
 from rich.console import Console
 from rich.table import Table
-
-from monitor import __version__
-from monitor import units as U
-from monitor.checkset import alarm_points, build_checks
-from monitor.config import ConfigError
-from monitor.line import Line, load_line
+from spanwatch import __version__
+from spanwatch.monitor import units as U
+from spanwatch.monitor.checkset import alarm_points, build_checks
+from spanwatch.monitor.config import ConfigError
+from spanwatch.monitor.line import Line, load_line
 
 app = typer.Typer(
     name="spanwatch",
@@ -156,8 +155,8 @@ def simulate_cmd(
     speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
     """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
-    from connectors.simline import SimulatedLine, load_scenario
-    from monitor.simulate import simulate_to_file
+    from spanwatch.connectors.simline import SimulatedLine, load_scenario
+    from spanwatch.monitor.simulate import simulate_to_file
 
     try:
         sc, cfg = load_scenario(scenario)
@@ -174,7 +173,7 @@ def simulate_cmd(
     if publish_mqtt is not None:
         import asyncio
 
-        from monitor.simulate import publish_mqtt as publish
+        from spanwatch.monitor.simulate import publish_mqtt as publish
 
         host, _, port = publish_mqtt.rpartition(":")
         if not port.isdigit():
@@ -186,7 +185,7 @@ def simulate_cmd(
     if serve_opcua is not None:
         import asyncio
 
-        from monitor.simulate import serve_forever
+        from spanwatch.monitor.simulate import serve_forever
 
         console.print(f"serving {line.name} at {serve_opcua} ({speedup:g}x); Ctrl-C stops", highlight=False)
         with contextlib.suppress(KeyboardInterrupt):
@@ -211,8 +210,7 @@ def replay_cmd(
 ) -> None:
     """Run a recording through the checks as fast as the CPU allows; alarms go to the history database."""
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn, TransferSpeedColumn
-
-    from monitor.replay import replay
+    from spanwatch.monitor.replay import replay
 
     line = open_line(config)
     if not recording.exists():
@@ -258,8 +256,8 @@ def alarms_cmd(
     import json
     from datetime import datetime
 
-    from monitor.history import make_engine, query_episodes
-    from monitor.present import fmt_value
+    from spanwatch.monitor.history import make_engine, query_episodes
+    from spanwatch.monitor.present import fmt_value
 
     if fmt not in ("table", "csv", "json"):
         err_console.print(f"--format: expected table, csv or json, got {fmt!r}")
@@ -315,7 +313,7 @@ def demo_cmd(
                                                 "direct: samples straight into the pipeline.")] = "opcua",
 ) -> None:
     """Watch a simulated line raise traction, roll-build and sensor alarms as they happen (no arguments needed)."""
-    from monitor.demo import run_demo
+    from spanwatch.monitor.demo import run_demo
 
     dur = None
     if duration is not None:
@@ -347,7 +345,7 @@ def run_cmd(
     import asyncio
     import logging
 
-    from monitor.daemon import run_daemon
+    from spanwatch.monitor.daemon import run_daemon
 
     line = open_line(config)
     if not line.config.sources:
@@ -376,7 +374,7 @@ def opcua_browse_cmd(
     """List the variables under a node of an OPC UA server, to fill in the tag map."""
     import asyncio
 
-    from connectors.opcua import browse
+    from spanwatch.connectors.opcua import browse
 
     try:
         rows = asyncio.run(browse(endpoint, node, depth))

@@ -28,8 +28,7 @@ from pydantic import (
     ValidationError,
     model_validator,
 )
-
-from monitor import units as U
+from spanwatch.monitor import units as U
 
 
 class ConfigError(Exception):
@@ -508,7 +507,7 @@ def config_files(path: str | Path) -> list[Path]:
 
 
 def load_config(path: str | Path) -> LineConfig:
-    """Read and validate a line file (see :func:`monitor.line.load_line` for the derived line)."""
+    """Read and validate a line file (see :func:`spanwatch.monitor.line.load_line` for the derived line)."""
     path = Path(path)
     data, files = read_toml(path)
     name = str(path) if len(files) == 1 else f"{path} (extends {', '.join(str(f) for f in files[:-1])})"

@@ -12,8 +12,7 @@ from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
-
-from monitor.history import Context
+from spanwatch.monitor.history import Context
 
 
 @dataclass

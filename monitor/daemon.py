@@ -28,13 +28,12 @@ from dataclasses import dataclass, field
 import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
-
-from connectors.base import SampleBatch
-from connectors.live import LiveConnector
-from monitor.alarms import Transition
-from monitor.history import History
-from monitor.line import Line
-from monitor.pipeline import Pipeline
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.live import LiveConnector
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.history import History
+from spanwatch.monitor.line import Line
+from spanwatch.monitor.pipeline import Pipeline
 
 log = logging.getLogger("spanwatch.daemon")
 
@@ -54,17 +53,17 @@ def build_connectors(line: Line, sink: Callable[[SampleBatch], None]) -> list[Li
     for name, spec in cfg.sources.items():
         tags = line.tags_of_source(name)
         if spec.kind == "opcua":
-            from connectors.opcua import OpcUaConnector
+            from spanwatch.connectors.opcua import OpcUaConnector
 
             out.append(OpcUaConnector(name, spec, tags, sink))
         elif spec.kind == "mqtt":
-            from connectors.mqtt import MqttConnector
+            from spanwatch.connectors.mqtt import MqttConnector
 
             out.append(MqttConnector(name, spec, tags, sink))
         else:
             from pathlib import Path
 
-            from connectors.simsource import SimulatedConnector
+            from spanwatch.connectors.simsource import SimulatedConnector
 
             scenario = Path(spec.scenario)
             if not scenario.is_absolute():
@@ -113,7 +112,7 @@ class Daemon:
         pubs = []
         for spec in self.line.config.sources.values():
             if spec.kind == "mqtt" and (spec.alarm_topic or spec.active_topic):
-                from connectors.mqtt import MqttAlarmPublisher
+                from spanwatch.connectors.mqtt import MqttAlarmPublisher
 
                 pubs.append(MqttAlarmPublisher(spec))
         return pubs

@@ -19,16 +19,15 @@ from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.table import Table
-
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.alarms import Transition
-from monitor.history import History, query_episodes, sqlite_url, state_name
-from monitor.line import Line, load_line
-from monitor.pipeline import Pipeline
-from monitor.present import fmt_value, transition_line
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.history import History, query_episodes, sqlite_url, state_name
+from spanwatch.monitor.line import Line, load_line
+from spanwatch.monitor.pipeline import Pipeline
+from spanwatch.monitor.present import fmt_value, transition_line
 
 if TYPE_CHECKING:
-    from monitor.daemon import Daemon
+    from spanwatch.monitor.daemon import Daemon
 
 REPO = Path(__file__).resolve().parent.parent
 DEFAULT_SCENARIO = REPO / "config" / "scenarios" / "demo.toml"
@@ -81,8 +80,8 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     """The simulated line behind an embedded OPC UA server, monitored through the OPC UA client and the daemon."""
     import logging
 
-    from connectors.opcua_server import SimLineServer, opcua_line_config
-    from monitor.daemon import Daemon
+    from spanwatch.connectors.opcua_server import SimLineServer, opcua_line_config
+    from spanwatch.monitor.daemon import Daemon
 
     logging.getLogger("asyncua").setLevel(logging.CRITICAL)
     line = sim.line

@@ -26,6 +26,8 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
+from spanwatch.monitor.alarms import AlarmEngine, Transition
+from spanwatch.rules.base import LineState
 from sqlalchemy import (
     Float,
     ForeignKey,
@@ -39,9 +41,6 @@ from sqlalchemy import (
 )
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column
-
-from monitor.alarms import AlarmEngine, Transition
-from rules.base import LineState
 
 
 class Base(DeclarativeBase):

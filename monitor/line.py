@@ -4,7 +4,7 @@ The config lists rollers, winders and spans; this module checks that the spans f
 one web path from the unwind to the rewind, splits the path into *tension zones*
 (the spans between two driven elements — winders and driven rollers — share one
 tension when the idlers between them have no drag), and says which tag feeds which
-signal. Cross-reference errors are :class:`~monitor.config.ConfigError` with the key
+signal. Cross-reference errors are :class:`~spanwatch.monitor.config.ConfigError` with the key
 path of the offending entry.
 """
 
@@ -15,9 +15,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-
-from monitor import units as U
-from monitor.config import (
+from spanwatch.monitor import units as U
+from spanwatch.monitor.config import (
     ConfigError,
     LineConfig,
     RollerSection,
@@ -26,9 +25,9 @@ from monitor.config import (
     config_files,
     load_config,
 )
-from rules.airfilm import air_viscosity, combined_roughness, effective_cof
-from rules.traction import capstan_ratio_limit, traction_utilisation
-from rules.woundroll import taper_tension
+from spanwatch.rules.airfilm import air_viscosity, combined_roughness, effective_cof
+from spanwatch.rules.traction import capstan_ratio_limit, traction_utilisation
+from spanwatch.rules.woundroll import taper_tension
 
 
 @dataclass(frozen=True)

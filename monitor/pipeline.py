@@ -2,7 +2,7 @@
 
 One :class:`Pipeline` owns all streaming state of one line (aligner, line-state and
 roll-change trackers, check windows, alarm states). Sources push
-:class:`~connectors.base.SampleBatch` objects with :meth:`Pipeline.ingest`; whoever
+:class:`~spanwatch.connectors.base.SampleBatch` objects with :meth:`Pipeline.ingest`; whoever
 drives the clock calls :meth:`Pipeline.advance` with the time up to which frames may
 be computed (the newest sample time minus a small lag in a replay, the wall clock
 minus the network latency allowance live). Everything per frame is numpy over a
@@ -15,18 +15,17 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-
-from connectors.base import SampleBatch
-from monitor.alarms import AlarmEngine, Transition
-from monitor.aligner import Aligner
-from monitor.checkset import alarm_points, build_checks
-from monitor.context import ContextRecorder
-from monitor.history import History
-from monitor.inputs import InputStats
-from monitor.line import Line
-from monitor.signals import SignalDeriver
-from rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason
-from rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.monitor.alarms import AlarmEngine, Transition
+from spanwatch.monitor.aligner import Aligner
+from spanwatch.monitor.checkset import alarm_points, build_checks
+from spanwatch.monitor.context import ContextRecorder
+from spanwatch.monitor.history import History
+from spanwatch.monitor.inputs import InputStats
+from spanwatch.monitor.line import Line
+from spanwatch.monitor.signals import SignalDeriver
+from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason
+from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
 
 
 @dataclass

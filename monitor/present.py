@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import math
 
-from monitor.alarms import Transition
-from monitor.history import state_name
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.history import state_name
 
 PRIORITY_STYLE = {"high": "bold red", "medium": "yellow", "low": "cyan"}
 

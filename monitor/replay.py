@@ -7,10 +7,10 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from connectors.recording import ReadProblems, read_recording
-from monitor.history import History
-from monitor.line import Line
-from monitor.pipeline import Pipeline
+from spanwatch.connectors.recording import ReadProblems, read_recording
+from spanwatch.monitor.history import History
+from spanwatch.monitor.line import Line
+from spanwatch.monitor.pipeline import Pipeline
 
 
 @dataclass

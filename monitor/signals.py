@@ -10,10 +10,9 @@ computed as ``V_web / (pi n)``.
 from __future__ import annotations
 
 import numpy as np
-
-from monitor.line import Line
-from rules.base import QUALITY_GOOD, Signal, TagFrames
-from rules.woundroll import diameter_from_speed
+from spanwatch.monitor.line import Line
+from spanwatch.rules.base import QUALITY_GOOD, Signal, TagFrames
+from spanwatch.rules.woundroll import diameter_from_speed
 
 
 class SignalDeriver:

@@ -8,10 +8,9 @@ from pathlib import Path
 
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-
-from connectors.base import SampleBatch
-from connectors.recording import write_recording
-from connectors.simline import SimulatedLine
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.recording import write_recording
+from spanwatch.connectors.simline import SimulatedLine
 
 
 def truth_path_for(out: Path) -> Path:
@@ -102,7 +101,7 @@ async def serve_forever(sim: SimulatedLine, endpoint: str, *, speedup: float = 1
     import time
     from urllib.parse import urlparse
 
-    from connectors.opcua_server import SimLineServer
+    from spanwatch.connectors.opcua_server import SimLineServer
 
     url = urlparse(endpoint)
     server = SimLineServer(sim, host=url.hostname or "127.0.0.1", port=url.port or 4840, speedup=speedup,

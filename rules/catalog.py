@@ -3,12 +3,12 @@ one builder in monitor/checkset.py."""
 
 from __future__ import annotations
 
-from rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
-from rules.runout import RunoutCheck
-from rules.slip import IdlerLagCheck, SlipCheck
-from rules.span import DrawCheck
-from rules.traction import NoDriveCheck, TractionCheck
-from rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
+from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
+from spanwatch.rules.runout import RunoutCheck
+from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
+from spanwatch.rules.span import DrawCheck
+from spanwatch.rules.traction import NoDriveCheck, TractionCheck
+from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
 
 CHECK_CLASSES = (
     TractionCheck,

@@ -18,9 +18,8 @@ noise falls with the square root of the window.
 from __future__ import annotations
 
 import numpy as np
-
-from rules.base import Block, LineState, Signal
-from rules.windows import Lagged, RollingMean, forward_fill_index
+from spanwatch.rules.base import Block, LineState, Signal
+from spanwatch.rules.windows import Lagged, RollingMean, forward_fill_index
 
 _STOPPED, _THREADING, _ACCELERATING, _RUNNING, _DECELERATING = (
     int(LineState.STOPPED), int(LineState.THREADING), int(LineState.ACCELERATING), int(LineState.RUNNING),

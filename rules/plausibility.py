@@ -11,8 +11,7 @@ from __future__ import annotations
 from typing import ClassVar
 
 import numpy as np
-
-from rules.base import (
+from spanwatch.rules.base import (
     MOVING_STATES,
     QUALITY_GOOD,
     QUALITY_NONE,
@@ -23,7 +22,7 @@ from rules.base import (
     combine_reasons,
     finalise,
 )
-from rules.windows import forward_fill_index
+from spanwatch.rules.windows import forward_fill_index
 
 
 def _flag(unit: str, priority: str, on: float, off: float, cause: str, consequence: str, action: str

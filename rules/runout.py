@@ -13,8 +13,7 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-
-from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
 
 
 def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:

@@ -12,8 +12,7 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-
-from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
 
 
 def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:

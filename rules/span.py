@@ -10,9 +10,8 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-
-from rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
-from rules.windows import RollingMean
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.windows import RollingMean
 
 
 def span_tension_rate(t2: ArrayLike, t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike,

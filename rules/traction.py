@@ -19,9 +19,8 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-
-from rules.airfilm import effective_cof
-from rules.base import (
+from spanwatch.rules.airfilm import effective_cof
+from spanwatch.rules.base import (
     PRODUCTION_STATES,
     AlarmDefaults,
     Block,

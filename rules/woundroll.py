@@ -15,8 +15,7 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-
-from rules.base import (
+from spanwatch.rules.base import (
     MOVING_STATES,
     AlarmDefaults,
     Block,
@@ -26,7 +25,7 @@ from rules.base import (
     combine_reasons,
     finalise,
 )
-from rules.windows import Lagged, RollingMean
+from spanwatch.rules.windows import Lagged, RollingMean
 
 # --- pure geometry -------------------------------------------------------------------
 

@@ -21,8 +21,8 @@ def example_config_path() -> Path:
 
 @pytest.fixture(scope="session")
 def example_line():
-    """The derived line of the example configuration (monitor.line.load_line)."""
-    from monitor.line import load_line
+    """The derived line of the example configuration (spanwatch.monitor.line.load_line)."""
+    from spanwatch.monitor.line import load_line
 
     return load_line(EXAMPLE_CONFIG)
 

@@ -19,10 +19,9 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from monitor.alarms import AlarmEngine, Transition
-from monitor.checkset import AlarmPoint
-from rules.base import CheckResult, LineState, Reason
+from spanwatch.monitor.alarms import AlarmEngine, Transition
+from spanwatch.monitor.checkset import AlarmPoint
+from spanwatch.rules.base import CheckResult, LineState, Reason
 
 RATE = 10.0  # frames per second
 T0_FRAME = 17_724_276_000  # frame index of the first frame (epoch-aligned, as the aligner makes them)

@@ -13,9 +13,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from monitor.aligner import REJECT_DUPLICATE, REJECT_OUT_OF_ORDER, Aligner
-from rules.base import QUALITY_NONE
+from spanwatch.monitor.aligner import REJECT_DUPLICATE, REJECT_OUT_OF_ORDER, Aligner
+from spanwatch.rules.base import QUALITY_NONE
 
 NAMES = ("a", "b", "c")
 T0 = 1_772_427_600.0

@@ -20,10 +20,9 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
+from spanwatch.monitor.cli import app
+from spanwatch.rules.base import LineState
 from typer.testing import CliRunner
-
-from monitor.cli import app
-from rules.base import LineState
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config" / "quillmere-q2.toml"
@@ -59,7 +58,7 @@ end = "120 s"
 
 def cli(*args: str) -> subprocess.CompletedProcess:
     """Run the real CLI in a fresh interpreter; fail with its output if it does not exit 0."""
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", *args], cwd=REPO, capture_output=True, text=True,
+    proc = subprocess.run([sys.executable, "-m", "spanwatch", *args], cwd=REPO, capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 0, f"spanwatch {' '.join(args)} exited {proc.returncode}:\n{proc.stdout}\n{proc.stderr}"
     return proc

@@ -38,13 +38,13 @@ to = "400 m/min"
 
 def test_serve_opcua_and_browse_it(tmp_path):
     endpoint = f"opc.tcp://127.0.0.1:{free_port()}/spanwatch/"
-    server = subprocess.Popen([sys.executable, "-m", "monitor.cli", "simulate", str(short_scenario(tmp_path, 120)),
+    server = subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(short_scenario(tmp_path, 120)),
                                "--serve-opcua", endpoint], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
     try:
         deadline = time.monotonic() + 60
         out = ""
         while time.monotonic() < deadline:
-            proc = subprocess.run([sys.executable, "-m", "monitor.cli", "opcua-browse", endpoint, "--format", "toml"],
+            proc = subprocess.run([sys.executable, "-m", "spanwatch", "opcua-browse", endpoint, "--format", "toml"],
                                   cwd=ROOT, capture_output=True, text=True, timeout=60)
             if proc.returncode == 0 and "q2.s5.tension" in proc.stdout:
                 out = proc.stdout
@@ -74,7 +74,7 @@ def test_publish_mqtt_sends_every_sample(mqtt_broker, tmp_path):
     sub.loop_start()
     time.sleep(0.5)
     try:
-        proc = subprocess.run([sys.executable, "-m", "monitor.cli", "simulate", str(short_scenario(tmp_path, 3)),
+        proc = subprocess.run([sys.executable, "-m", "spanwatch", "simulate", str(short_scenario(tmp_path, 3)),
                                "--publish-mqtt", f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "3"],
                               cwd=ROOT, capture_output=True, text=True, timeout=120)
         assert proc.returncode == 0, proc.stdout + proc.stderr

@@ -11,12 +11,11 @@ import tomllib
 from pathlib import Path
 
 import pytest
+from spanwatch.monitor.checkset import alarm_points, build_checks
+from spanwatch.monitor.cli import app
+from spanwatch.monitor.config import ConfigError, key_path, load_config
+from spanwatch.monitor.line import load_line
 from typer.testing import CliRunner
-
-from monitor.checkset import alarm_points, build_checks
-from monitor.cli import app
-from monitor.config import ConfigError, key_path, load_config
-from monitor.line import load_line
 
 REPO = Path(__file__).resolve().parents[1]
 EXAMPLES = sorted((REPO / "config").glob("*.toml"))
@@ -94,7 +93,7 @@ def test_check_config_standstill_capacity_matches_capstan_equation():
 
 def test_check_config_real_entry_point_happy_path():
     example = str(REPO / "config" / "quillmere-q2.toml")
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "check-config", example],
+    proc = subprocess.run([sys.executable, "-m", "spanwatch", "check-config", example],
                           capture_output=True, text=True, cwd=REPO, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.count("standstill") == len(load_line(REPO / "config" / "quillmere-q2.toml").driven_rollers)
@@ -201,7 +200,7 @@ def test_broken_config_real_entry_point(case, example_text, tmp_path):
     text = _typo(example_text) if case == "typo_key" else example_text.replace("[line]", "[line", 1)
     path = tmp_path / f"{case}.toml"
     path.write_text(text, encoding="utf-8")
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "check-config", str(path)],
+    proc = subprocess.run([sys.executable, "-m", "spanwatch", "check-config", str(path)],
                           capture_output=True, text=True, cwd=REPO, timeout=120)
     assert proc.returncode == 2
     message = flat(proc.stderr)

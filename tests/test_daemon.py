@@ -19,10 +19,9 @@ import urllib.request
 from pathlib import Path
 
 import pytest
-
-from monitor.daemon import Daemon
-from monitor.history import sqlite_url
-from monitor.line import load_line
+from spanwatch.monitor.daemon import Daemon
+from spanwatch.monitor.history import sqlite_url
+from spanwatch.monitor.line import load_line
 
 ROOT = Path(__file__).resolve().parent.parent
 CONFIG = ROOT / "config" / "quillmere-q2.toml"
@@ -163,7 +162,7 @@ def test_sigkill_loses_no_committed_alarm_and_restart_carries_on(tmp_path):
     port = free_port()
     cfg = write_config(tmp_path, http=f"127.0.0.1:{port}")
     db = tmp_path / "history.db"
-    cmd = [sys.executable, "-m", "monitor.cli", "run", "--config", str(cfg), "--log-level", "warning"]
+    cmd = [sys.executable, "-m", "spanwatch", "run", "--config", str(cfg), "--log-level", "warning"]
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     proc = subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
     try:

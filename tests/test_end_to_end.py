@@ -12,12 +12,11 @@ import sys
 from pathlib import Path
 
 import pytest
-
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.alarms import Transition
-from monitor.history import History, query_episodes, sqlite_url
-from monitor.line import load_line
-from monitor.pipeline import Pipeline
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.history import History, query_episodes, sqlite_url
+from spanwatch.monitor.line import load_line
+from spanwatch.monitor.pipeline import Pipeline
 
 ROOT = Path(__file__).resolve().parent.parent
 SCEN = ROOT / "config" / "scenarios"
@@ -97,7 +96,7 @@ def test_clean_shift_raises_nothing(tmp_path):
 def test_demo_over_opcua(tmp_path):
     # The default demo: the simulated line behind an embedded OPC UA server, read by the OPC UA client.
     db = tmp_path / "demo.db"
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--duration", "50 s", "--speedup", "5",
+    proc = subprocess.run([sys.executable, "-m", "spanwatch", "demo", "--duration", "50 s", "--speedup", "5",
                            "--db", str(db)], capture_output=True, text=True, timeout=300, cwd=ROOT)
     assert proc.returncode == 0, proc.stderr
     flat = " ".join(proc.stdout.split())
@@ -111,7 +110,7 @@ def test_demo_over_opcua(tmp_path):
 
 def test_demo_command_runs(tmp_path):
     db = tmp_path / "demo.db"
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--duration", "2 min", "--no-pace",
+    proc = subprocess.run([sys.executable, "-m", "spanwatch", "demo", "--duration", "2 min", "--no-pace",
                            "--db", str(db)], capture_output=True, text=True, timeout=300, cwd=ROOT)
     assert proc.returncode == 0, proc.stderr
     assert "RAISE" in proc.stdout and "traction" in proc.stdout

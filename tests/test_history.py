@@ -20,12 +20,11 @@ from datetime import datetime
 from pathlib import Path
 
 import pytest
+from spanwatch.monitor.alarms import Transition
+from spanwatch.monitor.checkset import AlarmPoint
+from spanwatch.monitor.history import History, latest_run, make_engine, query_episodes, sqlite_url
+from spanwatch.rules.base import LineState
 from sqlalchemy import text
-
-from monitor.alarms import Transition
-from monitor.checkset import AlarmPoint
-from monitor.history import History, latest_run, make_engine, query_episodes, sqlite_url
-from rules.base import LineState
 
 REPO = Path(__file__).resolve().parents[1]
 PG_BASE = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
@@ -267,9 +266,9 @@ def test_sqlite_file_is_in_wal_mode(tmp_path):
 
 WRITER = textwrap.dedent("""
     import sys
-    from monitor.alarms import Transition
-    from monitor.checkset import AlarmPoint
-    from monitor.history import History
+    from spanwatch.monitor.alarms import Transition
+    from spanwatch.monitor.checkset import AlarmPoint
+    from spanwatch.monitor.history import History
 
     h = History(sys.argv[1])
     run = h.start_run(mode="daemon", line_name="crash test", config_file="f", config_hash="h")

@@ -14,13 +14,13 @@ import time
 import uuid
 from pathlib import Path
 
-from connectors.opcua_server import SimLineServer
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.daemon import Daemon
-from monitor.history import sqlite_url
-from monitor.line import load_line
-from monitor.simulate import publish_mqtt
-from rules.base import Reason
+from spanwatch.connectors.opcua_server import SimLineServer
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.daemon import Daemon
+from spanwatch.monitor.history import sqlite_url
+from spanwatch.monitor.line import load_line
+from spanwatch.monitor.simulate import publish_mqtt
+from spanwatch.rules.base import Reason
 
 ROOT = Path(__file__).resolve().parent.parent
 STEADY = ROOT / "config" / "scenarios" / "steady.toml"

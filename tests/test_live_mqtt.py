@@ -1,7 +1,7 @@
 """The daemon on a live MQTT source: the broker goes away and comes back.
 
 A real mosquitto (started by the fixture on a free port), the simulated line published to it
-in real time by ``monitor.simulate.publish_mqtt`` (JSON payloads, QoS 1), and the daemon with
+in real time by ``spanwatch.monitor.simulate.publish_mqtt`` (JSON payloads, QoS 1), and the daemon with
 the example MQTT configuration (``config/quillmere-q2-mqtt.toml``) reading it; no protocol
 mocks. While the broker is down the daemon must show the outage (connector state, stale
 alarms on every tag) and clear it by itself after the restart; every transition committed,
@@ -20,12 +20,11 @@ from pathlib import Path
 import paho.mqtt.client as mqtt
 from livewait import assert_outage_committed, until
 from paho.mqtt.enums import CallbackAPIVersion
-
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.daemon import Daemon
-from monitor.history import sqlite_url
-from monitor.line import load_line
-from monitor.simulate import publish_mqtt
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.daemon import Daemon
+from spanwatch.monitor.history import sqlite_url
+from spanwatch.monitor.line import load_line
+from spanwatch.monitor.simulate import publish_mqtt
 
 ROOT = Path(__file__).resolve().parent.parent
 STEADY = ROOT / "config" / "scenarios" / "steady.toml"

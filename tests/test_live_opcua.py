@@ -14,12 +14,11 @@ import time
 from pathlib import Path
 
 from livewait import assert_outage_committed, until
-
-from connectors.opcua_server import SimLineServer, opcua_line_config
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.daemon import Daemon
-from monitor.history import sqlite_url
-from monitor.line import load_line
+from spanwatch.connectors.opcua_server import SimLineServer, opcua_line_config
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.daemon import Daemon
+from spanwatch.monitor.history import sqlite_url
+from spanwatch.monitor.line import load_line
 
 ROOT = Path(__file__).resolve().parent.parent
 STEADY = ROOT / "config" / "scenarios" / "steady.toml"
@@ -75,7 +74,7 @@ def test_daemon_rides_through_an_opcua_server_restart(tmp_path):
 
 def test_daemon_says_clearly_when_the_secured_server_refuses_it(tmp_path, monkeypatch, caplog):
     """Basic256Sha256 SignAndEncrypt server with a user list; the daemon comes with the wrong password."""
-    from connectors.opcua_server import make_test_pki
+    from spanwatch.connectors.opcua_server import make_test_pki
 
     logging.getLogger("asyncua").setLevel(logging.CRITICAL)
     caplog.set_level(logging.INFO, logger="spanwatch")

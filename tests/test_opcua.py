@@ -1,4 +1,4 @@
-"""The OPC UA connector against a real asyncua server in process (connectors.opcua_server.SimLineServer).
+"""The OPC UA connector against a real asyncua server in process (spanwatch.connectors.opcua_server.SimLineServer).
 
 No protocol mocks: every test runs asyncua's Server on a loopback port and the connector's asyncua
 Client against it. What the tests hold the connector to comes from outside the project:
@@ -29,13 +29,12 @@ from typing import Any
 import numpy as np
 import pytest
 from asyncua import ua
-
-from connectors.base import SampleBatch
-from connectors.opcua import OpcUaConnector, browse
-from connectors.opcua_server import SimLineServer, make_test_pki, opcua_line_config
-from connectors.simline import SimulatedLine, load_scenario
-from monitor.config import OpcUaSource, TagSection, parse_config
-from monitor.line import load_line
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.opcua import OpcUaConnector, browse
+from spanwatch.connectors.opcua_server import SimLineServer, make_test_pki, opcua_line_config
+from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.config import OpcUaSource, TagSection, parse_config
+from spanwatch.monitor.line import load_line
 
 REPO = Path(__file__).resolve().parents[1]
 STEADY = REPO / "config" / "scenarios" / "steady.toml"

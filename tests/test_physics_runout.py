@@ -12,13 +12,12 @@ import numpy as np
 import pytest
 from hostile import ANY_FLOAT, N_FUZZ, SPECIAL, any_array, special_grid
 from hypothesis import given, settings
-
-from monitor.checkset import build_checks
-from monitor.line import load_line
-from rules.base import QUALITY_GOOD, Block, CheckResult, LineState, Reason, Signal, TagFrames, finalise
-from rules.linestate import classify_line_state
-from rules.plausibility import out_of_range
-from rules.runout import RunoutCheck, goertzel, order_amplitude, rotation_frequency, sinusoid_amplitude
+from spanwatch.monitor.checkset import build_checks
+from spanwatch.monitor.line import load_line
+from spanwatch.rules.base import QUALITY_GOOD, Block, CheckResult, LineState, Reason, Signal, TagFrames, finalise
+from spanwatch.rules.linestate import classify_line_state
+from spanwatch.rules.plausibility import out_of_range
+from spanwatch.rules.runout import RunoutCheck, goertzel, order_amplitude, rotation_frequency, sinusoid_amplitude
 
 # --- Goertzel against numpy.fft ----------------------------------------------------------
 
@@ -196,7 +195,7 @@ def test_runout_check_undersampled_rotation_is_out_of_domain():
 
 
 # --- every streaming check of the example line on hostile blocks ----------------------------
-# Built with monitor.checkset.build_checks(load_line(config/quillmere-q2.toml)). A block of good,
+# Built with spanwatch.monitor.checkset.build_checks(load_line(config/quillmere-q2.toml)). A block of good,
 # self-consistent running data (long enough for every window and the roll calibration) is followed by
 # a block in which every signal and every tag is hostile, with the line state still RUNNING and every
 # signal claiming ok, so the checks themselves must notice.

@@ -12,8 +12,7 @@ from hostile import ANY_FLOAT, any_array, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
-
-from rules.span import draw_band, draw_for_tension, span_tension_rate, steady_span_tension
+from spanwatch.rules.span import draw_band, draw_for_tension, span_tension_rate, steady_span_tension
 
 # Example web: 1.2 mil BOPP, E = 2.2 GPa -> Et = E * caliper per unit width.
 ET = 2.2e9 * 1.2 * 25.4e-6

@@ -13,9 +13,8 @@ import pytest
 from hostile import ANY_FLOAT, N_FUZZ, any_array, check_pure, nan_or, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from rules import slip
-from rules.airfilm import (
+from spanwatch.rules import slip
+from spanwatch.rules.airfilm import (
     KNOX_SWEENEY_CONSTANT,
     air_viscosity,
     combined_roughness,
@@ -24,8 +23,8 @@ from rules.airfilm import (
     knox_sweeney_h0,
     traction_derating,
 )
-from rules.base import Block, LineState, Reason, Signal, TagFrames
-from rules.traction import UTILISATION_CAP, TractionCheck, capstan_ratio_limit, traction_utilisation
+from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
+from spanwatch.rules.traction import UTILISATION_CAP, TractionCheck, capstan_ratio_limit, traction_utilisation
 
 # --- capstan equation -------------------------------------------------------------------------
 

@@ -14,8 +14,7 @@ from hostile import any_array, check_pure, nan_or, special_grid
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from scipy.integrate import quad
-
-from rules.woundroll import (
+from spanwatch.rules.woundroll import (
     diameter_from_speed,
     effective_caliper,
     taper_tension,

@@ -12,9 +12,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from connectors.base import SampleBatch
-from connectors.recording import ReadProblems, parse_times, read_recording, write_recording
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.recording import ReadProblems, parse_times, read_recording, write_recording
 
 TAGS = ("a.speed", "b.tension", "c.diameter")
 

@@ -7,12 +7,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from connectors.simline import SimulatedLine
-from connectors.simline.scenario import parse_scenario
-from monitor.line import load_line
-from rules.span import steady_span_tension
-from rules.traction import capstan_ratio_limit
+from spanwatch.connectors.simline import SimulatedLine
+from spanwatch.connectors.simline.scenario import parse_scenario
+from spanwatch.monitor.line import load_line
+from spanwatch.rules.span import steady_span_tension
+from spanwatch.rules.traction import capstan_ratio_limit
 
 ROOT = Path(__file__).resolve().parent.parent
 CONFIG = ROOT / "config" / "quillmere-q2.toml"

@@ -12,8 +12,7 @@ import math
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from monitor import units as U
+from spanwatch.monitor import units as U
 
 INCH = 0.0254
 FOOT = 0.3048

@@ -8,7 +8,7 @@ What it models (per unit width, SI):
   element, Et = E * caliper; idlers inside a zone are drag-free.
 * Driven rollers in speed control at ``V_ref * (1 + draw)``. Each holds the web while
   the tension ratio across it is within its capstan capacity ``exp(mu_eff theta)``
-  (mu_eff derated for air entrainment by :func:`rules.airfilm.effective_cof`). Beyond
+  (mu_eff derated for air entrainment by :func:`spanwatch.rules.airfilm.effective_cof`). Beyond
   that it slips: the ratio is held at the limit (an algebraic constraint on the two
   span tensions) and the web speed on the roller is freed and solved from the
   constraint.
@@ -33,14 +33,13 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-
-from connectors.base import SampleBatch
-from connectors.simline.scenario import Fault, Scenario
-from monitor import units as U
-from monitor.config import RollerSection, WinderSection
-from monitor.line import Line
-from rules.airfilm import combined_roughness, effective_cof
-from rules.woundroll import taper_tension
+from spanwatch.connectors.base import SampleBatch
+from spanwatch.connectors.simline.scenario import Fault, Scenario
+from spanwatch.monitor import units as U
+from spanwatch.monitor.config import RollerSection, WinderSection
+from spanwatch.monitor.line import Line
+from spanwatch.rules.airfilm import combined_roughness, effective_cof
+from spanwatch.rules.woundroll import taper_tension
 
 KP, KI = 2.0, 2.0  # winder tension loops, on the strain error (T_sp - T) / Et
 

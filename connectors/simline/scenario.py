@@ -48,9 +48,8 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from pydantic import BeforeValidator, Field, ValidationError
-
-from monitor import units as U
-from monitor.config import (
+from spanwatch.monitor import units as U
+from spanwatch.monitor.config import (
     Acceleration,
     ConfigError,
     Duration,
