@@ -209,9 +209,9 @@ async def _wait(pred, timeout: float) -> bool:
 
 async def throughput(port: int, count: int, tags: int, queue_size: int, overflow: str, inflight: int,
                      tool: str) -> dict:
-    from spanwatch.connectors.base import SampleBatch
     from spanwatch.connectors.mqtt import MqttConnector
     from spanwatch.monitor.config import TagSection
+    from spanwatch.rules.samples import SampleBatch
 
     names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}
     seen = np.zeros(count, dtype=np.int32)
@@ -258,9 +258,9 @@ async def throughput(port: int, count: int, tags: int, queue_size: int, overflow
 
 async def latency(port: int, rate: float, seconds: float, tags: int, queue_size: int, overflow: str,
                   inflight: int) -> dict:
-    from spanwatch.connectors.base import SampleBatch
     from spanwatch.connectors.mqtt import MqttConnector
     from spanwatch.monitor.config import TagSection
+    from spanwatch.rules.samples import SampleBatch
 
     count = int(rate * seconds)
     names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}

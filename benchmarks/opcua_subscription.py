@@ -33,10 +33,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from asyncua import Server, ua  # noqa: E402
-from spanwatch.connectors.base import SampleBatch  # noqa: E402
 from spanwatch.connectors.opcua import OpcUaConnector  # noqa: E402
 from spanwatch.connectors.opcua_server import free_port  # noqa: E402
 from spanwatch.monitor.config import OpcUaSource, TagSection  # noqa: E402
+from spanwatch.rules.samples import SampleBatch  # noqa: E402
 
 PAGE = os.sysconf("SC_PAGE_SIZE")
 RSS_EVERY = 10.0  # seconds

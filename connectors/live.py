@@ -1,7 +1,7 @@
 """What every live connector (OPC UA, MQTT) offers the daemon.
 
 A connector runs as an asyncio task (:meth:`LiveConnector.run`) that connects,
-subscribes, hands every sample to ``sink`` as a :class:`~spanwatch.connectors.base.SampleBatch`
+subscribes, hands every sample to ``sink`` as a :class:`~spanwatch.rules.samples.SampleBatch`
 (raw value in the tag's unit, source timestamp, quality 0 good / 1 uncertain / 2 bad,
 a sequence number as ``ref``), and reconnects with capped exponential backoff when the
 connection is lost, until :meth:`LiveConnector.stop`. ``sink`` is always called on the
@@ -19,7 +19,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-from spanwatch.connectors.base import SampleBatch
+from spanwatch.rules.samples import SampleBatch
 
 STATES = ("starting", "connecting", "connected", "reconnecting", "stopped")
 

@@ -23,7 +23,7 @@ queue holds the network thread: the broker's in-flight window fills and it keeps
 queued for the session: backpressure instead of loss (up to the broker's own queue limit).
 With ``"drop_oldest"`` the oldest queued sample makes room and is counted. A task on the
 event loop drains the queue every few milliseconds and hands whole batches to ``sink``
-(a :class:`~spanwatch.connectors.base.SampleBatch` of many samples per call), so the checks never
+(a :class:`~spanwatch.rules.samples.SampleBatch` of many samples per call), so the checks never
 run on the network thread and ``sink`` is always called on the event loop's thread.
 
 **Connection.** :meth:`LiveConnector.run` owns the reconnect loop (capped exponential
@@ -73,13 +73,13 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from paho.mqtt.subscribeoptions import SubscribeOptions
-from spanwatch.connectors.base import QUALITY_CODES, SampleBatch
 from spanwatch.connectors.live import ConnectorStats, LiveConnector
 from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
-from spanwatch.monitor.alarms import Transition
-from spanwatch.monitor.checkset import AlarmPoint
 from spanwatch.monitor.config import MqttSource, TagSection, TopicMap
-from spanwatch.monitor.history import iso, state_name
+from spanwatch.rules.alarms import AlarmPoint, Transition
+from spanwatch.rules.base import state_name
+from spanwatch.rules.samples import QUALITY_CODES, SampleBatch
+from spanwatch.rules.values import finite_or_none, iso
 
 log = logging.getLogger("spanwatch.mqtt")
 
@@ -825,20 +825,17 @@ def _describe(exc: BaseException) -> str:
 # --- alarms back to the broker ----------------------------------------------------------------
 
 
-def _num(x: float | None) -> float | None:
-    return float(x) if x is not None and math.isfinite(x) else None
-
 
 def transition_message(tr: Transition, line: str = "") -> dict[str, Any]:
     """The JSON object published for one alarm transition (non-finite numbers become null)."""
     p = tr.point
     msg: dict[str, Any] = {
         "time": iso(tr.t), "event": tr.event, "check": p.kind, "object": p.object_id, "level": p.level,
-        "priority": p.priority, "value": _num(tr.value), "limit": _num(p.limit), "unit": p.unit,
+        "priority": p.priority, "value": finite_or_none(tr.value), "limit": finite_or_none(p.limit), "unit": p.unit,
         "line_state": state_name(tr.line_state), "key": p.key, "advisory": True,
     }
     if tr.event == "clear":
-        msg["peak"] = _num(tr.peak)
+        msg["peak"] = finite_or_none(tr.peak)
     if line:
         msg["line"] = line
     return msg
@@ -952,8 +949,9 @@ class MqttAlarmPublisher:
         for p in active:
             raised = self._raised.get(p.key)
             rows.append({"key": p.key, "check": p.kind, "object": p.object_id, "level": p.level,
-                         "priority": p.priority, "limit": _num(p.limit), "unit": p.unit,
-                         "raised": iso(raised[0]) if raised else None, "value": _num(raised[1]) if raised else None})
+                         "priority": p.priority, "limit": finite_or_none(p.limit), "unit": p.unit,
+                         "raised": iso(raised[0]) if raised else None,
+                         "value": finite_or_none(raised[1]) if raised else None})
         msg: dict[str, Any] = {"time": iso(time.time()), "count": len(rows), "active": rows, "advisory": True}
         if self.line:
             msg["line"] = self.line

@@ -20,7 +20,7 @@ backoff by :meth:`LiveConnector.run`):
    ``queue_size``, and a DataChangeFilter with trigger StatusValueTimestamp, so a value that repeats
    with a new source timestamp (a frozen sensor) is still reported as an update and not mistaken for a
    stale tag. Servers that refuse the filter get the item without it.
-3. Every Publish response becomes one :class:`~spanwatch.connectors.base.SampleBatch` handed to ``sink`` on the
+3. Every Publish response becomes one :class:`~spanwatch.rules.samples.SampleBatch` handed to ``sink`` on the
    event loop (one call per publishing interval, split above ``max_batch`` samples): the value as a
    float (booleans 0/1), the SourceTimestamp in epoch seconds UTC, else the ServerTimestamp (counted in
    ``stats.server_timestamps``), else the arrival time (also counted there); the quality from the
@@ -73,10 +73,10 @@ from asyncua.common.subscription import Subscription
 from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
 from cryptography import x509
 from cryptography.x509.oid import NameOID
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.monitor.config import OpcUaSource, TagSection
+from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.opcua")
 

@@ -67,9 +67,9 @@ from asyncua.server.user_managers import UserManager
 from cryptography import x509
 from cryptography.hazmat.primitives.serialization import Encoding
 from cryptography.x509.oid import ExtendedKeyUsageOID
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.simline import SimulatedLine
 from spanwatch.monitor import units as U
+from spanwatch.rules.samples import SampleBatch
 
 NAMESPACE_URI = "urn:spanwatch:simline"
 SERVER_URI = "urn:spanwatch:simline-server"

@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import IO
 
 import numpy as np
-from spanwatch.connectors.base import QUALITY_CODES, SampleBatch
+from spanwatch.rules.samples import QUALITY_CODES, SampleBatch
 
 HEADER = ("time", "tag", "value", "quality")
 _QUALITY_WORDS = {**QUALITY_CODES, "0": 0, "1": 1, "2": 2, "": 0}

@@ -7,10 +7,10 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.line import Line
+from spanwatch.rules.samples import SampleBatch
 
 
 class SimulatedConnector(LiveConnector):

@@ -8,12 +8,12 @@ config's ``[checks.<kind>]`` table, overridden by ``[checks.<kind>.overrides.<ob
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
 
 import numpy as np
 from spanwatch.monitor.config import AlarmOverride, CheckSection, ConfigError, RollerSection, WinderSection
 from spanwatch.monitor.line import Line
 from spanwatch.rules.airfilm import combined_roughness
+from spanwatch.rules.alarms import LEVELS, AlarmPoint
 from spanwatch.rules.base import Block, Check
 from spanwatch.rules.catalog import CHECK_KINDS
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
@@ -22,32 +22,6 @@ from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
 from spanwatch.rules.span import DrawCheck
 from spanwatch.rules.traction import NoDriveCheck, TractionCheck
 from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
-
-LEVELS = ("warning", "alarm")
-
-
-@dataclass(frozen=True)
-class AlarmPoint:
-    """One alarm: a check kind on one object at one level, with its settings and rationalization."""
-
-    kind: str
-    object_id: str
-    level: str
-    limit: float
-    direction: str
-    deadband: float
-    on_delay: float
-    off_delay: float
-    priority: str
-    unit: str
-    cause: str
-    consequence: str
-    action: str
-    response_time: float
-
-    @property
-    def key(self) -> str:
-        return f"{self.kind}:{self.object_id}:{self.level}"
 
 
 def _frames(line: Line, seconds: float) -> int:

@@ -28,12 +28,12 @@ from dataclasses import dataclass, field
 import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.live import LiveConnector
-from spanwatch.monitor.alarms import Transition
 from spanwatch.monitor.history import History
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.pipeline import Pipeline
+from spanwatch.rules.alarms import Transition
+from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.daemon")
 

@@ -20,11 +20,12 @@ from typing import TYPE_CHECKING
 from rich.console import Console
 from rich.table import Table
 from spanwatch.connectors.simline import SimulatedLine, load_scenario
-from spanwatch.monitor.alarms import Transition
-from spanwatch.monitor.history import History, query_episodes, sqlite_url, state_name
+from spanwatch.monitor.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.present import fmt_value, transition_line
+from spanwatch.rules.alarms import Transition
+from spanwatch.rules.base import state_name
 
 if TYPE_CHECKING:
     from spanwatch.monitor.daemon import Daemon

@@ -20,14 +20,14 @@ Times are epoch seconds (UTC) as floats; they are shown in ISO 8601.
 from __future__ import annotations
 
 import json
-import math
 from collections.abc import Iterable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from spanwatch.monitor.alarms import AlarmEngine, Transition
-from spanwatch.rules.base import LineState
+from spanwatch.rules.alarms import AlarmEngine, Transition
+from spanwatch.rules.base import state_name
+from spanwatch.rules.values import finite_or_none, iso
 from sqlalchemy import (
     Float,
     ForeignKey,
@@ -118,22 +118,6 @@ class InputIssue(Base):
     refs: Mapped[str] = mapped_column(Text)
 
 
-def _finite(x: float | None) -> float | None:
-    return x if x is not None and math.isfinite(x) else None
-
-
-def iso(t: float | None) -> str:
-    """Epoch seconds -> ISO 8601 in UTC with milliseconds ('' for None)."""
-    if t is None:
-        return ""
-    return datetime.fromtimestamp(t, UTC).isoformat(timespec="milliseconds")
-
-
-def state_name(code: int) -> str:
-    try:
-        return LineState(code).name.lower()
-    except ValueError:
-        return str(code)
 
 
 def make_engine(url: str) -> Engine:
@@ -227,13 +211,13 @@ class History:
             for tr in trs:
                 p = tr.point
                 s.add(AlarmEvent(run_id=self.run_id, t=tr.t, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
-                                 level=p.level, event=tr.event, value=_finite(tr.value), limit=p.limit,
+                                 level=p.level, event=tr.event, value=finite_or_none(tr.value), limit=p.limit,
                                  priority=p.priority, line_state=state_name(tr.line_state),
                                  config_hash=self.config_hash))
                 if tr.event == "raise":
                     ep = AlarmEpisode(run_id=self.run_id, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
                                       level=p.level, priority=p.priority, unit=p.unit, raised_t=tr.t,
-                                      raise_value=_finite(tr.value), limit=p.limit,
+                                      raise_value=finite_or_none(tr.value), limit=p.limit,
                                       line_state=state_name(tr.line_state), config_hash=self.config_hash)
                     s.add(ep)
                     s.flush()
@@ -245,7 +229,7 @@ class History:
                         ep2 = s.get(AlarmEpisode, ep_id)
                         if ep2 is not None:
                             ep2.cleared_t = tr.t
-                            ep2.peak_value = _finite(tr.peak)
+                            ep2.peak_value = finite_or_none(tr.peak)
 
     def record_contexts(self, contexts: Iterable[Context]) -> None:
         """Write context windows; each belongs to the episode raised at its ``raised_t``."""

@@ -2,7 +2,7 @@
 
 One :class:`Pipeline` owns all streaming state of one line (aligner, line-state and
 roll-change trackers, check windows, alarm states). Sources push
-:class:`~spanwatch.connectors.base.SampleBatch` objects with :meth:`Pipeline.ingest`; whoever
+:class:`~spanwatch.rules.samples.SampleBatch` objects with :meth:`Pipeline.ingest`; whoever
 drives the clock calls :meth:`Pipeline.advance` with the time up to which frames may
 be computed (the newest sample time minus a small lag in a replay, the wall clock
 minus the network latency allowance live). Everything per frame is numpy over a
@@ -15,8 +15,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from spanwatch.connectors.base import SampleBatch
-from spanwatch.monitor.alarms import AlarmEngine, Transition
 from spanwatch.monitor.aligner import Aligner
 from spanwatch.monitor.checkset import alarm_points, build_checks
 from spanwatch.monitor.context import ContextRecorder
@@ -24,8 +22,10 @@ from spanwatch.monitor.history import History
 from spanwatch.monitor.inputs import InputStats
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.signals import SignalDeriver
+from spanwatch.rules.alarms import AlarmEngine, Transition
 from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason
 from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
+from spanwatch.rules.samples import SampleBatch
 
 
 @dataclass

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import math
 
-from spanwatch.monitor.alarms import Transition
-from spanwatch.monitor.history import state_name
+from spanwatch.rules.alarms import Transition
+from spanwatch.rules.base import state_name
 
 PRIORITY_STYLE = {"high": "bold red", "medium": "yellow", "low": "cyan"}
 

@@ -8,9 +8,9 @@ from pathlib import Path
 
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.recording import write_recording
 from spanwatch.connectors.simline import SimulatedLine
+from spanwatch.rules.samples import SampleBatch
 
 
 def truth_path_for(out: Path) -> Path:

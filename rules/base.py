@@ -47,6 +47,14 @@ class LineState(IntEnum):
     UNKNOWN = 5  # the line speed signal is not usable
 
 
+def state_name(code: int) -> str:
+    """The line state's name in lower case (``running``), or the code itself if it is not one."""
+    try:
+        return LineState(code).name.lower()
+    except ValueError:
+        return str(code)
+
+
 MOVING_STATES = (LineState.THREADING, LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
 PRODUCTION_STATES = (LineState.ACCELERATING, LineState.RUNNING, LineState.DECELERATING)
 

@@ -19,8 +19,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from spanwatch.monitor.alarms import AlarmEngine, Transition
-from spanwatch.monitor.checkset import AlarmPoint
+from spanwatch.rules.alarms import AlarmEngine, AlarmPoint, Transition
 from spanwatch.rules.base import CheckResult, LineState, Reason
 
 RATE = 10.0  # frames per second

@@ -20,9 +20,8 @@ from datetime import datetime
 from pathlib import Path
 
 import pytest
-from spanwatch.monitor.alarms import Transition
-from spanwatch.monitor.checkset import AlarmPoint
 from spanwatch.monitor.history import History, latest_run, make_engine, query_episodes, sqlite_url
+from spanwatch.rules.alarms import AlarmPoint, Transition
 from spanwatch.rules.base import LineState
 from sqlalchemy import text
 
@@ -266,8 +265,8 @@ def test_sqlite_file_is_in_wal_mode(tmp_path):
 
 WRITER = textwrap.dedent("""
     import sys
-    from spanwatch.monitor.alarms import Transition
-    from spanwatch.monitor.checkset import AlarmPoint
+    from spanwatch.rules.alarms import Transition
+    from spanwatch.rules.alarms import AlarmPoint
     from spanwatch.monitor.history import History
 
     h = History(sys.argv[1])

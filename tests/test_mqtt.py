@@ -28,11 +28,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from mqtt_broker import MosquittoBroker, make_password_file, make_tls_files, need
 from paho.mqtt.enums import CallbackAPIVersion
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.mqtt import MalformedPayload, MqttAlarmPublisher, MqttConnector, PayloadDecoder, match_filter
-from spanwatch.monitor.alarms import Transition
-from spanwatch.monitor.checkset import AlarmPoint
 from spanwatch.monitor.config import MqttSource, TagSection
+from spanwatch.rules.alarms import AlarmPoint, Transition
+from spanwatch.rules.samples import SampleBatch
 
 T0 = calendar.timegm((2026, 3, 2, 5, 0, 0)) + 0.25  # 2026-03-02T05:00:00.250Z, computed without datetime
 

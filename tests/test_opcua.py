@@ -29,12 +29,12 @@ from typing import Any
 import numpy as np
 import pytest
 from asyncua import ua
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.opcua import OpcUaConnector, browse
 from spanwatch.connectors.opcua_server import SimLineServer, make_test_pki, opcua_line_config
 from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.config import OpcUaSource, TagSection, parse_config
 from spanwatch.monitor.line import load_line
+from spanwatch.rules.samples import SampleBatch
 
 REPO = Path(__file__).resolve().parents[1]
 STEADY = REPO / "config" / "scenarios" / "steady.toml"

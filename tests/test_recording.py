@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.recording import ReadProblems, parse_times, read_recording, write_recording
+from spanwatch.rules.samples import SampleBatch
 
 TAGS = ("a.speed", "b.tension", "c.diameter")
 

@@ -33,12 +33,12 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from spanwatch.connectors.base import SampleBatch
 from spanwatch.connectors.simline.scenario import Fault, Scenario
 from spanwatch.monitor import units as U
 from spanwatch.monitor.config import RollerSection, WinderSection
 from spanwatch.monitor.line import Line
 from spanwatch.rules.airfilm import combined_roughness, effective_cof
+from spanwatch.rules.samples import SampleBatch
 from spanwatch.rules.woundroll import taper_tension
 
 KP, KI = 2.0, 2.0  # winder tension loops, on the strain error (T_sp - T) / Et

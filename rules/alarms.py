@@ -1,6 +1,6 @@
 """Alarm handling: from check values to raised and cleared alarms.
 
-Each :class:`~spanwatch.monitor.checkset.AlarmPoint` (a check on one object at one level) is a
+Each :class:`AlarmPoint` (a check on one object at one level) is a
 small state machine, evaluated over whole blocks of frames with numpy:
 
 1. **Condition with deadband** (ISA-18.2 / IEC 62682 nuisance-alarm tools): the
@@ -24,11 +24,35 @@ import itertools
 from dataclasses import dataclass
 
 import numpy as np
-from spanwatch.monitor.checkset import AlarmPoint
 from spanwatch.rules.base import CheckResult, Reason
 from spanwatch.rules.windows import forward_fill_index
 
 _OK, _LINE_STATE = int(Reason.OK), int(Reason.LINE_STATE)
+
+LEVELS = ("warning", "alarm")
+
+@dataclass(frozen=True)
+class AlarmPoint:
+    """One alarm: a check kind on one object at one level, with its settings and rationalization."""
+
+    kind: str
+    object_id: str
+    level: str
+    limit: float
+    direction: str
+    deadband: float
+    on_delay: float
+    off_delay: float
+    priority: str
+    unit: str
+    cause: str
+    consequence: str
+    action: str
+    response_time: float
+
+    @property
+    def key(self) -> str:
+        return f"{self.kind}:{self.object_id}:{self.level}"
 
 
 @dataclass(frozen=True)
