@@ -36,6 +36,7 @@ from asyncua import Server, ua  # noqa: E402
 from spanwatch.connectors.opcua import OpcUaConnector  # noqa: E402
 from spanwatch.connectors.opcua_server import free_port  # noqa: E402
 from spanwatch.monitor.config import OpcUaSource, TagSection  # noqa: E402
+from spanwatch.monitor.sources import opcua_settings, opcua_tags  # noqa: E402
 from spanwatch.rules.samples import SampleBatch  # noqa: E402
 
 PAGE = os.sysconf("SC_PAGE_SIZE")
@@ -100,7 +101,7 @@ async def main(minutes: float, n_tags: int, warmup: float) -> None:
         counts["samples"] += len(batch)
         counts["batches"] += 1
 
-    conn = OpcUaConnector("bench", spec, tags, sink)
+    conn = OpcUaConnector("bench", opcua_settings(spec), opcua_tags(tags), sink)
     runner = asyncio.create_task(conn.run())
     t_connect = time.monotonic()
     while conn.state != "connected":

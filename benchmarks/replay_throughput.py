@@ -33,9 +33,9 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from spanwatch.connectors.recording import read_recording  # noqa: E402
-from spanwatch.connectors.simline import SimulatedLine  # noqa: E402
-from spanwatch.connectors.simline.scenario import parse_scenario  # noqa: E402
 from spanwatch.monitor.line import load_line  # noqa: E402
+from spanwatch.monitor.simline import SimulatedLine  # noqa: E402
+from spanwatch.monitor.simline.scenario import parse_scenario  # noqa: E402
 from spanwatch.monitor.simulate import simulate_to_file  # noqa: E402
 from spanwatch.rules.airfilm import combined_roughness, effective_cof  # noqa: E402
 from spanwatch.rules.traction import traction_utilisation  # noqa: E402

@@ -1,9 +1,9 @@
 """Live OPC UA source: a data-change subscription on the tags of one server, delivered as sample batches.
 
-:class:`OpcUaConnector` is a :class:`~spanwatch.connectors.live.LiveConnector` built from a ``[sources.NAME]``
-table with ``kind = "opcua"`` (:class:`spanwatch.monitor.config.OpcUaSource`) and the tags whose ``source``
-is NAME; each tag's ``address`` is a node id (``ns=2;s=Q2.S5.Tension``, ``ns=3;i=1042``, or with
-the namespace URI instead of its index, ``nsu=urn:plc:q2;s=Q2.S5.Tension``, resolved at every
+:class:`OpcUaConnector` is a :class:`~spanwatch.connectors.live.LiveConnector` built from plain
+:class:`OpcUaSettings` (the application fills them from a ``[sources.NAME]`` table with ``kind = "opcua"``)
+and the tags whose ``source`` is NAME; each tag's ``address`` is a node id (``ns=2;s=Q2.S5.Tension``,
+``ns=3;i=1042``, or with the namespace URI instead of its index, ``nsu=urn:plc:q2;s=Q2.S5.Tension``, resolved at every
 connect because a server may renumber its namespaces when it restarts).
 
 What one connection does (:meth:`OpcUaConnector._session`, run in a loop with capped exponential
@@ -62,7 +62,8 @@ import contextlib
 import logging
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -75,7 +76,6 @@ from cryptography import x509
 from cryptography.x509.oid import NameOID
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
-from spanwatch.monitor.config import OpcUaSource, TagSection
 from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.opcua")
@@ -99,6 +99,41 @@ _REFUSAL_PREFIXES = ("BadUser", "BadIdentity", "BadCertificate", "BadSecurity", 
 # Monitored-item results after which we try again without the DataChangeFilter.
 _FILTER_REFUSED = {ua.StatusCodes.BadMonitoredItemFilterUnsupported, ua.StatusCodes.BadFilterNotAllowed,
                    ua.StatusCodes.BadMonitoredItemFilterInvalid, ua.StatusCodes.BadDeadbandFilterInvalid}
+
+
+@dataclass(frozen=True)
+class OpcUaSettings:
+    """How to reach one OPC UA server and subscribe to it; durations in seconds.
+
+    ``security_policy`` ``"None"`` or ``"Basic256Sha256"`` with ``security_mode`` ``"Sign"`` or
+    ``"SignAndEncrypt"``, the client ``certificate`` and ``private_key`` files, optionally the pinned
+    ``server_certificate``; ``password`` is a secret reference (``env:NAME``, ``file:/path`` or text),
+    resolved at every connect. ``sampling_interval`` None: each tag's own sample period.
+    """
+
+    endpoint: str
+    security_policy: str = "None"
+    security_mode: str = "None"
+    certificate: str | None = None
+    private_key: str | None = None
+    server_certificate: str | None = None
+    username: str | None = None
+    password: str | None = None
+    publishing_interval: float = 0.1
+    sampling_interval: float | None = None
+    queue_size: int = 10
+    timeout: float = 4.0
+    watchdog_interval: float = 1.0
+    reconnect_min: float = 0.5
+    reconnect_max: float = 30.0
+
+
+@dataclass(frozen=True)
+class OpcUaTag:
+    """One tag read from the server: its node id (``ns=2;s=...``, ``nsu=<uri>;s=...``) and sample period (s)."""
+
+    address: str | None
+    sample_period: float
 
 
 class OpcUaSessionError(Exception):
@@ -194,7 +229,7 @@ def _certificate_uri(cert: x509.Certificate) -> str | None:
 class _ClientSetup:
     """Builds a configured asyncua Client for one connection and explains its failures in words."""
 
-    def __init__(self, spec: OpcUaSource, password: str | None) -> None:
+    def __init__(self, spec: OpcUaSettings, password: str | None) -> None:
         self.spec, self.password = spec, password
         self.cert: x509.Certificate | None = None
 
@@ -286,14 +321,14 @@ def _parse_address(address: str, namespaces: list[str]) -> ua.NodeId:
 class OpcUaConnector(LiveConnector):
     """Subscribe to the tags of one OPC UA server and hand their samples to ``sink`` (see the module docstring).
 
-    ``tags`` are the config's tags with ``source == name``; the batches' ``tags`` tuple is their
+    ``tags`` are the tags of this source by name; the batches' ``tags`` tuple is their
     names in that order. Run it with ``await connector.run()`` (or as a task) and end it with
     ``await connector.stop()``.
     """
 
     kind = "opcua"
 
-    def __init__(self, name: str, spec: OpcUaSource, tags: dict[str, TagSection],
+    def __init__(self, name: str, spec: OpcUaSettings, tags: Mapping[str, OpcUaTag],
                  sink: Callable[[SampleBatch], None], *, max_batch: int = 20_000) -> None:
         super().__init__(name, sink, reconnect_min=spec.reconnect_min, reconnect_max=spec.reconnect_max)
         self.spec = spec
@@ -619,20 +654,18 @@ def _epoch(stamp: Any) -> float | None:
 # --- browse ------------------------------------------------------------------------------------
 
 
-async def browse(endpoint: str, node: str | None = None, depth: int = 3, **security: Any) -> list[dict[str, Any]]:
+async def browse(endpoint: str, node: str | None = None, depth: int = 3,
+                 settings: OpcUaSettings | None = None) -> list[dict[str, Any]]:
     """List the variables under ``node`` (default: the Objects folder), ``depth`` levels down.
 
-    ``security`` takes the keys of a ``[sources.NAME]`` OPC UA table (``security_policy``,
-    ``security_mode``, ``certificate``, ``private_key``, ``server_certificate``, ``username``,
-    ``password`` as ``env:NAME``/``file:PATH``/text, ``timeout`` in seconds or as ``"4 s"``). Standard
+    ``settings`` give the security, user and timeout (default: anonymous, no security; their
+    ``endpoint`` is replaced by ``endpoint``). Standard
     nodes of namespace 0 (the Server object and its diagnostics) are skipped. Each row: ``node_id`` (what goes into a
     tag's ``address``), ``path`` (browse names from the start node, ``/``-separated), ``data_type``,
     ``value`` (the current value, or None), ``status`` (its StatusCode name) and ``numeric``
     (whether spanwatch can use it as a tag).
     """
-    if isinstance(security.get("timeout"), int | float):
-        security["timeout"] = f"{security['timeout']} s"  # the schema wants a unit
-    spec = OpcUaSource(kind="opcua", endpoint=endpoint, **security)
+    spec = replace(settings, endpoint=endpoint) if settings is not None else OpcUaSettings(endpoint)
     try:
         password = resolve_secret(spec.password)
     except SecretError as exc:

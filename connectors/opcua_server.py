@@ -1,12 +1,12 @@
-"""An OPC UA server for the simulated line, in process: what a PLC would serve, for the demo, tests and benchmarks.
+"""An OPC UA server in process that serves a sample feed: what a PLC would serve, for the demo, tests and benchmarks.
 
-:class:`SimLineServer` serves a :class:`~spanwatch.connectors.simline.SimulatedLine` with asyncua's
-``Server`` (https://github.com/FreeOpcUa/opcua-asyncio): one object for the line
-(``ns=<idx>;s=line``, browse name the line's name) and under it one variable per config tag,
+:class:`FeedServer` serves a :class:`SampleFeed` (the application's simulated line is one) with
+asyncua's ``Server`` (https://github.com/FreeOpcUa/opcua-asyncio): one object for the line
+(``ns=<idx>;s=line``, browse name the feed's name) and under it one variable per tag,
 node id ``ns=<idx>;s=<tag name>`` (``ns=2;s=q2.s5.tension``: the namespace ``urn:spanwatch:simline``
-is the first one registered, so its index is 2). Tags are Double variables; a plain-number tag
-with range [0, 1] (a flag such as ``q2.rewind.core_change``) is a Boolean, as a PLC would serve
-it. Until the first value is written a variable holds the status BadWaitingForInitialData.
+is the first one registered, so its index is 2). Tags are Double variables; the ``boolean_tags``
+(flags such as ``q2.rewind.core_change``) are Booleans, as a PLC would serve them. Until the
+first value is written a variable holds the status BadWaitingForInitialData.
 
 The data path. Every write carries the sample's time as SourceTimestamp (epoch of the
 scenario, not the wall clock), the wall clock as ServerTimestamp, and the sample's quality as
@@ -28,7 +28,7 @@ up with the wall clock and those samples are dropped, counted in ``stats['lost_w
 outage longer than ``catch_up_limit`` simulated seconds counts as a pause for the rest).
 A client's queue (``queue_size``) must hold what one publishing interval brings: at most
 ``max_write_rate x publishing interval / number of tags`` per tag when paced (10 with the defaults).
-:meth:`SimLineServer.step` writes every sample (no decimation), for tests.
+:meth:`FeedServer.step` writes every sample (no decimation), for tests.
 
 Security: ``security`` lists the endpoints to offer (``"None"``, ``"Sign"``, ``"SignAndEncrypt"``,
 the latter two with Basic256Sha256 and the ``certificate``/``private_key`` files); ``trusted`` names
@@ -49,14 +49,12 @@ import asyncio
 import contextlib
 import hmac
 import math
-import re
 import socket
 import time
-import tomllib
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 from asyncua import Server, ua
 from asyncua.crypto import cert_gen
@@ -67,14 +65,10 @@ from asyncua.server.user_managers import UserManager
 from cryptography import x509
 from cryptography.hazmat.primitives.serialization import Encoding
 from cryptography.x509.oid import ExtendedKeyUsageOID
-from spanwatch.connectors.simline import SimulatedLine
-from spanwatch.monitor import units as U
 from spanwatch.rules.samples import SampleBatch
 
 NAMESPACE_URI = "urn:spanwatch:simline"
 SERVER_URI = "urn:spanwatch:simline-server"
-REPO = Path(__file__).resolve().parent.parent
-EXAMPLE_CONFIG = REPO / "config" / "quillmere-q2.toml"
 
 _POLICIES = {
     "None": ua.SecurityPolicyType.NoSecurity,
@@ -108,8 +102,25 @@ class _PasswordUsers(UserManager):
         return None
 
 
-class SimLineServer:
-    """Serve a simulated line over OPC UA on ``endpoint`` (loopback, a free port by default); see the module docstring.
+class SampleFeed(Protocol):
+    """What :class:`FeedServer` serves: samples that advance in steps of ``dt`` seconds.
+
+    ``t0`` is the epoch of the feed's time zero and ``t`` its current time (seconds since ``t0``);
+    ``advance(seconds)`` returns the samples of the next ``seconds`` (whole steps). The simulated
+    line of the application is one.
+    """
+
+    name: str
+    t0: float
+    t: float
+    dt: float
+    tag_names: Sequence[str]
+
+    def advance(self, seconds: float) -> SampleBatch: ...
+
+
+class FeedServer:
+    """Serve a sample feed over OPC UA on ``endpoint`` (loopback, a free port by default); see the module docstring.
 
     ``await start()`` listens and (by default) starts the paced pump: the simulation advances with the
     wall clock times ``speedup`` every ``tick`` seconds. ``await stop()`` stops listening (clients see
@@ -118,7 +129,8 @@ class SimLineServer:
     seconds and stops. ``await step(seconds)`` advances unpaced and writes every sample.
     """
 
-    def __init__(self, sim: SimulatedLine, *, host: str = "127.0.0.1", port: int = 0, speedup: float = 1.0,
+    def __init__(self, sim: SampleFeed, *, sample_periods: Mapping[str, float], boolean_tags: Collection[str] = (),
+                 host: str = "127.0.0.1", port: int = 0, speedup: float = 1.0,
                  tick: float = 0.1, max_write_rate: float = 1500.0, security: Sequence[str] = ("None",),
                  certificate: str | Path | None = None, private_key: str | Path | None = None,
                  trusted: Sequence[str | Path] | None = None, users: Mapping[str, str] | None = None,
@@ -145,10 +157,8 @@ class SimLineServer:
         self.users = dict(users) if users else None
         self.namespace, self.application_uri = namespace, application_uri
         self.tag_names: tuple[str, ...] = tuple(sim.tag_names)
-        tags = sim.line.tags
-        self._boolean = tuple(
-            tags[n].kind is U.DIMENSIONLESS and (tags[n].low, tags[n].high) == (0.0, 1.0) for n in self.tag_names)
-        self.natural_rate = sum(1.0 / tags[n].sample_period for n in self.tag_names)
+        self._boolean = tuple(n in boolean_tags for n in self.tag_names)
+        self.natural_rate = sum(1.0 / sample_periods[n] for n in self.tag_names)
         self.stats: dict[str, int] = {"writes": 0, "skipped": 0, "lost_while_down": 0, "refused": 0,
                                       "late_ticks": 0, "starts": 0}
         self._server: Server | None = None
@@ -211,7 +221,7 @@ class SimLineServer:
         srv = Server(user_manager=_PasswordUsers(self.users) if self.users else None)
         await srv.init()
         srv.set_endpoint(self.endpoint)
-        srv.set_server_name(f"spanwatch simulated line: {self.sim.line.name}")
+        srv.set_server_name(f"spanwatch simulated line: {self.sim.name}")
         await srv.set_application_uri(self.application_uri)
         srv.set_security_policy([_POLICIES[s] for s in self.security])
         if self.certificate and self.private_key:
@@ -226,7 +236,7 @@ class SimLineServer:
                 CertificateValidatorOptions.TRUSTED_VALIDATION | CertificateValidatorOptions.PEER_CLIENT, store))
         self._idx = await srv.register_namespace(self.namespace)
         idx = self._idx
-        obj = await srv.nodes.objects.add_object(ua.NodeId("line", idx), ua.QualifiedName(self.sim.line.name, idx))
+        obj = await srv.nodes.objects.add_object(ua.NodeId("line", idx), ua.QualifiedName(self.sim.name, idx))
         stamp = datetime.fromtimestamp(self.sim.t0 + self.sim.t, UTC)
         waiting = ua.StatusCode(ua.StatusCodes.BadWaitingForInitialData)
         self._nodes, self._vtypes = {}, {}
@@ -268,7 +278,7 @@ class SimLineServer:
         finally:
             await self.stop()
 
-    async def __aenter__(self) -> SimLineServer:
+    async def __aenter__(self) -> FeedServer:
         await self.start()
         return self
 
@@ -441,73 +451,3 @@ def make_test_pki(folder: str | Path, *, host: str | None = None, days: int = 30
         [ExtendedKeyUsageOID.CLIENT_AUTH], days=days)
     save("rogue", rogue_key, rogue)
     return out
-
-
-# --- the example line read over OPC UA ----------------------------------------------------------
-
-
-def _toml_value(value: Any) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int | float):
-        return repr(value)
-    text = str(value).replace("\\", "\\\\").replace('"', '\\"')
-    return f'"{text}"'
-
-
-_TAG_HEADER = re.compile(r'^\[tags\."(?P<name>[^"]+)"\]\s*$')
-
-
-def opcua_line_config(endpoint: str, *, base: str | Path = EXAMPLE_CONFIG, source: str = "plc",
-                      namespace_index: int = 2, publishing_interval: str = "100 ms", queue_size: int = 50,
-                      **source_options: Any) -> str:
-    """The example line (``base``, by default config/quillmere-q2.toml) read from an OPC UA server.
-
-    Adds ``[sources.<source>]`` (``kind = "opcua"``, the ``endpoint``, publishing interval, queue size,
-    watchdog and reconnect settings, and any ``source_options`` such as ``username``, ``password``,
-    ``security_policy``) and gives every tag ``source = "<source>"`` and
-    ``address = "ns=<namespace_index>;s=<tag name>"``, the node ids :class:`SimLineServer` serves.
-    Everything else is the base file, verbatim. The result is validated before it is returned.
-    """
-    text = Path(base).read_text(encoding="utf-8")
-    options: dict[str, Any] = {
-        "kind": "opcua", "endpoint": endpoint, "security_policy": "None", "security_mode": "None",
-        "publishing_interval": publishing_interval, "queue_size": queue_size, "watchdog_interval": "1 s",
-        "timeout": "4 s", "reconnect_min": "0.5 s", "reconnect_max": "30 s"}
-    options.update(source_options)
-    notes = {
-        "publishing_interval": "one batch of changes per interval",
-        "queue_size": "per tag on the server: 5 samples per publish at 50 Hz, room for jitter",
-        "watchdog_interval": "server clock read and subscription check; loss seen within a few seconds",
-    }
-    block = ["# --- live source: the line's OPC UA server ---------------------------------------------------",
-             "# Every tag below names this source and gives its node id as address.", "",
-             f"[sources.{source}]"]
-    for key, value in options.items():
-        line = f"{key} = {_toml_value(value)}"
-        block.append(f"{line:<40} # {notes[key]}" if key in notes else line)
-    block.append("")
-    out: list[str] = [
-        "# Line Q2 read live over OPC UA: the example line (quillmere-q2.toml) with an OPC UA source.",
-        f"# Made by spanwatch.connectors.opcua_server.opcua_line_config; every tag has source = \"{source}\" and the "
-        "node id", "# the simulated line's server gives it (SimLineServer: ns=2;s=<tag name>).", ""]
-    lines = text.splitlines()
-    first_tag = next((k for k, ln in enumerate(lines) if _TAG_HEADER.match(ln)), len(lines))
-    insert_at = next((k for k in range(first_tag) if lines[k].startswith("# --- tags")), first_tag)
-    for k, ln in enumerate(lines):
-        if k == insert_at:
-            out.extend(block)
-        out.append(ln)
-        m = _TAG_HEADER.match(ln)
-        if m:
-            out.append(f"source = {_toml_value(source)}")
-            address = f"ns={namespace_index};s={m.group('name')}"
-            out.append(f"address = {_toml_value(address)}")
-    if insert_at >= len(lines):
-        out.extend(block)
-    result = "\n".join(out) + "\n"
-    from spanwatch.monitor.config import parse_config
-    from spanwatch.monitor.line import build_line
-
-    build_line(parse_config(tomllib.loads(result), "<opcua_line_config>"), "<opcua_line_config>")
-    return result

@@ -114,13 +114,13 @@ def check_config(
                   f"air viscosity {line.viscosity:.4g} Pa s at {lw.air_temperature - 273.15:.1f} degC")
 
     if cfg.sources:
+        from spanwatch.monitor.sources import SOURCE_KINDS
+
         st = Table(title="Live sources", title_justify="left")
         for col in ("source", "kind", "where", "tags"):
             st.add_column(col)
         for name, spec in cfg.sources.items():
-            where = {"opcua": lambda s: f"{s.endpoint} ({s.security_policy}/{s.security_mode})",
-                     "mqtt": lambda s: f"{s.host}:{s.port} qos {s.qos}{' tls' if s.tls else ''}",
-                     "simulated": lambda s: f"scenario {s.scenario}"}[spec.kind](spec)
+            where = SOURCE_KINDS[spec.kind].where(spec)
             st.add_row(name, spec.kind, where, str(len(line.tags_of_source(name))))
         console.print(st)
 
@@ -155,7 +155,7 @@ def simulate_cmd(
     speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
     """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
-    from spanwatch.connectors.simline import SimulatedLine, load_scenario
+    from spanwatch.monitor.simline import SimulatedLine, load_scenario
     from spanwatch.monitor.simulate import simulate_to_file
 
     try:

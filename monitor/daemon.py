@@ -32,6 +32,7 @@ from spanwatch.connectors.live import LiveConnector
 from spanwatch.monitor.history import History
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.pipeline import Pipeline
+from spanwatch.monitor.sources import build_connectors
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.samples import SampleBatch
 
@@ -46,30 +47,6 @@ class TickStats:
     transitions: dict[str, int] = field(default_factory=lambda: {"raise": 0, "clear": 0})
 
 
-def build_connectors(line: Line, sink: Callable[[SampleBatch], None]) -> list[LiveConnector]:
-    """One connector per configured source (OPC UA, MQTT or simulated)."""
-    out: list[LiveConnector] = []
-    cfg = line.config
-    for name, spec in cfg.sources.items():
-        tags = line.tags_of_source(name)
-        if spec.kind == "opcua":
-            from spanwatch.connectors.opcua import OpcUaConnector
-
-            out.append(OpcUaConnector(name, spec, tags, sink))
-        elif spec.kind == "mqtt":
-            from spanwatch.connectors.mqtt import MqttConnector
-
-            out.append(MqttConnector(name, spec, tags, sink))
-        else:
-            from pathlib import Path
-
-            from spanwatch.connectors.simsource import SimulatedConnector
-
-            scenario = Path(spec.scenario)
-            if not scenario.is_absolute():
-                scenario = Path(line.file).resolve().parent / scenario
-            out.append(SimulatedConnector(name, line, scenario, sink, speedup=spec.speedup))
-    return out
 
 
 class Daemon:

@@ -19,11 +19,11 @@ from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.table import Table
-from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.present import fmt_value, transition_line
+from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
 
@@ -81,8 +81,8 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     """The simulated line behind an embedded OPC UA server, monitored through the OPC UA client and the daemon."""
     import logging
 
-    from spanwatch.connectors.opcua_server import SimLineServer, opcua_line_config
     from spanwatch.monitor.daemon import Daemon
+    from spanwatch.monitor.simserve import SimLineServer, opcua_line_config
 
     logging.getLogger("asyncua").setLevel(logging.CRITICAL)
     line = sim.line

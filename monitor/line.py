@@ -11,7 +11,7 @@ path of the offending entry.
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -26,6 +26,7 @@ from spanwatch.monitor.config import (
     load_config,
 )
 from spanwatch.rules.airfilm import air_viscosity, combined_roughness, effective_cof
+from spanwatch.rules.linemodel import LineModel, LineSettings, Material, Roller, Tag, Winder, Zone
 from spanwatch.rules.traction import capstan_ratio_limit, traction_utilisation
 from spanwatch.rules.woundroll import taper_tension
 
@@ -50,19 +51,6 @@ class Element:
     def diameter(self) -> float | None:
         return self.section.diameter if isinstance(self.section, RollerSection) else None
 
-
-@dataclass(frozen=True)
-class Zone:
-    """Spans between two driven elements; one tension when idlers are drag-free."""
-
-    id: str
-    upstream: str
-    downstream: str
-    spans: tuple[str, ...]
-    length: float
-    tension_tag: str | None
-    tension_span: str | None
-    setpoint: float | None
 
 
 @dataclass(frozen=True)
@@ -104,6 +92,7 @@ class Line:
     zones: tuple[Zone, ...]
     tags: dict[str, TagInfo]
     signals: tuple[SignalSpec, ...]
+    model: LineModel  # the line as the checks see it (core types, SI)
 
     @property
     def name(self) -> str:
@@ -240,8 +229,60 @@ def build_line(cfg: LineConfig, file: str = "<config>", config_hash: str = "") -
     zones = _zones(cfg, elements, path)
     _check_zones(zones, elements, err)
     err.raise_if_any()
+    zones = tuple(replace(z, tension_accuracy=_per_width(cfg, tags[z.tension_tag])) if z.tension_tag else z
+                  for z in zones)
     signals = _signals(cfg, elements, zones, tags)
-    return Line(cfg, file, config_hash, path, elements, zones, tags, signals)
+    model = _model(cfg, path, elements, zones, tags, signals)
+    return Line(cfg, file, config_hash, path, elements, zones, tags, signals, model)
+
+
+def _per_width(cfg: LineConfig, info: TagInfo) -> tuple[float, float]:
+    """A tension tag's accuracy per unit width (a load cell reading force: divided by the web width)."""
+    absolute, rel = info.accuracy
+    return (absolute / cfg.material.width if info.kind is U.FORCE else absolute), rel
+
+
+def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element], zones: tuple[Zone, ...],
+           tags: dict[str, TagInfo], signals: tuple[SignalSpec, ...]) -> LineModel:
+    """The core's view of the line: plain SI values, no config objects."""
+    lw, mat = cfg.line, cfg.material
+    settings = LineSettings(
+        frame_rate=lw.frame_rate, thread_speed=lw.thread_speed, min_drive_tension=lw.min_drive_tension,
+        check_window=lw.check_window, encoder_ratio_tolerance=lw.encoder_ratio_tolerance,
+        air_film_model=lw.air_film_model, air_speed_convention=lw.air_speed_convention,
+        air_traction_floor=lw.air_traction_floor, air_viscosity=float(air_viscosity(lw.air_temperature)),
+        web_speed_from=lw.web_speed_from)
+    material = Material(caliper=mat.caliper, width=mat.width, modulus=mat.modulus,
+                        modulus_tolerance=mat.modulus_tolerance, roughness=mat.roughness,
+                        air_film_factor=mat.air_film_factor, stack_factor=mat.stack_factor,
+                        caliper_drift=mat.caliper_drift)
+    rollers: dict[str, Roller] = {}
+    winders: dict[str, Winder] = {}
+    for e in elements.values():
+        sec = e.section
+        if isinstance(sec, RollerSection):
+            rollers[e.id] = Roller(
+                id=e.id, diameter=sec.diameter, wrap=sec.wrap, cof=sec.cof, roughness=sec.roughness,
+                driven=sec.driven, draw=sec.draw, safety_factor=sec.safety_factor,
+                air_film_factor=sec.air_film_factor, has_encoder=sec.speed_tag is not None,
+                runout_check=sec.runout_check)
+        else:
+            none = (0.0, 0.0)
+            winders[e.id] = Winder(
+                id=e.id, rewind=sec.kind == "rewind", core_diameter=sec.core_diameter,
+                max_diameter=sec.max_diameter, calibration_length=sec.calibration_length,
+                has_diameter_sensor=sec.diameter_tag is not None, has_rpm=sec.rpm_tag is not None,
+                has_length=sec.length_tag is not None,
+                diameter_accuracy=tags[sec.diameter_tag].accuracy if sec.diameter_tag else none,
+                length_accuracy=tags[sec.length_tag].accuracy if sec.length_tag else none,
+                runout_check=sec.runout_check)
+    computed = {f"diameter/{w.id}" for w in winders.values() if not w.has_diameter_sensor and w.has_rpm}
+    return LineModel(
+        name=lw.name, settings=settings, material=material, path=path, rollers=rollers, winders=winders,
+        zones=zones, tags={n: Tag(name=n, low=t.low, high=t.high, sample_period=t.sample_period,
+                                  stale_after=t.stale_after, frozen_after=t.frozen_after,
+                                  frozen_tolerance=t.frozen_tolerance) for n, t in tags.items()},
+        signals=frozenset({s.name for s in signals} | computed))
 
 
 class _Errors:

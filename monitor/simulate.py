@@ -9,7 +9,7 @@ from pathlib import Path
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from spanwatch.connectors.recording import write_recording
-from spanwatch.connectors.simline import SimulatedLine
+from spanwatch.monitor.simline import SimulatedLine
 from spanwatch.rules.samples import SampleBatch
 
 
@@ -101,7 +101,7 @@ async def serve_forever(sim: SimulatedLine, endpoint: str, *, speedup: float = 1
     import time
     from urllib.parse import urlparse
 
-    from spanwatch.connectors.opcua_server import SimLineServer
+    from spanwatch.monitor.simserve import SimLineServer
 
     url = urlparse(endpoint)
     server = SimLineServer(sim, host=url.hostname or "127.0.0.1", port=url.port or 4840, speedup=speedup,

@@ -17,9 +17,12 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from enum import IntEnum
-from typing import ClassVar, Protocol, runtime_checkable
+from typing import TYPE_CHECKING, ClassVar, Protocol, runtime_checkable
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from spanwatch.rules.linemodel import LineModel
 
 FloatArray = np.ndarray
 BoolArray = np.ndarray
@@ -148,6 +151,37 @@ class CheckResult:
 
 
 @dataclass(frozen=True)
+class AlarmSettings:
+    """What a user may set per check kind and per object (``[checks.KIND]`` and its ``overrides``).
+
+    ``warning`` None: the check has no warning level. Levels are in the check's own value (see
+    :attr:`AlarmDefaults.unit`); delays and the response time in seconds. ``cause``,
+    ``consequence``, ``action`` and ``response_time`` are the rationalization of the alarm
+    (ANSI/ISA-18.2-2016, master alarm database; from memory).
+    """
+
+    enabled: bool
+    warning: float | None
+    alarm: float
+    deadband: float
+    on_delay: float
+    off_delay: float
+    priority: str
+    warning_priority: str
+    cause: str
+    consequence: str
+    action: str
+    response_time: float
+
+    def limit(self, level: str) -> float | None:
+        """The limit of ``level`` ("warning" or "alarm")."""
+        return self.warning if level == "warning" else self.alarm
+
+    def level_priority(self, level: str) -> str:
+        return self.warning_priority if level == "warning" else self.priority
+
+
+@dataclass(frozen=True)
 class AlarmDefaults:
     """A check kind's default alarm settings and rationalization (config may override each)."""
 
@@ -165,17 +199,49 @@ class AlarmDefaults:
     action: str
     response_time: float = 60.0
 
+    def settings(self) -> AlarmSettings:
+        """The defaults as settings a config may override."""
+        return AlarmSettings(
+            enabled=True, warning=self.warning, alarm=self.alarm, deadband=self.deadband, on_delay=self.on_delay,
+            off_delay=self.off_delay, priority=self.priority, warning_priority=self.warning_priority,
+            cause=self.cause, consequence=self.consequence, action=self.action, response_time=self.response_time)
+
 
 @runtime_checkable
 class Check(Protocol):
-    """What the pipeline needs from every check."""
+    """What the pipeline and the alarm engine read from every check object.
+
+    ``kind`` names the check kind, ``object_id`` the roller, zone, winder or tag it is about,
+    ``inputs`` the signals it reads (a context window around each raise keeps them), ``rests_on``
+    the assumption a user must accept to trust it, ``defaults`` its alarm settings and
+    rationalization before the config overrides them. ``update`` computes one block of frames;
+    ``reset`` forgets what it carries from one block to the next (windows, calibrations), as after
+    a gap in the data.
+    """
 
     kind: ClassVar[str]
     object_id: str
     inputs: tuple[str, ...]
     rests_on: ClassVar[str]
+    defaults: ClassVar[AlarmDefaults]
 
     def update(self, block: Block) -> CheckResult: ...
+
+    def reset(self) -> None: ...
+
+
+class CheckKind(Protocol):
+    """What one registration in :mod:`spanwatch.rules.catalog` offers: a check class.
+
+    ``for_line(line)`` yields a check object for every object of the line this kind applies to
+    (its parameters read from the :class:`~spanwatch.rules.linemodel.LineModel`).
+    """
+
+    kind: ClassVar[str]
+    rests_on: ClassVar[str]
+    defaults: ClassVar[AlarmDefaults]
+
+    def for_line(self, line: LineModel) -> Iterable[Check]: ...
 
 
 def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:

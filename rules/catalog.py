@@ -1,16 +1,23 @@
-"""Every check kind spanwatch knows, by name. Adding a check: one module in rules/, one line here,
-one builder in monitor/checkset.py."""
+"""Every check kind spanwatch knows: the one registration of each.
+
+Adding a check kind is one module in ``rules/`` (its physics as pure functions and a check
+class with ``kind``, ``rests_on``, ``defaults``, ``for_line``, ``update`` and ``reset``; see
+:class:`spanwatch.rules.base.Check`) and one line in :data:`CHECK_CLASSES`. The application
+builds every check a line supports with :func:`checks_for`.
+"""
 
 from __future__ import annotations
 
+from spanwatch.rules.base import Check, CheckKind
+from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
-from spanwatch.rules.runout import RunoutCheck
+from spanwatch.rules.runout import RollerRunoutCheck, RunoutCheck
 from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
 from spanwatch.rules.span import DrawCheck
 from spanwatch.rules.traction import NoDriveCheck, TractionCheck
 from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
 
-CHECK_CLASSES = (
+CHECK_CLASSES: tuple[CheckKind, ...] = (
     TractionCheck,
     NoDriveCheck,
     SlipCheck,
@@ -20,10 +27,18 @@ CHECK_CLASSES = (
     SpeedDiameterCheck,
     LengthRateCheck,
     RunoutCheck,
-    TagRangeCheck,
-    TagQualityCheck,
+    RollerRunoutCheck,
     TagStaleCheck,
+    TagQualityCheck,
+    TagRangeCheck,
     TagFrozenCheck,
 )
 
-CHECK_KINDS = {cls.kind: cls for cls in CHECK_CLASSES}
+CHECK_KINDS: dict[str, CheckKind] = {}
+for _cls in CHECK_CLASSES:
+    CHECK_KINDS.setdefault(_cls.kind, _cls)
+
+
+def checks_for(line: LineModel) -> list[Check]:
+    """Every check the line supports, in the order of :data:`CHECK_CLASSES` (disabled ones too)."""
+    return [c for cls in CHECK_CLASSES for c in cls.for_line(line)]

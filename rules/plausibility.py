@@ -8,6 +8,7 @@ it marks its frames INPUT_BAD instead of computing on it.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
@@ -22,6 +23,7 @@ from spanwatch.rules.base import (
     combine_reasons,
     finalise,
 )
+from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.windows import forward_fill_index
 
 
@@ -65,6 +67,9 @@ class _TagCheck:
         self.inputs: tuple[str, ...] = ()
         self._col: int | None = None
 
+    def reset(self) -> None:
+        """Nothing is carried from one block to the next."""
+
     def _cols(self, block: Block) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if self._col is None:
             self._col = block.tags.column(self.object_id)
@@ -82,6 +87,13 @@ class TagRangeCheck(_TagCheck):
         super().__init__(object_id)
         self.low, self.high = low, high
 
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[TagRangeCheck]:
+        """One per tag with a range."""
+        for t in line.tags.values():
+            if t.low > float("-inf") or t.high < float("inf"):
+                yield cls(t.name, low=t.low, high=t.high)
+
     def update(self, block: Block) -> CheckResult:
         v, q, _ = self._cols(block)
         flag = out_of_range(v, self.low, self.high) & np.isfinite(v)
@@ -94,6 +106,12 @@ class TagQualityCheck(_TagCheck):
 
     kind: ClassVar[str] = "tag_quality"
     defaults: ClassVar[AlarmDefaults] = QUALITY_DEFAULTS
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[TagQualityCheck]:
+        """One per tag."""
+        for t in line.tags.values():
+            yield cls(t.name)
 
     def update(self, block: Block) -> CheckResult:
         v, q, _ = self._cols(block)
@@ -111,6 +129,12 @@ class TagStaleCheck(_TagCheck):
     def __init__(self, object_id: str, *, stale_after: float) -> None:
         super().__init__(object_id)
         self.stale_after = stale_after
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[TagStaleCheck]:
+        """One per tag."""
+        for t in line.tags.values():
+            yield cls(t.name, stale_after=t.stale_after)
 
     def update(self, block: Block) -> CheckResult:
         _, _, age = self._cols(block)
@@ -131,6 +155,17 @@ class TagFrozenCheck(_TagCheck):
     def __init__(self, object_id: str, *, frozen_after: float, tolerance: float) -> None:
         super().__init__(object_id)
         self.frozen_after, self.tol = frozen_after, tolerance
+        self.reset()
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[TagFrozenCheck]:
+        """One per tag with a frozen limit."""
+        for t in line.tags.values():
+            if t.frozen_after is not None:
+                yield cls(t.name, frozen_after=t.frozen_after, tolerance=t.frozen_tolerance)
+
+    def reset(self) -> None:
+        """Forget the last value and when it last changed."""
         self._last_v = np.nan
         self._last_change_t = np.nan
 

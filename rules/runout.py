@@ -9,11 +9,13 @@ filter misses it; this module measures the amplitude on the roll's own angle.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.linemodel import LineModel
 
 
 def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:
@@ -118,6 +120,22 @@ class RunoutCheck:
         self.revs = revolutions
         self.min_tension = min_tension
         self.max_frames = max_frames
+        self.reset()
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[RunoutCheck]:
+        """One per winder flagged for it with its rotation (rpm, or speed and diameter) and the zone it feeds."""
+        s = line.settings
+        for w in line.winders_in_path:
+            if not w.runout_check or not (w.has_rpm or line.has_signal(f"diameter/{w.id}")):
+                continue
+            zone = line.zone_before(w.id) if w.rewind else line.zone_after(w.id)
+            if zone is not None and zone.tension_tag is not None:
+                yield cls(w.id, zone=zone.id, rotation=f"rotation/{w.id}" if w.has_rpm else None,
+                          diameter=f"diameter/{w.id}", frame_rate=s.frame_rate, min_tension=s.min_drive_tension)
+
+    def reset(self) -> None:
+        """Forget the roll angle and the window of past frames."""
         self._phase0 = 0.0
         self._tail_x = np.zeros(0)
         self._tail_p = np.zeros(0)
@@ -182,3 +200,27 @@ class RunoutCheck:
             n=n,
         )
         return finalise(rel, reason, amplitude=amp, frequency=f1)
+
+
+class RollerRunoutCheck(RunoutCheck):
+    """Runout of a driven roller: its rotation from its surface speed and fixed diameter."""
+
+    def __init__(self, object_id: str, *, zone: str, diameter: float, frame_rate: float, min_tension: float) -> None:
+        super().__init__(object_id, zone=zone, rotation=None, diameter=None, frame_rate=frame_rate,
+                         min_tension=min_tension)
+        self.roller_diameter = diameter
+        self.inputs = (f"tension/{zone}", f"speed/{object_id}")
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[RollerRunoutCheck]:  # type: ignore[override]
+        """One per driven roller flagged for it, on the zone downstream of it."""
+        s = line.settings
+        for r in line.driven_rollers:
+            zone = line.zone_after(r.id)
+            if r.runout_check and zone is not None and zone.tension_tag is not None:
+                yield cls(r.id, zone=zone.id, diameter=r.diameter, frame_rate=s.frame_rate,
+                          min_tension=s.min_drive_tension)
+
+    def _rev_per_s(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
+        sig = block.signal(f"speed/{self.object_id}")
+        return np.abs(sig.value) / (np.pi * self.roller_diameter), sig.ok

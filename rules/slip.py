@@ -8,11 +8,13 @@ inertia (an air film, a loss of wrap, a seized bearing).
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.linemodel import LineModel
 
 
 def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:
@@ -93,6 +95,16 @@ class SlipCheck:
         self.inputs = (self.speed, "speed/web")
         self.draw, self.min_speed = draw, min_speed
 
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[SlipCheck]:
+        """One per driven roller with an encoder of its own (not the one that gives the web speed)."""
+        for r in line.rollers_in_path:
+            if r.driven and r.has_encoder and r.id != line.settings.web_speed_from:
+                yield cls(r.id, draw=r.draw, min_speed=line.settings.thread_speed)
+
+    def reset(self) -> None:
+        """Nothing is carried from one block to the next."""
+
     def update(self, block: Block) -> CheckResult:
         vr, vw = block.signal(self.speed), block.signal("speed/web")
         s = slip_ratio(vr.value, vw.value, self.draw, self.min_speed)
@@ -117,6 +129,16 @@ class IdlerLagCheck:
         self.speed = f"speed/{object_id}"
         self.inputs = (self.speed, "speed/web")
         self.min_speed = min_speed
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[IdlerLagCheck]:
+        """One per idler with an encoder (not the one that gives the web speed)."""
+        for r in line.rollers_in_path:
+            if not r.driven and r.has_encoder and r.id != line.settings.web_speed_from:
+                yield cls(r.id, min_speed=line.settings.thread_speed)
+
+    def reset(self) -> None:
+        """Nothing is carried from one block to the next."""
 
     def update(self, block: Block) -> CheckResult:
         vr, vw = block.signal(self.speed), block.signal("speed/web")

@@ -6,11 +6,13 @@ Tensions here are per unit width (N/m) and the web stiffness is ``Et = E * calip
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.windows import RollingMean
 
 
@@ -116,8 +118,30 @@ class DrawCheck:
         self.et, self.modulus_tol, self.ratio_tol = et, modulus_tol, ratio_tol
         self.t1_acc, self.t2_acc = t1_acc, t2_acc
         self.min_speed = min_speed
-        self._means = [RollingMean(window_frames) for _ in range(4)]
-        self._steady = RollingMean(window_frames)
+        self.window_frames = window_frames
+        self.reset()
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[DrawCheck]:
+        """One per zone between two driven rollers with load cells in it and upstream of it and both encoders."""
+        s, mat = line.settings, line.material
+        for z in line.zones:
+            if line.is_winder(z.upstream) or line.is_winder(z.downstream) or z.tension_tag is None:
+                continue
+            zb = line.zone_before(z.upstream)
+            if zb is None or zb.tension_tag is None:
+                continue
+            if not (line.has_signal(f"speed/{z.upstream}") and line.has_signal(f"speed/{z.downstream}")):
+                continue
+            yield cls(z.id, zone_up=zb.id, roller_up=z.upstream, roller_down=z.downstream,
+                      et=mat.modulus * mat.caliper, modulus_tol=mat.modulus_tolerance,
+                      ratio_tol=s.encoder_ratio_tolerance, t1_acc=zb.tension_accuracy, t2_acc=z.tension_accuracy,
+                      window_frames=s.frames(s.check_window), min_speed=s.thread_speed)
+
+    def reset(self) -> None:
+        """Forget the averaging windows (the next window must fill again)."""
+        self._means = [RollingMean(self.window_frames) for _ in range(4)]
+        self._steady = RollingMean(self.window_frames)
 
     def update(self, block: Block) -> CheckResult:
         sig = [block.signal(n) for n in self.names]

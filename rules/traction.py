@@ -15,11 +15,12 @@ the margin has shrunk to exactly the configured safety factor SF).
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-from spanwatch.rules.airfilm import effective_cof
+from spanwatch.rules.airfilm import combined_roughness, effective_cof
 from spanwatch.rules.base import (
     PRODUCTION_STATES,
     AlarmDefaults,
@@ -30,6 +31,7 @@ from spanwatch.rules.base import (
     combine_reasons,
     finalise,
 )
+from spanwatch.rules.linemodel import LineModel
 
 UTILISATION_CAP = 1e3
 
@@ -135,6 +137,25 @@ class TractionCheck:
         self.film_factor, self.sf, self.min_t = film_factor, safety_factor, min_drive_tension
         self.viscosity, self.air_model, self.convention, self.floor = viscosity, air_model, convention, floor
 
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[TractionCheck]:
+        """One per driven roller, between the zones on either side of it."""
+        s, mat = line.settings, line.material
+        for r in line.driven_rollers:
+            zb, za = line.zone_before(r.id), line.zone_after(r.id)
+            if zb is None or za is None:
+                continue
+            speed = f"speed/{r.id}" if line.has_signal(f"speed/{r.id}") else None
+            yield cls(r.id, zone_up=zb.id, zone_down=za.id, mu=r.cof, wrap=r.wrap, radius=r.diameter / 2,
+                      sigma=float(combined_roughness(mat.roughness, r.roughness)),
+                      film_factor=r.air_film_factor * mat.air_film_factor, safety_factor=r.safety_factor,
+                      min_drive_tension=s.min_drive_tension, viscosity=s.air_viscosity,
+                      air_model=s.air_film_model, convention=s.air_speed_convention, floor=s.air_traction_floor,
+                      roller_speed=speed)
+
+    def reset(self) -> None:
+        """Nothing is carried from one block to the next."""
+
     def update(self, block: Block) -> CheckResult:
         up, down = block.signal(self.t_up), block.signal(self.t_down)
         vw, vr = block.signal("speed/web"), block.signal(self.roller_speed)
@@ -169,6 +190,17 @@ class NoDriveCheck:
         self.t_down = f"tension/{zone_down}"
         self.inputs = (self.t_up, self.t_down)
         self.min_t = min_drive_tension
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[NoDriveCheck]:
+        """One per driven roller."""
+        for r in line.driven_rollers:
+            zb, za = line.zone_before(r.id), line.zone_after(r.id)
+            if zb is not None and za is not None:
+                yield cls(r.id, zone_up=zb.id, zone_down=za.id, min_drive_tension=line.settings.min_drive_tension)
+
+    def reset(self) -> None:
+        """Nothing is carried from one block to the next."""
 
     def update(self, block: Block) -> CheckResult:
         up, down = block.signal(self.t_up), block.signal(self.t_down)

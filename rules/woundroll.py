@@ -11,6 +11,7 @@ that says how much that prediction can be trusted.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
@@ -25,6 +26,7 @@ from spanwatch.rules.base import (
     combine_reasons,
     finalise,
 )
+from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.windows import Lagged, RollingMean
 
 # --- pure geometry -------------------------------------------------------------------
@@ -206,9 +208,21 @@ class RollDiameterCheck:
         self.cal_len = calibration_length
         self.drift = caliper_drift
         self.d_acc, self.l_acc = diameter_acc, length_acc
-        self._reset()
+        self.reset()
 
-    def _reset(self) -> None:
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[RollDiameterCheck]:
+        """One per winder with a diameter (measured or from speed) and a length counter."""
+        mat = line.material
+        for w in line.winders_in_path:
+            if line.has_signal(f"diameter/{w.id}") and line.has_signal(f"length/{w.id}"):
+                yield cls(w.id, rewind=w.rewind, core_diameter=w.core_diameter, nominal_caliper=mat.caliper,
+                          stack_factor=mat.stack_factor, calibration_length=w.calibration_length,
+                          caliper_drift=mat.caliper_drift, diameter_acc=w.diameter_accuracy,
+                          length_acc=w.length_accuracy)
+
+    def reset(self) -> None:
+        """Start a new roll: forget the calibration."""
         self.l0: float | None = None
         self.sums = np.zeros(5)  # n, sum x, sum y, sum xx, sum xy   (x = dL, y = D^2)
         self.fit: tuple[float, float, float] | None = None  # a = D0^2, b = slope, sigma_t
@@ -239,7 +253,7 @@ class RollDiameterCheck:
         with np.errstate(all="ignore"):  # huge but finite inputs give inf, marked invalid by finalise
             for lo, hi in itertools.pairwise(bounds):
                 if starts[lo]:
-                    self._reset()
+                    self.reset()
                 self._segment(slice(lo, hi), block.t, d.value, ln.value, usable, value, resid, band, t_eff,
                               warming)
         reason = combine_reasons(
@@ -319,8 +333,22 @@ class SpeedDiameterCheck:
         self.object_id = object_id
         self.names = (f"diameter/{object_id}", f"rotation/{object_id}", "speed/web")
         self.inputs = self.names
-        self._means = [RollingMean(window_frames) for _ in range(3)]
+        self.window_frames = window_frames
         self.min_n = min_rev_per_s
+        self.reset()
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[SpeedDiameterCheck]:
+        """One per winder with both a diameter sensor and an rpm tag."""
+        s = line.settings
+        for w in line.winders_in_path:
+            if w.has_diameter_sensor and w.has_rpm:
+                yield cls(w.id, window_frames=s.frames(s.check_window),
+                          min_rev_per_s=s.thread_speed / (np.pi * w.max_diameter))
+
+    def reset(self) -> None:
+        """Forget the averaging windows."""
+        self._means = [RollingMean(self.window_frames) for _ in range(3)]
 
     def update(self, block: Block) -> CheckResult:
         sigs = [block.signal(n) for n in self.names]
@@ -352,10 +380,23 @@ class LengthRateCheck:
         self.object_id = object_id
         self.names = (f"length/{object_id}", "speed/web")
         self.inputs = self.names
-        self._lag_l = Lagged(window_frames)
-        self._lag_t = Lagged(window_frames)
-        self._mean_v = RollingMean(window_frames)
+        self.window_frames = window_frames
         self.min_speed = min_speed
+        self.reset()
+
+    @classmethod
+    def for_line(cls, line: LineModel) -> Iterator[LengthRateCheck]:
+        """One per winder with a length counter."""
+        s = line.settings
+        for w in line.winders_in_path:
+            if line.has_signal(f"length/{w.id}"):
+                yield cls(w.id, window_frames=s.frames(s.check_window), min_speed=s.thread_speed)
+
+    def reset(self) -> None:
+        """Forget the windows."""
+        self._lag_l = Lagged(self.window_frames)
+        self._lag_t = Lagged(self.window_frames)
+        self._mean_v = RollingMean(self.window_frames)
 
     def update(self, block: Block) -> CheckResult:
         ln, v = block.signal(self.names[0]), block.signal(self.names[1])

@@ -12,10 +12,10 @@ import sys
 from pathlib import Path
 
 import pytest
-from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.pipeline import Pipeline
+from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.alarms import Transition
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -1,4 +1,4 @@
-"""The OPC UA connector against a real asyncua server in process (spanwatch.connectors.opcua_server.SimLineServer).
+"""The OPC UA connector against a real asyncua server in process (spanwatch.monitor.simserve.SimLineServer).
 
 No protocol mocks: every test runs asyncua's Server on a loopback port and the connector's asyncua
 Client against it. What the tests hold the connector to comes from outside the project:
@@ -30,10 +30,12 @@ import numpy as np
 import pytest
 from asyncua import ua
 from spanwatch.connectors.opcua import OpcUaConnector, browse
-from spanwatch.connectors.opcua_server import SimLineServer, make_test_pki, opcua_line_config
-from spanwatch.connectors.simline import SimulatedLine, load_scenario
+from spanwatch.connectors.opcua_server import make_test_pki
 from spanwatch.monitor.config import OpcUaSource, TagSection, parse_config
 from spanwatch.monitor.line import load_line
+from spanwatch.monitor.simline import SimulatedLine, load_scenario
+from spanwatch.monitor.simserve import SimLineServer, opcua_line_config
+from spanwatch.monitor.sources import opcua_settings, opcua_tags
 from spanwatch.rules.samples import SampleBatch
 
 REPO = Path(__file__).resolve().parents[1]
@@ -108,7 +110,7 @@ class Collector:
 
 async def start_connector(spec: OpcUaSource, tags: dict[str, TagSection],
                           sink: Collector) -> tuple[OpcUaConnector, asyncio.Task[None]]:
-    conn = OpcUaConnector("plc", spec, tags, sink)
+    conn = OpcUaConnector("plc", opcua_settings(spec), opcua_tags(tags), sink)
     return conn, asyncio.create_task(conn.run())
 
 

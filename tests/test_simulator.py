@@ -7,9 +7,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from spanwatch.connectors.simline import SimulatedLine
-from spanwatch.connectors.simline.scenario import parse_scenario
 from spanwatch.monitor.line import load_line
+from spanwatch.monitor.simline import SimulatedLine
+from spanwatch.monitor.simline.scenario import parse_scenario
 from spanwatch.rules.span import steady_span_tension
 from spanwatch.rules.traction import capstan_ratio_limit
 

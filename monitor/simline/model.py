@@ -33,10 +33,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from spanwatch.connectors.simline.scenario import Fault, Scenario
 from spanwatch.monitor import units as U
 from spanwatch.monitor.config import RollerSection, WinderSection
 from spanwatch.monitor.line import Line
+from spanwatch.monitor.simline.scenario import Fault, Scenario
 from spanwatch.rules.airfilm import combined_roughness, effective_cof
 from spanwatch.rules.samples import SampleBatch
 from spanwatch.rules.woundroll import taper_tension
@@ -63,6 +63,7 @@ class SimulatedLine:
 
     def __init__(self, line: Line, scenario: Scenario) -> None:
         self.line, self.sc = line, scenario
+        self.name = line.name
         cfg, sc = line.config, scenario.scenario
         self.t0 = sc.start
         self.frame_dt = 1.0 / cfg.line.frame_rate

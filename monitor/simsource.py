@@ -8,8 +8,8 @@ from collections.abc import Callable
 from pathlib import Path
 
 from spanwatch.connectors.live import LiveConnector
-from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.line import Line
+from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.samples import SampleBatch
 
 
