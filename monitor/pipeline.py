@@ -144,11 +144,12 @@ class Pipeline:
 
     # --- processing ----------------------------------------------------------------------
 
-    def advance(self, until: float) -> list[Transition]:
-        """Compute every frame up to ``until`` (epoch s); return the alarm transitions they caused."""
+    def next_block(self, until: float) -> Block | None:
+        """The frames up to ``until`` (epoch s) as a block the checks read: aligned tags, SI signals, line state
+        and roll changes; None when no frame is due."""
         out = self.aligner.emit(until)
         if out is None:
-            return []
+            return None
         t, frames = out
         signals = self.deriver.derive(frames)
         block = Block(t=t, signals=signals, line_state=np.zeros(t.size, np.int8), tags=frames)
@@ -156,6 +157,14 @@ class Pipeline:
         for wid, det in self.rolls.items():
             block.roll_start[wid], block.roll_settling[wid] = det.update(
                 t, block.signal(f"diameter/{wid}"), signals.get(f"core_change/{wid}"), signals.get(f"length/{wid}"))
+        return block
+
+    def advance(self, until: float) -> list[Transition]:
+        """Compute every frame up to ``until`` (epoch s); return the alarm transitions they caused."""
+        block = self.next_block(until)
+        if block is None:
+            return []
+        t, frames, signals = block.t, block.tags, block.signals
         results: dict[tuple[str, str], CheckResult] = {}
         for c in self.checks:
             results[(c.kind, c.object_id)] = c.update(block)
