@@ -58,8 +58,9 @@ def build_connectors(line: Line, sink: Callable[[SampleBatch], None]) -> list[Li
             out.append(OpcUaConnector(name, spec, tags, sink))
         elif spec.kind == "mqtt":
             from spanwatch.connectors.mqtt import MqttConnector
+            from spanwatch.monitor.config import mqtt_settings
 
-            out.append(MqttConnector(name, spec, tags, sink))
+            out.append(MqttConnector(name, mqtt_settings(spec), {n: t.address for n, t in tags.items()}, sink))
         else:
             from pathlib import Path
 
@@ -113,8 +114,9 @@ class Daemon:
         for spec in self.line.config.sources.values():
             if spec.kind == "mqtt" and (spec.alarm_topic or spec.active_topic):
                 from spanwatch.connectors.mqtt import MqttAlarmPublisher
+                from spanwatch.monitor.config import mqtt_settings
 
-                pubs.append(MqttAlarmPublisher(spec))
+                pubs.append(MqttAlarmPublisher(mqtt_settings(spec)))
         return pubs
 
     # --- the loop --------------------------------------------------------------------------
