@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import gc
 import json
 import os
@@ -40,8 +41,12 @@ import tempfile
 import threading
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from spanwatch.connectors.mqtt import MqttSettings
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
@@ -189,13 +194,13 @@ def line_publisher(plan: dict) -> None:
 # --- the measuring side ---------------------------------------------------------------------------
 
 
-def spec_for(port: int, queue_size: int, overflow: str) -> object:
-    from spanwatch.monitor.config import MqttSource
+def spec_for(port: int, queue_size: int, overflow: str) -> MqttSettings:
+    from spanwatch.connectors.mqtt import MqttSettings, TopicRule
 
-    return MqttSource(kind="mqtt", port=port, client_id="bench-connector", payload="json", value_path="value",
-                      time_path="time", quality_path=None, subscribe=["quillmere/q2/bench/#"],
-                      topic_map=[{"pattern": "quillmere/q2/bench/+", "tag": "bench.{1}"}], queue_size=queue_size,
-                      overflow=overflow, reconnect_min="0.2 s", reconnect_max="2 s", protocol=PROTOCOL)
+    return MqttSettings(port=port, client_id="bench-connector", payload="json", value_path="value",
+                        time_path="time", quality_path=None, subscribe=("quillmere/q2/bench/#",),
+                        topic_map=(TopicRule("quillmere/q2/bench/+", "bench.{1}"),), queue_size=queue_size,
+                        overflow=overflow, reconnect_min=0.2, reconnect_max=2.0, protocol=PROTOCOL)
 
 
 async def _wait(pred, timeout: float) -> bool:
@@ -210,10 +215,9 @@ async def _wait(pred, timeout: float) -> bool:
 async def throughput(port: int, count: int, tags: int, queue_size: int, overflow: str, inflight: int,
                      tool: str) -> dict:
     from spanwatch.connectors.mqtt import MqttConnector
-    from spanwatch.monitor.config import TagSection
     from spanwatch.rules.samples import SampleBatch
 
-    names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}
+    names: dict[str, str | None] = {f"bench.tag{k:02d}": None for k in range(tags)}  # matched by the topic rule
     seen = np.zeros(count, dtype=np.int32)
     marks: dict[str, float] = {}
     batches: list[int] = []
@@ -227,7 +231,7 @@ async def throughput(port: int, count: int, tags: int, queue_size: int, overflow
         np.add.at(seen, idx[ok], 1)
         batches.append(len(batch))
 
-    conn = MqttConnector("bench", spec_for(port, queue_size, overflow), names, sink)  # type: ignore[arg-type]
+    conn = MqttConnector("bench", spec_for(port, queue_size, overflow), names, sink)
     task = asyncio.create_task(conn.run())
     if FREEZE:
         gc.freeze()  # as the daemon does once its connectors run
@@ -259,18 +263,17 @@ async def throughput(port: int, count: int, tags: int, queue_size: int, overflow
 async def latency(port: int, rate: float, seconds: float, tags: int, queue_size: int, overflow: str,
                   inflight: int) -> dict:
     from spanwatch.connectors.mqtt import MqttConnector
-    from spanwatch.monitor.config import TagSection
     from spanwatch.rules.samples import SampleBatch
 
     count = int(rate * seconds)
-    names = {f"bench.tag{k:02d}": TagSection(unit="N") for k in range(tags)}
+    names: dict[str, str | None] = {f"bench.tag{k:02d}": None for k in range(tags)}  # matched by the topic rule
     lat: list[np.ndarray] = []
 
     def sink(batch: SampleBatch) -> None:
         lat.append(time.time() - batch.t)
 
     spec = spec_for(port, queue_size, overflow)
-    conn = MqttConnector("bench-latency", spec.model_copy(update={"client_id": "bench-latency"}), names, sink)  # type: ignore[attr-defined]
+    conn = MqttConnector("bench-latency", dataclasses.replace(spec, client_id="bench-latency"), names, sink)
     task = asyncio.create_task(conn.run())
     if FREEZE:
         gc.freeze()

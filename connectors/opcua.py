@@ -75,6 +75,7 @@ from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
 from cryptography import x509
 from cryptography.x509.oid import NameOID
 from spanwatch.connectors.live import LiveConnector
+from spanwatch.connectors.ratelog import RateLimitedLog
 from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.rules.samples import SampleBatch
 
@@ -162,23 +163,6 @@ def safe_endpoint(endpoint: str) -> str:
         return endpoint
     netloc, slash, path = rest.partition("/")
     return f"{head}://{netloc.rpartition('@')[2]}{slash}{path}"
-
-
-class _RateLimitedLog:
-    """At most one warning per reason every ``every`` seconds, with the number of occurrences since the last."""
-
-    def __init__(self, logger: logging.Logger, every: float = LOG_EVERY) -> None:
-        self.logger, self.every = logger, every
-        self._last: dict[str, float] = {}
-        self._count: dict[str, int] = {}
-
-    def __call__(self, reason: str, message: str) -> None:
-        self._count[reason] = self._count.get(reason, 0) + 1
-        now = time.monotonic()
-        if now - self._last.get(reason, -math.inf) >= self.every:
-            n = self._count.pop(reason)
-            self.logger.warning("%s%s", message, f" ({n} time(s) since the last report)" if n > 1 else "")
-            self._last[reason] = now
 
 
 class _TagSubscription(Subscription):
@@ -352,7 +336,7 @@ class OpcUaConnector(LiveConnector):
         self._buf_q: list[int] = []
         self._lost: str | None = None
         self._wake = asyncio.Event()
-        self._ratelog = _RateLimitedLog(log)
+        self._ratelog = RateLimitedLog(log, LOG_EVERY)
         self._password: str | None = None
         self._setup_problem = ""
 

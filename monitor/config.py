@@ -28,6 +28,8 @@ from pydantic import (
     ValidationError,
     model_validator,
 )
+from spanwatch.connectors.mqtt.settings import MqttSettings, TopicRule
+from spanwatch.connectors.mqtt.topics import check_rule
 from spanwatch.monitor import units as U
 
 
@@ -332,16 +334,7 @@ class TopicMap(Strict):
 
     @model_validator(mode="after")
     def _wildcards(self) -> TopicMap:
-        levels = self.pattern.split("/")
-        for i, level in enumerate(levels):  # MQTT filter rules: '+' alone in a level, '#' alone and last
-            if ("+" in level and level != "+") or ("#" in level and (level != "#" or i != len(levels) - 1)):
-                raise ValueError(f"expected an MQTT topic filter ('+' alone in a level, '#' alone at the end), "
-                                 f"got {self.pattern!r}")
-        wild = sum(lv in ("+", "#") for lv in levels)
-        for n in re.findall(r"\{(\d+)\}", self.tag):
-            if not 1 <= int(n) <= wild:
-                raise ValueError(f"expected placeholders {{1}}..{{{wild}}} in the tag template (the filter has {wild} "
-                                 f"wildcard level(s)), got {self.tag!r}")
+        check_rule(self.pattern, self.tag)  # the MQTT filter rules, and placeholders only for its wildcard levels
         return self
 
 
@@ -379,6 +372,12 @@ class MqttSource(Strict):
     active_topic: str | None = None
     reconnect_min: PosDuration = 0.5
     reconnect_max: PosDuration = 30.0
+
+
+def mqtt_settings(spec: MqttSource) -> MqttSettings:
+    """The MQTT adapter's plain parameters from a ``[sources.NAME]`` table with ``kind = "mqtt"`` (already SI)."""
+    fields = spec.model_dump(exclude={"kind", "topic_map"})
+    return MqttSettings(**fields, topic_map=tuple(TopicRule(tm.pattern, tm.tag) for tm in spec.topic_map))
 
 
 class SimulatedSource(Strict):

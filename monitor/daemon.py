@@ -90,8 +90,9 @@ class Daemon:
         for spec in self.line.config.sources.values():
             if spec.kind == "mqtt" and (spec.alarm_topic or spec.active_topic):
                 from spanwatch.connectors.mqtt import MqttAlarmPublisher
+                from spanwatch.monitor.config import mqtt_settings
 
-                pubs.append(MqttAlarmPublisher(spec))
+                pubs.append(MqttAlarmPublisher(mqtt_settings(spec)))
         return pubs
 
     # --- the loop --------------------------------------------------------------------------

@@ -11,9 +11,10 @@ at most one line per reason every ``log_every`` seconds, with the count since th
 from __future__ import annotations
 
 import logging
-import time
 from collections.abc import Iterable
 from dataclasses import dataclass, field
+
+from spanwatch.connectors.ratelog import RateLimitedLog
 
 log = logging.getLogger("spanwatch.inputs")
 
@@ -24,8 +25,10 @@ class InputStats:
     log_every: float = 10.0
     counts: dict[tuple[str, str], int] = field(default_factory=dict)
     refs: dict[tuple[str, str], list[int]] = field(default_factory=dict)
-    _last_log: dict[str, float] = field(default_factory=dict)
-    _since_log: dict[str, int] = field(default_factory=dict)
+    _ratelog: RateLimitedLog = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        self._ratelog = RateLimitedLog(log, self.log_every)
 
     def add(self, tag: str, reason: str, refs: Iterable[int] = (), count: int | None = None) -> None:
         """Count ``count`` (default: len(refs)) samples of ``tag`` refused or flagged for ``reason``."""
@@ -37,13 +40,10 @@ class InputStats:
         self.counts[key] = self.counts.get(key, 0) + n
         kept = self.refs.setdefault(key, [])
         kept.extend(r for r in refs[: max(0, self.keep_refs - len(kept))] if r >= 0)
-        self._since_log[reason] = self._since_log.get(reason, 0) + n
-        now = time.monotonic()
-        if now - self._last_log.get(reason, -1e9) >= self.log_every:
+        since = self._ratelog.tally(reason, n)
+        if since:
             where = f" (first at {kept[0]})" if kept else ""
-            log.warning("input: %d sample(s) with %s, latest tag %s%s", self._since_log[reason], reason, tag, where)
-            self._last_log[reason] = now
-            self._since_log[reason] = 0
+            log.warning("input: %d sample(s) with %s, latest tag %s%s", since, reason, tag, where)
 
     def total(self, reason: str | None = None) -> int:
         return sum(v for (_, r), v in self.counts.items() if reason is None or r == reason)

@@ -23,7 +23,7 @@ from spanwatch.rules.samples import SampleBatch
 if TYPE_CHECKING:
     from spanwatch.connectors.live import LiveConnector
     from spanwatch.connectors.opcua import OpcUaSettings, OpcUaTag
-    from spanwatch.monitor.config import OpcUaSource, TagSection
+    from spanwatch.monitor.config import MqttSource, OpcUaSource, TagSection
     from spanwatch.monitor.line import Line
 
 Sink = Callable[[SampleBatch], None]
@@ -58,10 +58,12 @@ def _opcua(name: str, spec: OpcUaSource, line: Line, sink: Sink) -> LiveConnecto
     return OpcUaConnector(name, opcua_settings(spec), opcua_tags(line.tags_of_source(name)), sink)
 
 
-def _mqtt(name: str, spec: Any, line: Line, sink: Sink) -> LiveConnector:
+def _mqtt(name: str, spec: MqttSource, line: Line, sink: Sink) -> LiveConnector:
     from spanwatch.connectors.mqtt import MqttConnector
+    from spanwatch.monitor.config import mqtt_settings
 
-    return MqttConnector(name, spec, line.tags_of_source(name), sink)
+    tags = {n: t.address for n, t in line.tags_of_source(name).items()}
+    return MqttConnector(name, mqtt_settings(spec), tags, sink)
 
 
 def _simulated(name: str, spec: Any, line: Line, sink: Sink) -> LiveConnector:

@@ -4,13 +4,16 @@ Every test that needs a broker starts its own mosquitto on a free port (tests/mq
 publishers and subscribers on the other side are independent paho-mqtt clients. What the
 tests hold the connector to is the MQTT v5.0 OASIS standard as the broker implements it
 (section numbers are from memory where marked) and the payload conventions of the
-configuration schema (monitor/config.py, MqttSource).
+adapter's settings (connectors/mqtt/settings.py, MqttSettings), which the configuration
+schema (monitor/config.py, MqttSource) fills in.
 """
 
 from __future__ import annotations
 
 import asyncio
 import calendar
+import dataclasses
+import itertools
 import json
 import logging
 import math
@@ -28,8 +31,16 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from mqtt_broker import MosquittoBroker, make_password_file, make_tls_files, need
 from paho.mqtt.enums import CallbackAPIVersion
-from spanwatch.connectors.mqtt import MalformedPayload, MqttAlarmPublisher, MqttConnector, PayloadDecoder, match_filter
-from spanwatch.monitor.config import MqttSource, TagSection
+from spanwatch.connectors.mqtt import (
+    MalformedPayload,
+    MqttAlarmPublisher,
+    MqttConnector,
+    MqttSettings,
+    PayloadDecoder,
+    TopicRule,
+)
+from spanwatch.connectors.mqtt.topics import check_filter, match_filter
+from spanwatch.monitor.config import MqttSource, mqtt_settings
 from spanwatch.rules.alarms import AlarmPoint, Transition
 from spanwatch.rules.samples import SampleBatch
 
@@ -55,17 +66,13 @@ async def until(pred: Callable[[], object], timeout: float, what: str) -> None:
         pytest.fail(f"timed out after {timeout} s waiting for {what}")
 
 
-def source(broker: MosquittoBroker, **kw: Any) -> MqttSource:
-    """An MQTT source on the test broker with quick reconnection and a client id of its own."""
-    base: dict[str, Any] = {"kind": "mqtt", "host": broker.host, "port": broker.port,
-                            "client_id": f"spanwatch-test-{uuid.uuid4().hex[:8]}", "reconnect_min": "0.1 s",
-                            "reconnect_max": "1 s", "keepalive": "5 s"}
+def source(broker: MosquittoBroker, **kw: Any) -> MqttSettings:
+    """Settings for the test broker with quick reconnection (seconds) and a client id of their own."""
+    base: dict[str, Any] = {"host": broker.host, "port": broker.port,
+                            "client_id": f"spanwatch-test-{uuid.uuid4().hex[:8]}", "reconnect_min": 0.1,
+                            "reconnect_max": 1.0, "keepalive": 5.0}
     base.update(kw)
-    return MqttSource.model_validate(base)
-
-
-def tag(address: str | None = None, unit: str = "N") -> TagSection:
-    return TagSection(unit=unit, source="broker", address=address)
+    return MqttSettings(**base)
 
 
 class Collector:
@@ -190,7 +197,7 @@ class Subscriber:
 
 def test_number_payloads_become_samples_stamped_with_arrival_time(mqtt_broker):
     """The text of a number on a tag's address topic is one good sample timestamped on arrival (wall clock)."""
-    tags = {"q2.s5.tension": tag("quillmere/q2/s5/tension"), "q2.line.speed_ref": tag("quillmere/q2/line/speed")}
+    tags = {"q2.s5.tension": "quillmere/q2/s5/tension", "q2.line.speed_ref": "quillmere/q2/line/speed"}
     got = Collector()
 
     async def main() -> tuple[float, float, MqttConnector]:
@@ -241,7 +248,7 @@ def test_json_payloads_read_value_time_and_quality_from_dotted_paths(mqtt_broker
     async def main() -> MqttConnector:
         spec = source(mqtt_broker, payload="json", value_path="data.v", time_path="data.t", quality_path="data.q",
                       time_unit=unit)
-        conn = MqttConnector("broker", spec, {"q2.s5.tension": tag("quillmere/q2/s5/tension")}, got)
+        conn = MqttConnector("broker", spec, {"q2.s5.tension": "quillmere/q2/s5/tension"}, got)
         task = await start(conn)
         with publisher(mqtt_broker) as pub:
             pub.publish(payloads)
@@ -259,11 +266,10 @@ def test_json_payloads_read_value_time_and_quality_from_dotted_paths(mqtt_broker
 
 def test_topic_map_wildcards_exact_addresses_and_unknown_topics(mqtt_broker):
     """``+`` takes one level, ``#`` the rest; an exact address wins; a topic with no configured tag is counted."""
-    tags = {"q2.s5.tension": tag(), "q2.pull_1.speed": tag(unit="m/min"), "lab.rig/temp": tag(unit="degC"),
-            "q2.unwind.rpm": tag("quillmere/q2/legacy/unwind_rpm", unit="rpm")}
+    tags = {"q2.s5.tension": None, "q2.pull_1.speed": None, "lab.rig/temp": None,
+            "q2.unwind.rpm": "quillmere/q2/legacy/unwind_rpm"}
     spec = source(mqtt_broker, subscribe=["quillmere/#"],
-                  topic_map=[{"pattern": "quillmere/q2/+/+", "tag": "q2.{1}.{2}"},
-                             {"pattern": "quillmere/lab/#", "tag": "lab.{1}"}])
+                  topic_map=[TopicRule("quillmere/q2/+/+", "q2.{1}.{2}"), TopicRule("quillmere/lab/#", "lab.{1}")])
     got = Collector()
 
     async def main() -> MqttConnector:
@@ -319,6 +325,73 @@ def test_a_bad_topic_map_is_refused_by_the_config_schema():
         MqttSource(kind="mqtt", topic_map=[{"pattern": "quillmere/q2+/x", "tag": "q2.x"}])
 
 
+# MQTT Version 5.0 OASIS Standard (7 March 2019), the examples of section 4.7.1.2 (multi-level wildcard '#': alone,
+# as the whole filter or after a '/', and the last character) and 4.7.1.3 (single-level wildcard '+': occupies an
+# entire level); section 4.7.3: a filter is at least one character long. MQTT 3.1.1 (29 October 2014) has the same
+# rules and examples in the same sections.
+VALID_FILTERS = ["sport/tennis/player1/#", "sport/#", "#", "sport/tennis/#", "+", "+/tennis/#", "sport/+/player1",
+                 "sport/tennis/+", "+/+", "/+", "/finance", "sport/"]
+INVALID_FILTERS = ["sport/tennis#", "sport/tennis/#/ranking", "sport+", "", "#/", "sport/+tennis", "##", "+#"]
+
+
+def test_topic_filter_check_follows_the_standard():
+    for f in VALID_FILTERS:
+        assert check_filter(f) == f.split("/"), f
+    for f in INVALID_FILTERS:
+        with pytest.raises(ValueError, match="topic filter"):
+            check_filter(f)
+
+
+def test_topic_filter_check_agrees_with_the_paho_client():
+    """Every string of up to five characters from {a, +, #, /}: the filter check accepts exactly what paho-mqtt's
+    Client.subscribe accepts (the reference Python client refuses an invalid filter with ValueError before it
+    sends anything; not connected, it answers MQTT_ERR_NO_CONN for a valid one)."""
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, protocol=mqtt.MQTTv311)
+    checked = 0
+    for n in range(6):
+        for chars in itertools.product("a+#/", repeat=n):
+            f = "".join(chars)
+            try:
+                client.subscribe(f, qos=0)
+                paho_accepts = True
+            except ValueError:
+                paho_accepts = False
+            try:
+                check_filter(f)
+                ours = True
+            except ValueError:
+                ours = False
+            assert ours == paho_accepts, f"filter {f!r}"
+            checked += 1
+    assert checked == sum(4**n for n in range(6))
+
+
+def test_a_bad_topic_rule_or_subscription_is_refused_by_the_connector():
+    """The adapter checks its plain settings itself (the same rules as the config schema)."""
+    tags = {"q2.s5.tension": None}
+    with pytest.raises(ValueError, match="wildcard"):
+        MqttConnector("broker", MqttSettings(topic_map=(TopicRule("quillmere/q2/+", "q2.{1}.{2}"),)), tags, Collector())
+    with pytest.raises(ValueError, match="topic filter"):
+        MqttConnector("broker", MqttSettings(subscribe=("quillmere/q2+/x",)), tags, Collector())
+    with pytest.raises(ValueError, match="topic filter"):  # a shared subscription is checked by its filter part
+        MqttConnector("broker", MqttSettings(subscribe=("$share/q2/quillmere/#/x",)), tags, Collector())
+    with pytest.raises(ValueError, match="overflow"):
+        MqttSettings(overflow="drop_newest")
+
+
+def test_the_config_fills_in_every_setting_in_si():
+    """Every MqttSettings field comes from the [sources.NAME] table of the same name; quantities arrive in seconds
+    (1 h = 3600 s, 1 min = 60 s: SI Brochure, 9th edition (2019), table 8)."""
+    assert {f.name for f in dataclasses.fields(MqttSettings)} == set(MqttSource.model_fields) - {"kind"}
+    spec = MqttSource(kind="mqtt", host="broker.q2", session_expiry="1 h", keepalive="1 min", reconnect_min="500 ms",
+                      subscribe=["quillmere/q2/#"], topic_map=[{"pattern": "quillmere/q2/+/+", "tag": "q2.{1}.{2}"}],
+                      password="env:QUILLMERE_MQTT_PW")
+    s = mqtt_settings(spec)
+    assert (s.host, s.password, s.subscribe) == ("broker.q2", "env:QUILLMERE_MQTT_PW", ("quillmere/q2/#",))
+    assert (s.session_expiry, s.keepalive, s.reconnect_min) == (3600.0, 60.0, 0.5)
+    assert s.topic_map == (TopicRule("quillmere/q2/+/+", "q2.{1}.{2}"),)
+
+
 # --- sessions: reconnection and QoS 1 -------------------------------------------------------------
 
 
@@ -362,13 +435,13 @@ def test_broker_restart_mid_stream_reconnects_and_loses_nothing_acknowledged(mqt
     keeps the session and its queued QoS 1 messages; mosquitto's persistence keeps them across its restart.
     QoS 1 is "at least once" (section 4.3.2): a message in flight at the stop may come twice, none may be missing.
     """
-    spec = source(mqtt_broker, clean_start=False, session_expiry="1 h", reconnect_min="0.2 s", reconnect_max="2 s")
+    spec = source(mqtt_broker, clean_start=False, session_expiry=3600.0, reconnect_min=0.2, reconnect_max=2.0)
     got = Collector()
     states: list[str] = []
     stream = StreamingPublisher(mqtt_broker)
 
     async def main() -> MqttConnector:
-        conn = MqttConnector("broker", spec, {"q2.s5.tension": tag("quillmere/q2/s5/tension")}, got)
+        conn = MqttConnector("broker", spec, {"q2.s5.tension": "quillmere/q2/s5/tension"}, got)
         task = await start(conn)
 
         async def watch() -> None:
@@ -413,7 +486,7 @@ def _offline_session_run(broker: MosquittoBroker, clean_start_again: bool, proto
                          ) -> tuple[Collector, MqttConnector]:
     """Connector A subscribes and stops; 300 messages are published; the broker restarts; connector B resumes."""
     client_id = f"spanwatch-q2-{uuid.uuid4().hex[:8]}"
-    tags = {"q2.s5.tension": tag("quillmere/q2/s5/tension")}
+    tags = {"q2.s5.tension": "quillmere/q2/s5/tension"}
     got = Collector()
 
     async def main() -> MqttConnector:
@@ -524,7 +597,7 @@ def test_fuzzed_messages_never_stop_the_connector_and_every_one_is_accounted_for
             got = Collector()
             spec = source(mqtt_broker, payload=kind, subscribe=[f"fuzz/{kind}/#"], max_payload=MAX_PAYLOAD,
                           clean_start=True, quality_path="quality")
-            conn = MqttConnector(kind, spec, {f"{kind}.a": tag(f"fuzz/{kind}/a"), f"{kind}.b": tag(f"fuzz/{kind}/b")},
+            conn = MqttConnector(kind, spec, {f"{kind}.a": f"fuzz/{kind}/a", f"{kind}.b": f"fuzz/{kind}/b"},
                                  got)
             results[kind] = (got, conn)
             tasks.append(await start(conn))
@@ -560,7 +633,7 @@ def test_fuzzed_messages_never_stop_the_connector_and_every_one_is_accounted_for
 
 
 def _decoder(**kw: Any) -> PayloadDecoder:
-    return PayloadDecoder(MqttSource.model_validate({"kind": "mqtt", **kw}))
+    return PayloadDecoder(MqttSettings(**kw))
 
 
 @settings(max_examples=300, deadline=None)
@@ -645,7 +718,7 @@ def _overflow_run(broker: MosquittoBroker, policy: str, n: int) -> tuple[Collect
 
     async def main() -> MqttConnector:
         spec = source(broker, queue_size=100, overflow=policy)
-        conn = MqttConnector("broker", spec, {"q2.s5.tension": tag("quillmere/q2/s5/tension")}, sink)
+        conn = MqttConnector("broker", spec, {"q2.s5.tension": "quillmere/q2/s5/tension"}, sink)
         conn_box.append(conn)
         task = await start(conn)
         with publisher(broker) as pub:
@@ -729,8 +802,8 @@ def test_alarm_publisher_sends_transitions_and_a_retained_active_list(mqtt_broke
 
 def test_alarm_publisher_holds_messages_while_the_broker_is_down(mqtt_broker):
     """publish() returns at once while the broker is away; paho sends the QoS 1 messages after reconnecting."""
-    spec = source(mqtt_broker, active_topic="quillmere/q2/spanwatch/active", reconnect_min="0.1 s",
-                  reconnect_max="0.5 s")
+    spec = source(mqtt_broker, active_topic="quillmere/q2/spanwatch/active", reconnect_min=0.1,
+                  reconnect_max=0.5)
     p = _point()
     pub = MqttAlarmPublisher(spec)
     pub.start()
@@ -766,7 +839,7 @@ def test_a_wrong_password_is_refused_and_reported_without_the_password(mqtt_brok
     need("mosquitto_passwd (to make the broker's password file)", pw, "Debian: apt-get install mosquitto")
     broker = mqtt_broker_factory(password_file=pw)
     caplog.set_level(logging.DEBUG)
-    tags = {"q2.s5.tension": tag("quillmere/q2/s5/tension")}
+    tags = {"q2.s5.tension": "quillmere/q2/s5/tension"}
 
     async def refused() -> MqttConnector:
         monkeypatch.setenv("QUILLMERE_TEST_MQTT_PW", WRONG)
@@ -812,7 +885,7 @@ def test_a_missing_secret_is_reported_by_name(mqtt_broker, monkeypatch):
 
     async def main() -> MqttConnector:
         conn = MqttConnector("broker", source(mqtt_broker, username="u", password="env:QUILLMERE_TEST_UNSET_PW"),
-                             {"q2.s5.tension": tag("quillmere/q2/s5/tension")}, Collector())
+                             {"q2.s5.tension": "quillmere/q2/s5/tension"}, Collector())
         task = asyncio.create_task(conn.run())
         await until(lambda: conn.stats.last_error != "", 10, "an error")
         await finish(conn, task)
@@ -831,7 +904,7 @@ def test_tls_with_a_client_certificate_and_a_wrong_ca(mqtt_broker_factory, tmp_p
     other = make_tls_files(tmp_path / "other-pki")
     assert files is not None and other is not None
     broker = mqtt_broker_factory(tls=files, require_certificate=True)
-    tags = {"q2.s5.tension": tag("quillmere/q2/s5/tension")}
+    tags = {"q2.s5.tension": "quillmere/q2/s5/tension"}
     got = Collector()
 
     async def good() -> None:
@@ -887,7 +960,7 @@ def test_samples_arrive_in_batches_on_the_event_loop_thread(mqtt_broker):
 
     async def main() -> None:
         loop_thread.append(threading.get_ident())
-        conn = MqttConnector("broker", source(mqtt_broker), {"q2.s5.tension": tag("quillmere/q2/s5/tension")}, sink)
+        conn = MqttConnector("broker", source(mqtt_broker), {"q2.s5.tension": "quillmere/q2/s5/tension"}, sink)
         task = await start(conn)
         with publisher(mqtt_broker) as pub:
             await asyncio.to_thread(pub.publish, [("quillmere/q2/s5/tension", str(i)) for i in range(2000)])

@@ -1,0 +1,40 @@
+"""MQTT source and alarm publisher (paho-mqtt 2.x, MQTT v5 or 3.1.1).
+
+:class:`MqttConnector` subscribes to a broker and turns every message into one tag
+sample; :class:`MqttAlarmPublisher` publishes alarm transitions and the list of active
+alarms back to the broker. Both take plain parameters (:class:`MqttSettings`, the tags'
+topics, a sink) and import nothing from the application.
+
+Modules, each named for what it holds:
+
+* ``settings``: :class:`MqttSettings` and :class:`TopicRule`, what an application fills in;
+* ``topics``: the one MQTT topic-filter check, wildcard matching, the topic -> tag router;
+* ``payload``: payload bytes -> one sample, and the reasons a message is refused;
+* ``queue``: the bounded queue between the network thread and the event loop;
+* ``client``: the one place a paho client is made and connected, and the network thread;
+* ``source``: :class:`MqttConnector`, the live source (connection, subscriptions, delivery);
+* ``publisher``: :class:`MqttAlarmPublisher`, alarms back to the broker.
+"""
+
+from spanwatch.connectors.mqtt.client import MqttConnectionError
+from spanwatch.connectors.mqtt.payload import MalformedPayload, PayloadDecoder
+from spanwatch.connectors.mqtt.publisher import MqttAlarmPublisher, transition_message
+from spanwatch.connectors.mqtt.queue import SampleQueue
+from spanwatch.connectors.mqtt.settings import MqttSettings, TopicRule
+from spanwatch.connectors.mqtt.source import MqttConnector
+from spanwatch.connectors.mqtt.topics import TopicRouter, check_filter, match_filter
+
+__all__ = [
+    "MalformedPayload",
+    "MqttAlarmPublisher",
+    "MqttConnectionError",
+    "MqttConnector",
+    "MqttSettings",
+    "PayloadDecoder",
+    "SampleQueue",
+    "TopicRouter",
+    "TopicRule",
+    "check_filter",
+    "match_filter",
+    "transition_message",
+]

@@ -1,0 +1,163 @@
+"""MQTT payloads -> one sample each: the decoder and the reasons it refuses a message for.
+
+``payload = "number"``: the UTF-8 text of a decimal number, stamped with the arrival
+time. ``payload = "json"``: an object with the value, the source time and the quality at
+dotted paths (:class:`PayloadDecoder`).
+
+**Bad input.** A message that cannot become a sample raises :class:`MalformedPayload`
+with a short reason, which the connector counts per topic and logs (rate-limited); a NaN
+or infinite value is delivered as a bad-quality sample *and* counted. Reasons:
+``payload too large``, ``not UTF-8``, ``not a number``, ``not JSON``,
+``not a JSON object``, ``missing value``, ``wrong value type``, ``non-finite value``,
+``missing time``, ``wrong time type``, ``bad time``, ``time without offset``,
+``non-finite time``, ``bad quality`` (and, from the connector, ``unknown topic``).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Sequence
+from datetime import datetime
+from typing import Any
+
+from spanwatch.connectors.mqtt.settings import MqttSettings
+from spanwatch.rules.samples import QUALITY_CODES
+
+
+class MalformedPayload(ValueError):
+    """A message that cannot become a sample; ``reason`` is the short text it is counted under."""
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(reason)
+        self.reason = reason
+
+
+_MISSING = object()
+
+
+def _get(doc: dict[str, Any], parts: Sequence[str]) -> Any:
+    """Follow a dotted path (split into ``parts``) through objects and list indices; ``_MISSING`` if absent."""
+    if len(parts) == 1:
+        return doc.get(parts[0], _MISSING)
+    cur: Any = doc
+    for p in parts:
+        if type(cur) is dict:
+            cur = cur.get(p, _MISSING)
+            if cur is _MISSING:
+                return _MISSING
+        elif type(cur) is list and p.isdigit() and int(p) < len(cur):
+            cur = cur[int(p)]
+        else:
+            return _MISSING
+    return cur
+
+
+_BAD = QUALITY_CODES["bad"]
+
+
+class PayloadDecoder:
+    """Payload bytes -> ``(t, value, quality, used_arrival_time, problem)`` or :class:`MalformedPayload`.
+
+    ``payload = "number"``: the UTF-8 text of a decimal number (``"12.5"``, ``"-3e2"``;
+    Python's digit-group underscores are refused); the timestamp is the arrival time.
+    ``payload = "json"``: an object; ``value_path``, ``time_path``, ``quality_path`` are
+    dotted paths; time in ``time_unit`` (``s`` / ``ms`` since the epoch, ``iso``: ISO 8601
+    with a UTC offset); quality ``good`` / ``uncertain`` / ``bad`` or 0 / 1 / 2, missing
+    means good; without ``time_path`` the arrival time is used. A NaN or infinite value
+    comes back as a bad-quality sample with ``problem = "non-finite value"``.
+    """
+
+    def __init__(self, spec: MqttSettings) -> None:
+        self.json = spec.payload == "json"
+        self.max_payload = spec.max_payload
+        self.value_path = tuple(spec.value_path.split("."))
+        self.time_path = tuple(spec.time_path.split(".")) if spec.time_path else None
+        self.quality_path = tuple(spec.quality_path.split(".")) if spec.quality_path else None
+        self.time_unit = spec.time_unit
+        self.ms = spec.time_unit == "ms"
+
+    def decode(self, payload: bytes, arrival: float) -> tuple[float, float, int, bool, str | None]:
+        if len(payload) > self.max_payload:
+            raise MalformedPayload("payload too large")
+        try:
+            text = payload.decode("utf-8")
+        except UnicodeDecodeError:
+            raise MalformedPayload("not UTF-8") from None
+        if not self.json:
+            if "_" in text or not text.isascii():  # Python also reads "1_000" and non-ASCII digits
+                raise MalformedPayload("not a number")
+            try:
+                value = float(text)
+            except ValueError:
+                raise MalformedPayload("not a number") from None
+            return self._finish(arrival, value, 0, True)
+        try:
+            doc = json.loads(text)
+        except (ValueError, RecursionError):
+            raise MalformedPayload("not JSON") from None
+        if type(doc) is not dict:
+            raise MalformedPayload("not a JSON object")
+        raw = _get(doc, self.value_path)
+        if raw is _MISSING:
+            raise MalformedPayload("missing value")
+        if type(raw) is not float:
+            if type(raw) is not int:  # bool, str, list, object, null
+                raise MalformedPayload("wrong value type")
+            try:
+                raw = float(raw)
+            except OverflowError:  # an integer beyond the float range
+                raw = math.inf if raw > 0 else -math.inf
+        quality = 0
+        if self.quality_path is not None:
+            q = _get(doc, self.quality_path)
+            if q is not _MISSING:
+                quality = self._quality(q)
+        if self.time_path is None:
+            return self._finish(arrival, raw, quality, True)
+        traw = _get(doc, self.time_path)
+        if traw is _MISSING:
+            raise MalformedPayload("missing time")
+        return self._finish(self._time(traw), raw, quality, False)
+
+    @staticmethod
+    def _finish(t: float, value: float, quality: int, arrival: bool) -> tuple[float, float, int, bool, str | None]:
+        if value - value == 0.0:  # finite (NaN - NaN and inf - inf are NaN)
+            return t, value, quality, arrival, None
+        return t, value, _BAD, arrival, "non-finite value"
+
+    @staticmethod
+    def _quality(q: Any) -> int:
+        if isinstance(q, str):
+            code = QUALITY_CODES.get(q.strip().lower())
+            if code is not None:
+                return code
+        elif type(q) in (int, float) and q in (0, 1, 2):
+            return int(q)
+        raise MalformedPayload("bad quality")
+
+    def _time(self, raw: Any) -> float:
+        if self.time_unit == "iso":
+            if not isinstance(raw, str):
+                raise MalformedPayload("wrong time type")
+            try:
+                dt = datetime.fromisoformat(raw)
+            except ValueError:
+                raise MalformedPayload("bad time") from None
+            if dt.tzinfo is None or dt.utcoffset() is None:
+                raise MalformedPayload("time without offset")
+            try:
+                return dt.timestamp()
+            except (OverflowError, ValueError, OSError):
+                raise MalformedPayload("bad time") from None
+        if type(raw) is not float and type(raw) is not int:
+            raise MalformedPayload("wrong time type")
+        try:
+            t = float(raw)
+        except OverflowError:
+            raise MalformedPayload("non-finite time") from None
+        if self.ms:
+            t /= 1000.0
+        if t - t != 0.0:
+            raise MalformedPayload("non-finite time")
+        return t
