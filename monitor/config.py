@@ -3,8 +3,10 @@
 The schema is written with pydantic (https://docs.pydantic.dev): every table forbids
 unknown keys so a typo fails loudly; every quantity is a string with a unit
 (``"180 deg"``, ``"2 pli"``, ``"1000 fpm"``, ``"1.2 mil"``) turned into an SI float
-by :mod:`monitor.units`. Cross-references (a span naming a roller, a tag named by a
-roller) are checked by :mod:`monitor.line`, which builds the derived line.
+by :mod:`spanwatch.monitor.units`. The building blocks (quantity fields, strict tables, the
+error type) are in :mod:`spanwatch.monitor.schema`; the ``[sources.NAME]`` tables are registered in
+:mod:`spanwatch.monitor.sources`. Cross-references (a span naming a roller, a tag named by a
+roller) are checked by :mod:`spanwatch.monitor.line`, which builds the derived line.
 
 Every error is a :class:`ConfigError` that names the file, the key path, the value
 and what was expected; the CLI prints it and exits with status 2.
@@ -13,114 +15,39 @@ and what was expected; the CLI prints it and exits with status 2.
 from __future__ import annotations
 
 import math
-import re
 import tomllib
-from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import (
-    AfterValidator,
-    BaseModel,
-    BeforeValidator,
-    ConfigDict,
-    Field,
-    ValidationError,
-    model_validator,
-)
-from spanwatch.connectors.mqtt.settings import MqttSettings, TopicRule
-from spanwatch.connectors.mqtt.topics import check_rule
+from pydantic import AfterValidator, Field, ValidationError, model_validator
 from spanwatch.monitor import units as U
+from spanwatch.monitor.schema import (
+    ID_PATTERN,
+    Acceleration,
+    Angle,
+    ConfigError,
+    Duration,
+    Fraction,
+    Frequency,
+    Ident,
+    Modulus,
+    NonNegLength,
+    NonNegSpeed,
+    PosDuration,
+    PosLength,
+    PosNumber,
+    PosSpeed,
+    Priority,
+    Ratio,
+    Strict,
+    TagName,
+    Temperature,
+    Tension,
+    UnitName,
+)
+from spanwatch.monitor.sources import MqttSource, OpcUaSource, SimulatedSource, Source, TopicMap, mqtt_settings
 
-
-class ConfigError(Exception):
-    """Configuration problems, one per line: ``file: key.path: expected X, got Y``."""
-
-    def __init__(self, file: str | Path, key: str, message: str,
-                 more: list[tuple[str, str]] | None = None) -> None:
-        self.file = str(file)
-        self.problems = [(key, message), *(more or [])]
-        super().__init__("\n".join(self._line(k, m) for k, m in self.problems))
-
-    @property
-    def key(self) -> str:
-        return self.problems[0][0]
-
-    @property
-    def message(self) -> str:
-        return self.problems[0][1]
-
-    def _line(self, key: str, message: str) -> str:
-        return f"{self.file}: {key}: {message}" if key else f"{self.file}: {message}"
-
-
-# --- quantity fields ----------------------------------------------------------------
-
-
-def _quantity(kind: U.Kind, *, minimum: float | None = None, exclusive: bool = True,
-              maximum: float | None = None) -> Callable[[Any], float]:
-    def parse(value: Any) -> float:
-        si = U.to_si(value, kind)
-        if minimum is not None and (si <= minimum if exclusive else si < minimum):
-            word = "greater than" if exclusive else "at least"
-            raise ValueError(f"expected {kind.name} {word} {minimum:g} (SI), got {value!r}")
-        if maximum is not None and si > maximum:
-            raise ValueError(f"expected {kind.name} at most {maximum:g} (SI), got {value!r}")
-        return si
-
-    return parse
-
-
-def _positive_number(value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value <= 0:
-        raise ValueError(f"expected a positive number, got {value!r}")
-    return float(value)
-
-
-PosLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0))]
-NonNegLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0, exclusive=False))]
-PosSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0))]
-NonNegSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0, exclusive=False))]
-Angle = Annotated[float, BeforeValidator(_quantity(U.ANGLE, minimum=0.0, maximum=4 * math.pi))]
-Modulus = Annotated[float, BeforeValidator(_quantity(U.PRESSURE, minimum=0.0))]
-Tension = Annotated[float, BeforeValidator(_quantity(U.TENSION, minimum=0.0))]
-Duration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0, exclusive=False))]
-PosDuration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0))]
-Frequency = Annotated[float, BeforeValidator(_quantity(U.FREQUENCY, minimum=0.0))]
-Acceleration = Annotated[float, BeforeValidator(_quantity(U.ACCELERATION, minimum=0.0))]
-Temperature = Annotated[float, BeforeValidator(_quantity(U.TEMPERATURE, minimum=0.0))]
-Fraction = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS, minimum=0.0, exclusive=False,
-                                                      maximum=1.0))]
-Ratio = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS))]
-PosNumber = Annotated[float, BeforeValidator(_positive_number)]
-
-_ID = re.compile(r"^[A-Za-z][A-Za-z0-9_\-]*$")
-_TAG = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.\-/:]*$")
-
-
-def _ident(value: str) -> str:
-    if not _ID.match(value):
-        raise ValueError(f"expected a name of letters, digits, '_' or '-' starting with a letter, got {value!r}")
-    return value
-
-
-def _unit_name(value: str) -> str:
-    U.parse_unit(value)  # raises UnitError (a ValueError) with the expectation
-    if U.unit_kind(value) is None:
-        raise ValueError(f"expected a unit of force, tension, speed, length, rotation or time, got {value!r}")
-    return value
-
-
-Ident = Annotated[str, AfterValidator(_ident)]
-TagName = Annotated[str, Field(pattern=_TAG.pattern)]
-UnitName = Annotated[str, AfterValidator(_unit_name)]
-Priority = Literal["low", "medium", "high"]
-
-
-class Strict(BaseModel):
-    """Base of every table: unknown keys are errors, values are not coerced silently."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+__all__ = ["ConfigError", "MqttSource", "OpcUaSource", "SimulatedSource", "Source", "TopicMap", "mqtt_settings"]
 
 
 # --- the line -----------------------------------------------------------------------
@@ -286,109 +213,8 @@ class CheckSection(AlarmOverride):
     overrides: dict[Ident, AlarmOverride] = Field(default_factory=dict)
 
 
-def _secret(value: Any) -> str:
-    """A secret given as ``env:NAME``, ``file:/path`` or (discouraged) inline; resolved at connect time."""
-    if not isinstance(value, str) or not value:
-        raise ValueError("expected a secret such as \"env:SPANWATCH_PASSWORD\" or \"file:/etc/spanwatch/pw\"")
-    return value
 
 
-Secret = Annotated[str, AfterValidator(_secret)]
-
-
-class OpcUaSource(Strict):
-    """An OPC UA server; tags with ``source = NAME`` give their node id in ``address``."""
-
-    kind: Literal["opcua"]
-    endpoint: str = Field(pattern=r"^opc\.tcp://")
-    security_policy: Literal["None", "Basic256Sha256"] = "None"
-    security_mode: Literal["None", "Sign", "SignAndEncrypt"] = "None"
-    certificate: str | None = None
-    private_key: str | None = None
-    server_certificate: str | None = None
-    username: str | None = None
-    password: Secret | None = None
-    publishing_interval: PosDuration = 0.1
-    sampling_interval: Duration | None = None  # default: each tag's sample period
-    queue_size: int = Field(default=10, ge=1, le=100_000)
-    timeout: PosDuration = 4.0
-    watchdog_interval: PosDuration = 1.0
-    reconnect_min: PosDuration = 0.5
-    reconnect_max: PosDuration = 30.0
-
-    @model_validator(mode="after")
-    def _security(self) -> OpcUaSource:
-        if (self.security_policy == "None") != (self.security_mode == "None"):
-            raise ValueError("expected security_policy and security_mode both \"None\" or both set "
-                             f"(got {self.security_policy!r} and {self.security_mode!r})")
-        if self.security_policy != "None" and not (self.certificate and self.private_key):
-            raise ValueError("expected certificate and private_key files with a security policy")
-        return self
-
-
-class TopicMap(Strict):
-    """Map topics matching an MQTT filter to tag names: ``{1}``, ``{2}`` are the wildcard levels."""
-
-    pattern: str
-    tag: str
-
-    @model_validator(mode="after")
-    def _wildcards(self) -> TopicMap:
-        check_rule(self.pattern, self.tag)  # the MQTT filter rules, and placeholders only for its wildcard levels
-        return self
-
-
-class MqttSource(Strict):
-    """An MQTT broker; tags with ``source = NAME`` give their topic in ``address`` (or match ``topic_map``)."""
-
-    kind: Literal["mqtt"]
-    host: str = "127.0.0.1"
-    port: int = Field(default=1883, ge=1, le=65535)
-    client_id: str = "spanwatch"
-    tls: bool = False
-    ca_file: str | None = None
-    cert_file: str | None = None
-    key_file: str | None = None
-    username: str | None = None
-    password: Secret | None = None
-    protocol: Literal["5", "3.1.1"] = Field(
-        default="5", description="MQTT version; 3.1.1 decodes faster in paho but has no session expiry or "
-                                 "retain handling")
-    qos: int = Field(default=1, ge=0, le=2)
-    clean_start: bool = False
-    session_expiry: PosDuration = 3600.0
-    keepalive: PosDuration = 10.0
-    subscribe: list[str] = Field(default_factory=list)
-    topic_map: list[TopicMap] = Field(default_factory=list)
-    payload: Literal["number", "json"] = "number"
-    value_path: str = "value"
-    time_path: str | None = "time"
-    quality_path: str | None = "quality"
-    time_unit: Literal["s", "ms", "iso"] = "s"
-    max_payload: int = Field(default=65536, ge=16)
-    queue_size: int = Field(default=100_000, ge=100)
-    overflow: Literal["block", "drop_oldest"] = "block"
-    alarm_topic: str | None = None
-    active_topic: str | None = None
-    reconnect_min: PosDuration = 0.5
-    reconnect_max: PosDuration = 30.0
-
-
-def mqtt_settings(spec: MqttSource) -> MqttSettings:
-    """The MQTT adapter's plain parameters from a ``[sources.NAME]`` table with ``kind = "mqtt"`` (already SI)."""
-    fields = spec.model_dump(exclude={"kind", "topic_map"})
-    return MqttSettings(**fields, topic_map=tuple(TopicRule(tm.pattern, tm.tag) for tm in spec.topic_map))
-
-
-class SimulatedSource(Strict):
-    """The simulated line of a scenario file, in process (demo, tests)."""
-
-    kind: Literal["simulated"]
-    scenario: str
-    speedup: PosNumber = 1.0
-
-
-Source = Annotated[OpcUaSource | MqttSource | SimulatedSource, Field(discriminator="kind")]
 
 
 class DaemonSection(Strict):
@@ -430,7 +256,7 @@ def key_path(loc: tuple[int | str, ...]) -> str:
             out += f"[{part}]"
         else:
             text = str(part)
-            if not _ID.match(text):
+            if not ID_PATTERN.match(text):
                 text = f'"{text}"'
             out += f".{text}" if out else text
     return out

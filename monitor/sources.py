@@ -1,39 +1,147 @@
-"""Source kinds: how a ``[sources.NAME]`` table of the config becomes a live connector.
+"""Source kinds: the ``[sources.NAME]`` tables of the config, and how each becomes a live connector.
 
-One registration per kind in :data:`SOURCE_KINDS`: the function that builds the adapter from
-the config (turning the application's config objects into the adapter's plain parameters) and
-one line that says where the source is, for ``check-config``. The adapters themselves live in
-``connectors/`` and know nothing of the config; the config schema of each kind is in
-:mod:`spanwatch.monitor.config` (``Source``).
+One registration per kind in :data:`SOURCE_KINDS`: the schema of its config table, the
+function that builds the adapter from it (turning the application's config objects into the
+adapter's plain parameters), and one line that says where the source is, for
+``check-config``. The adapters themselves live in ``connectors/`` and know nothing of the
+config. The config's ``Source`` type is the union of the registered schemas.
 
 Adding a source kind: its adapter module in ``connectors/`` (a
-:class:`~spanwatch.connectors.live.LiveConnector`), its schema class in the ``Source`` union,
-and one :class:`SourceKind` entry here.
+:class:`~spanwatch.connectors.live.LiveConnector` taking plain parameters) and one
+:class:`SourceKind` entry here with its schema and builder.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import reduce
+from operator import or_
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
+from pydantic import Field, model_validator
+from spanwatch.monitor.schema import Duration, PosDuration, PosNumber, Secret, Strict
 from spanwatch.rules.samples import SampleBatch
 
 if TYPE_CHECKING:
     from spanwatch.connectors.live import LiveConnector
+    from spanwatch.connectors.mqtt.settings import MqttSettings
     from spanwatch.connectors.opcua import OpcUaSettings, OpcUaTag
-    from spanwatch.monitor.config import MqttSource, OpcUaSource, TagSection
+    from spanwatch.monitor.config import TagSection
     from spanwatch.monitor.line import Line
 
 Sink = Callable[[SampleBatch], None]
 
 
+# --- the config table of each kind ------------------------------------------------------------
+
+
+class OpcUaSource(Strict):
+    """An OPC UA server; tags with ``source = NAME`` give their node id in ``address``."""
+
+    kind: Literal["opcua"]
+    endpoint: str = Field(pattern=r"^opc\.tcp://")
+    security_policy: Literal["None", "Basic256Sha256"] = "None"
+    security_mode: Literal["None", "Sign", "SignAndEncrypt"] = "None"
+    certificate: str | None = None
+    private_key: str | None = None
+    server_certificate: str | None = None
+    username: str | None = None
+    password: Secret | None = None
+    publishing_interval: PosDuration = 0.1
+    sampling_interval: Duration | None = None  # default: each tag's sample period
+    queue_size: int = Field(default=10, ge=1, le=100_000)
+    timeout: PosDuration = 4.0
+    watchdog_interval: PosDuration = 1.0
+    reconnect_min: PosDuration = 0.5
+    reconnect_max: PosDuration = 30.0
+
+    @model_validator(mode="after")
+    def _security(self) -> OpcUaSource:
+        if (self.security_policy == "None") != (self.security_mode == "None"):
+            raise ValueError("expected security_policy and security_mode both \"None\" or both set "
+                             f"(got {self.security_policy!r} and {self.security_mode!r})")
+        if self.security_policy != "None" and not (self.certificate and self.private_key):
+            raise ValueError("expected certificate and private_key files with a security policy")
+        return self
+
+
+class TopicMap(Strict):
+    """Map topics matching an MQTT filter to tag names: ``{1}``, ``{2}`` are the wildcard levels."""
+
+    pattern: str
+    tag: str
+
+    @model_validator(mode="after")
+    def _wildcards(self) -> TopicMap:
+        from spanwatch.connectors.mqtt.topics import check_rule
+
+        check_rule(self.pattern, self.tag)  # the MQTT filter rules, and placeholders only for its wildcard levels
+        return self
+
+
+class MqttSource(Strict):
+    """An MQTT broker; tags with ``source = NAME`` give their topic in ``address`` (or match ``topic_map``)."""
+
+    kind: Literal["mqtt"]
+    host: str = "127.0.0.1"
+    port: int = Field(default=1883, ge=1, le=65535)
+    client_id: str = "spanwatch"
+    tls: bool = False
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    username: str | None = None
+    password: Secret | None = None
+    protocol: Literal["5", "3.1.1"] = Field(
+        default="5", description="MQTT version; 3.1.1 decodes faster in paho but has no session expiry or "
+                                 "retain handling")
+    qos: int = Field(default=1, ge=0, le=2)
+    clean_start: bool = False
+    session_expiry: PosDuration = 3600.0
+    keepalive: PosDuration = 10.0
+    subscribe: list[str] = Field(default_factory=list)
+    topic_map: list[TopicMap] = Field(default_factory=list)
+    payload: Literal["number", "json"] = "number"
+    value_path: str = "value"
+    time_path: str | None = "time"
+    quality_path: str | None = "quality"
+    time_unit: Literal["s", "ms", "iso"] = "s"
+    max_payload: int = Field(default=65536, ge=16)
+    queue_size: int = Field(default=100_000, ge=100)
+    overflow: Literal["block", "drop_oldest"] = "block"
+    alarm_topic: str | None = None
+    active_topic: str | None = None
+    reconnect_min: PosDuration = 0.5
+    reconnect_max: PosDuration = 30.0
+
+
+def mqtt_settings(spec: MqttSource) -> MqttSettings:
+    """The MQTT adapter's plain parameters from a ``[sources.NAME]`` table with ``kind = "mqtt"`` (already SI)."""
+    from spanwatch.connectors.mqtt.settings import MqttSettings, TopicRule
+
+    fields = spec.model_dump(exclude={"kind", "topic_map"})
+    return MqttSettings(**fields, topic_map=tuple(TopicRule(tm.pattern, tm.tag) for tm in spec.topic_map))
+
+
+class SimulatedSource(Strict):
+    """The simulated line of a scenario file, in process (demo, tests)."""
+
+    kind: Literal["simulated"]
+    scenario: str
+    speedup: PosNumber = 1.0
+
+
+# --- the registry ----------------------------------------------------------------------------
+
+
 @dataclass(frozen=True)
 class SourceKind:
-    """One kind of live source: build its connector, say where it is."""
+    """One kind of live source: its config table, how to build its connector, where it is (one line)."""
 
     kind: str
+    schema: type[Strict]
     connect: Callable[[str, Any, Line, Sink], LiveConnector]
     where: Callable[[Any], str]
 
@@ -66,7 +174,7 @@ def _mqtt(name: str, spec: MqttSource, line: Line, sink: Sink) -> LiveConnector:
     return MqttConnector(name, mqtt_settings(spec), tags, sink)
 
 
-def _simulated(name: str, spec: Any, line: Line, sink: Sink) -> LiveConnector:
+def _simulated(name: str, spec: SimulatedSource, line: Line, sink: Sink) -> LiveConnector:
     from spanwatch.monitor.simsource import SimulatedConnector
 
     scenario = Path(spec.scenario)
@@ -77,11 +185,14 @@ def _simulated(name: str, spec: Any, line: Line, sink: Sink) -> LiveConnector:
 
 SOURCE_KINDS: dict[str, SourceKind] = {
     k.kind: k for k in (
-        SourceKind("opcua", _opcua, lambda s: f"{s.endpoint} ({s.security_policy}/{s.security_mode})"),
-        SourceKind("mqtt", _mqtt, lambda s: f"{s.host}:{s.port} qos {s.qos}{' tls' if s.tls else ''}"),
-        SourceKind("simulated", _simulated, lambda s: f"scenario {s.scenario}"),
+        SourceKind("opcua", OpcUaSource, _opcua, lambda s: f"{s.endpoint} ({s.security_policy}/{s.security_mode})"),
+        SourceKind("mqtt", MqttSource, _mqtt, lambda s: f"{s.host}:{s.port} qos {s.qos}{' tls' if s.tls else ''}"),
+        SourceKind("simulated", SimulatedSource, _simulated, lambda s: f"scenario {s.scenario}"),
     )
 }
+
+# The config's [sources.NAME] table: one of the registered schemas, chosen by its ``kind``.
+Source = Annotated[reduce(or_, (k.schema for k in SOURCE_KINDS.values())), Field(discriminator="kind")]
 
 
 def build_connectors(line: Line, sink: Sink) -> list[LiveConnector]:

@@ -16,13 +16,33 @@ Modules, each named for what it holds:
 * ``publisher``: :class:`MqttAlarmPublisher`, alarms back to the broker.
 """
 
-from spanwatch.connectors.mqtt.client import MqttConnectionError
-from spanwatch.connectors.mqtt.payload import MalformedPayload, PayloadDecoder
-from spanwatch.connectors.mqtt.publisher import MqttAlarmPublisher, transition_message
-from spanwatch.connectors.mqtt.queue import SampleQueue
-from spanwatch.connectors.mqtt.settings import MqttSettings, TopicRule
-from spanwatch.connectors.mqtt.source import MqttConnector
-from spanwatch.connectors.mqtt.topics import TopicRouter, check_filter, match_filter
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+_WHERE = {
+    "MqttConnectionError": "client",
+    "MalformedPayload": "payload",
+    "PayloadDecoder": "payload",
+    "MqttAlarmPublisher": "publisher",
+    "transition_message": "publisher",
+    "SampleQueue": "queue",
+    "MqttSettings": "settings",
+    "TopicRule": "settings",
+    "MqttConnector": "source",
+    "TopicRouter": "topics",
+    "check_filter": "topics",
+    "match_filter": "topics",
+}
+
+
+def __getattr__(name: str) -> Any:
+    """Re-export on first use (PEP 562), so reading a config's MQTT settings does not import paho."""
+    if name in _WHERE:
+        return getattr(importlib.import_module(f"{__name__}.{_WHERE[name]}"), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 __all__ = [
     "MalformedPayload",

@@ -1,0 +1,117 @@
+"""Building blocks of the config schema: the error type, quantity fields with units, names, strict tables.
+
+Every quantity is a string with a unit (``"180 deg"``, ``"2 pli"``, ``"1000 fpm"``,
+``"1.2 mil"``) turned into an SI float by :mod:`spanwatch.monitor.units`; every table forbids
+unknown keys so a typo fails loudly (pydantic, https://docs.pydantic.dev).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Callable
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
+from spanwatch.monitor import units as U
+
+
+class ConfigError(Exception):
+    """Configuration problems, one per line: ``file: key.path: expected X, got Y``."""
+
+    def __init__(self, file: str | Path, key: str, message: str,
+                 more: list[tuple[str, str]] | None = None) -> None:
+        self.file = str(file)
+        self.problems = [(key, message), *(more or [])]
+        super().__init__("\n".join(self._line(k, m) for k, m in self.problems))
+
+    @property
+    def key(self) -> str:
+        return self.problems[0][0]
+
+    @property
+    def message(self) -> str:
+        return self.problems[0][1]
+
+    def _line(self, key: str, message: str) -> str:
+        return f"{self.file}: {key}: {message}" if key else f"{self.file}: {message}"
+
+
+# --- quantity fields ----------------------------------------------------------------
+
+
+def _quantity(kind: U.Kind, *, minimum: float | None = None, exclusive: bool = True,
+              maximum: float | None = None) -> Callable[[Any], float]:
+    def parse(value: Any) -> float:
+        si = U.to_si(value, kind)
+        if minimum is not None and (si <= minimum if exclusive else si < minimum):
+            word = "greater than" if exclusive else "at least"
+            raise ValueError(f"expected {kind.name} {word} {minimum:g} (SI), got {value!r}")
+        if maximum is not None and si > maximum:
+            raise ValueError(f"expected {kind.name} at most {maximum:g} (SI), got {value!r}")
+        return si
+
+    return parse
+
+
+def _positive_number(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value <= 0:
+        raise ValueError(f"expected a positive number, got {value!r}")
+    return float(value)
+
+
+PosLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0))]
+NonNegLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0, exclusive=False))]
+PosSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0))]
+NonNegSpeed = Annotated[float, BeforeValidator(_quantity(U.SPEED, minimum=0.0, exclusive=False))]
+Angle = Annotated[float, BeforeValidator(_quantity(U.ANGLE, minimum=0.0, maximum=4 * math.pi))]
+Modulus = Annotated[float, BeforeValidator(_quantity(U.PRESSURE, minimum=0.0))]
+Tension = Annotated[float, BeforeValidator(_quantity(U.TENSION, minimum=0.0))]
+Duration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0, exclusive=False))]
+PosDuration = Annotated[float, BeforeValidator(_quantity(U.TIME, minimum=0.0))]
+Frequency = Annotated[float, BeforeValidator(_quantity(U.FREQUENCY, minimum=0.0))]
+Acceleration = Annotated[float, BeforeValidator(_quantity(U.ACCELERATION, minimum=0.0))]
+Temperature = Annotated[float, BeforeValidator(_quantity(U.TEMPERATURE, minimum=0.0))]
+Fraction = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS, minimum=0.0, exclusive=False,
+                                                      maximum=1.0))]
+Ratio = Annotated[float, BeforeValidator(_quantity(U.DIMENSIONLESS))]
+PosNumber = Annotated[float, BeforeValidator(_positive_number)]
+
+ID_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_\-]*$")
+_TAG = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.\-/:]*$")
+
+
+def _ident(value: str) -> str:
+    if not ID_PATTERN.match(value):
+        raise ValueError(f"expected a name of letters, digits, '_' or '-' starting with a letter, got {value!r}")
+    return value
+
+
+def _unit_name(value: str) -> str:
+    U.parse_unit(value)  # raises UnitError (a ValueError) with the expectation
+    if U.unit_kind(value) is None:
+        raise ValueError(f"expected a unit of force, tension, speed, length, rotation or time, got {value!r}")
+    return value
+
+
+Ident = Annotated[str, AfterValidator(_ident)]
+TagName = Annotated[str, Field(pattern=_TAG.pattern)]
+UnitName = Annotated[str, AfterValidator(_unit_name)]
+Priority = Literal["low", "medium", "high"]
+
+
+class Strict(BaseModel):
+    """Base of every table: unknown keys are errors, values are not coerced silently."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+def _secret(value: Any) -> str:
+    """A secret given as ``env:NAME``, ``file:/path`` or (discouraged) inline; resolved at connect time."""
+    if not isinstance(value, str) or not value:
+        raise ValueError("expected a secret such as \"env:SPANWATCH_PASSWORD\" or \"file:/etc/spanwatch/pw\"")
+    return value
+
+
+Secret = Annotated[str, AfterValidator(_secret)]
