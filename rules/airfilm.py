@@ -2,6 +2,11 @@
 
 Pure functions, SI in and out, vectorised over numpy arrays. Used by the traction
 check and by the derived-line report (capacity at top speed).
+
+Sources: Knox & Sweeney (1971), Ind. Eng. Chem. Process Des. Dev. 10(2):201-205, for the
+film height; Ducotey & Good (1999), "Predicting traction in web handling", ASME J.
+Tribology 121:618-624, for the loss of traction against roughness; Sutherland's law for
+the air viscosity, checked against Lemmon & Jacobsen (2004).
 """
 
 from __future__ import annotations
@@ -26,8 +31,11 @@ def air_viscosity(temperature: ArrayLike) -> np.ndarray:
     T0 = 273.15 K, S = 110.4 K. Good to about 1 % from 250 K to 400 K, which covers
     any converting hall; pressure dependence is negligible near 1 atm.
 
-    Source: Sutherland (1893); constants from F. M. White, *Viscous Fluid Flow*.
-    Checked in the tests against CoolProp's Lemmon & Jacobsen (2004) correlation.
+    Source: W. Sutherland, Phil. Mag. 36:507-531, 1893 (from memory); constants from
+    F. M. White, *Viscous Fluid Flow*, 3rd ed., McGraw-Hill 2006, Table 1-2 (table number
+    from memory). Checked in the tests against CoolProp's implementation of E. W. Lemmon and
+    R. T. Jacobsen, "Viscosity and thermal conductivity equations for nitrogen, oxygen,
+    argon, and air", Int. J. Thermophys. 25(1):21-69, 2004.
 
     >>> round(float(air_viscosity(293.15)) * 1e5, 3)
     1.813
@@ -44,6 +52,10 @@ def entrainment_speed(web_speed: ArrayLike, roller_speed: ArrayLike, convention:
     ``"mean"``: U = (V_web + V_roller) / 2, for use with 12 * eta * U (Knox & Sweeney).
     ``"sum"``: U = V_web + V_roller, for authors who write 12 * eta * (V1 + V2); it gives
     a film 2**(2/3) = 1.59 times thicker. Speeds are magnitudes (m/s).
+
+    Source: the mean is the Couette term of Reynolds' lubrication equation for two surfaces
+    moving at V1 and V2 (flow per width q = (V1 + V2) / 2 * h - h^3 p' / (12 eta)), the form
+    Knox & Sweeney's 12 * eta * U belongs to; that the "sum" form circulates is from memory.
     """
     vw = np.abs(np.asarray(web_speed, dtype=float))
     vr = np.abs(np.asarray(roller_speed, dtype=float))
@@ -71,7 +83,8 @@ def knox_sweeney_h0(radius: ArrayLike, tension_per_width: ArrayLike, speed: Arra
 
     Source: J. R. Knox and T. L. Sweeney, "Fluid effects associated with web handling",
     Ind. Eng. Chem. Process Des. Dev. 10(2):201-205, 1971; the same constant appears in
-    Eshel & Elrod's foil-bearing solution written as 0.643 R (6 eta (V1 + V2) / T)^(2/3).
+    Eshel & Elrod's foil-bearing solution written as 0.643 R (6 eta (V1 + V2) / T)^(2/3)
+    (A. Eshel and H. G. Elrod, ASME J. Basic Eng. 87(4):831-836, 1965; from memory).
 
     Returns NaN where tension is not positive or an input is not finite; 0 at zero speed.
 
@@ -91,7 +104,8 @@ def knox_sweeney_h0(radius: ArrayLike, tension_per_width: ArrayLike, speed: Arra
 def combined_roughness(rq_web: ArrayLike, rq_roller: ArrayLike) -> np.ndarray:
     """Combined rms roughness of the two surfaces, sigma = sqrt(Rq_web**2 + Rq_roller**2), m.
 
-    Source: Ducotey & Good (1999), ASME J. Tribology 121:618-624, compare h0 with this.
+    Source: K. S. Ducotey and J. K. Good, "Predicting traction in web handling", ASME J.
+    Tribology 121:618-624, 1999, who compare h0 with this.
     """
     with np.errstate(over="ignore"):
         return np.hypot(np.asarray(rq_web, dtype=float), np.asarray(rq_roller, dtype=float))
@@ -134,6 +148,9 @@ def effective_cof(mu: ArrayLike, radius: ArrayLike, tension_per_width: ArrayLike
     h = film_factor * h0 (film_factor < 1 for grooved or perforated rollers and permeable
     webs, which vent air; 1 for a smooth roller and an impermeable web).
     mu_eff = mu * traction_derating(h, sigma).
+
+    Source: :func:`knox_sweeney_h0` and :func:`traction_derating`; the film factor as a
+    single venting multiplier is common practice, no source.
     """
     u = entrainment_speed(web_speed, roller_speed, convention)
     with np.errstate(all="ignore"):

@@ -16,6 +16,10 @@ small state machine, evaluated over whole blocks of frames with numpy:
 The result is a list of :class:`Transition` (raise / clear) with the frame time,
 value, limit, priority and line state. Acknowledge, shelve and the rest of the
 ISA-18.2 lifecycle build on these transitions.
+
+Sources: ANSI/ISA-18.2-2016, *Management of Alarm Systems for the Process Industries*;
+IEC 62682:2014; EEMUA 191, 3rd ed. (2013). The tools above are named as these documents
+name them; their exact clauses were not checked (from memory).
 """
 
 from __future__ import annotations

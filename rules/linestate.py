@@ -13,6 +13,9 @@ accelerates, a traction margin nothing while it stands still. Classification:
 dv/dt is the difference of two adjacent rolling means of v, each half of
 ``accel_window`` long, divided by half the window: a smoothed derivative whose
 noise falls with the square root of the window.
+
+The classes and their thresholds are common practice, no source; the thresholds are
+configuration.
 """
 
 from __future__ import annotations

@@ -2,9 +2,11 @@
 
 A roll that is not round, or a roller mounted off-centre, pulls the web a little
 more and a little less once per turn, so span tension oscillates at the rotation
-frequency ``f1 = V / (pi D)`` (Branca, Pagilla & Reid, ASME J. Dyn. Sys. Meas.
-Control, 2013). On an unwind f1 rises as the roll gets smaller, so a fixed-frequency
-filter misses it; this module measures the amplitude on the roll's own angle.
+frequency ``f1 = V / (pi D)`` (C. Branca, P. R. Pagilla and K. N. Reid, "Governing
+equations for web tension and web velocity in the presence of nonideal rollers", ASME
+J. Dyn. Sys. Meas. Control 135(1), 2013; title and volume from memory). On an unwind
+f1 rises as the roll gets smaller, so a fixed-frequency filter misses it; this module
+measures the amplitude on the roll's own angle.
 """
 
 from __future__ import annotations
@@ -19,7 +21,10 @@ from spanwatch.rules.linemodel import LineModel
 
 
 def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:
-    """Revolutions per second of a roll or roller: ``f1 = V / (pi D)``; NaN where D <= 0."""
+    """Revolutions per second of a roll or roller: ``f1 = V / (pi D)``; NaN where D <= 0.
+
+    Source: kinematics of rolling without slip (one circumference of web per turn).
+    """
     v, d = np.asarray(speed, dtype=float), np.asarray(diameter, dtype=float)
     with np.errstate(all="ignore"):
         f = np.abs(v) / (np.pi * d)
@@ -53,6 +58,10 @@ def goertzel(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
 def sinusoid_amplitude(x: ArrayLike, freq: float, fs: float) -> np.ndarray:
     """Amplitude of the component of ``x`` at ``freq``: ``2 |X| / N`` (mean removed first).
 
+    Exact for a sinusoid with whole cycles in the window: the DFT of A cos(w n + phi) has
+    magnitude A N / 2 at its bin (e.g. Oppenheim & Schafer, *Discrete-Time Signal
+    Processing*, on the DFT of sinusoids).
+
     >>> n = np.arange(200); round(float(sinusoid_amplitude(3 + 0.5 * np.sin(2 * np.pi * 5 * n / 100), 5, 100)), 6)
     0.5
     """
@@ -68,6 +77,10 @@ def order_amplitude(x: ArrayLike, phase: ArrayLike) -> float:
     Computed order tracking without resampling: ``A = 2 |sum (x - mean) e^{-j phase}| / N``
     over a window of whole revolutions. Exact for a uniform angle grid; for slowly varying
     speed the angle grid is nearly uniform and the error is second order.
+
+    Source: computed order tracking (K. R. Fyfe and E. D. S. Munck, "Analysis of computed
+    order tracking", Mech. Syst. Signal Process. 11(2):187-205, 1997; from memory), here
+    evaluated on the sampled angles instead of resampling onto a uniform angle grid.
     """
     x = np.asarray(x, dtype=float)
     p = np.asarray(phase, dtype=float)

@@ -21,7 +21,8 @@ def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:
     """Surface speed of a roller or roll, m/s: ``V = pi * D * n`` (n in rev/s).
 
     Assumes the web rides on the outer surface with no creep (thin web, no strain
-    gradient through the thickness).
+    gradient through the thickness). Source: kinematics of rolling without slip (one
+    circumference of web per turn).
 
     >>> round(float(surface_speed(1.0, 0.1)), 4)
     0.3142
@@ -35,7 +36,8 @@ def slip_ratio(v_roller: ArrayLike, v_web: ArrayLike, draw: ArrayLike = 0.0, min
 
     ``draw`` is the roller's commanded speed offset relative to the web-speed reference
     (0.002 for +0.2 %). Positive s: the roller surface runs ahead of the web. NaN where
-    |V_web| <= min_speed or an input (or the expected speed) is not finite.
+    |V_web| <= min_speed or an input (or the expected speed) is not finite. A definition
+    (common practice, no source).
 
     >>> round(float(slip_ratio(1.02, 1.0)), 4)
     0.02

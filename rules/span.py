@@ -2,6 +2,9 @@
 
 Tensions here are per unit width (N/m) and the web stiffness is ``Et = E * caliper``
 (N/m), the per-width form of E*A.
+
+Sources: Whitworth & Harrison (1983); Shin, *Tension Control* (TAPPI Press, 2000);
+Pagilla, Siraskar & Dwivedula, IEEE Trans. Control Syst. Technol. 15(1), 2007.
 """
 
 from __future__ import annotations
@@ -37,8 +40,8 @@ def span_tension_rate(t2: ArrayLike, t1: ArrayLike, v1: ArrayLike, v2: ArrayLike
 def steady_span_tension(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike) -> np.ndarray:
     """Steady-state downstream tension from the draw: ``T2 = (Et (V2 - V1) + V1 T1) / V2``.
 
-    The fixed point of :func:`span_tension_rate`; it is reached with a time constant of
-    about L / V. NaN where V2 <= 0 or an input is not finite.
+    The fixed point of :func:`span_tension_rate` (same sources and assumptions); it is
+    reached with a time constant of about L / V. NaN where V2 <= 0 or an input is not finite.
 
     >>> round(float(steady_span_tension(100.0, 1.0, 1.001, 66000.0)), 2)
     165.83
@@ -53,7 +56,8 @@ def steady_span_tension(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLi
 def draw_for_tension(t1: ArrayLike, t2: ArrayLike, et: ArrayLike) -> np.ndarray:
     """Speed ratio V2 / V1 that makes the steady span tension T2 from T1: ``(Et - T1) / (Et - T2)``.
 
-    The inverse of :func:`steady_span_tension` (used by the simulator to set draws).
+    The inverse of :func:`steady_span_tension` (used by the simulator to set draws); same
+    sources and assumptions.
 
     >>> round(float(draw_for_tension(100.0, 165.83, 66000.0)), 6)
     1.001
@@ -69,6 +73,11 @@ def draw_band(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike, *, mod
 
     Terms: modulus uncertainty ``modulus_tol * Et (V2 - V1) / V2``; encoder ratio
     uncertainty ``Et * ratio_tol``; the two load-cell accuracies (T1 scaled by V1 / V2).
+
+    Source: the law of propagation of uncertainty for uncorrelated inputs (JCGM 100:2008,
+    the GUM, eq. 10) applied to :func:`steady_span_tension`, with the ratio term's
+    sensitivity (Et - T1) V1^2 / V2^2 taken as Et (T1 << Et, small draw). Which error
+    sources are counted is common practice, no source.
     """
     v1, v2, et = np.asarray(v1, dtype=float), np.asarray(v2, dtype=float), np.asarray(et, dtype=float)
     with np.errstate(all="ignore"):

@@ -11,6 +11,10 @@ so the share of its capacity that the measured tensions demand is the utilisatio
 
 and the check reports ``u * SF``: the share of the *safe* capacity used (1.0 means
 the margin has shrunk to exactly the configured safety factor SF).
+
+Sources: the Euler–Eytelwein belt-friction (capstan) equation; ASTM G143, "Standard
+Test Method for Measurement of Web/Roller Friction Characteristics", measures the COF
+with the same relation. The safety factor on the capacity is common practice, no source.
 """
 
 from __future__ import annotations
@@ -43,7 +47,8 @@ def capstan_ratio_limit(mu: ArrayLike, wrap: ArrayLike) -> np.ndarray:
     film, no inertia or centrifugal terms. Only the ratio matters, so tensions may be
     N or N/m.
 
-    Source: Euler (1762) / Eytelwein belt-friction equation; ASTM G143 measures web/roller
+    Source: Euler (1762) / Eytelwein belt-friction equation; ASTM G143, "Standard Test
+    Method for Measurement of Web/Roller Friction Characteristics", measures web/roller
     COF with this relation.
 
     >>> round(float(capstan_ratio_limit(0.3, np.pi)), 3)

@@ -51,7 +51,7 @@ def wound_length(diameter: ArrayLike, core_diameter: ArrayLike, caliper: ArrayLi
 def wound_diameter(length: ArrayLike, core_diameter: ArrayLike, caliper: ArrayLike) -> np.ndarray:
     """Diameter of a rewind after winding ``length``: ``D = sqrt(Dc^2 + 4 L t / pi)``.
 
-    Inverse of :func:`wound_length`. NaN where the argument of the root is negative.
+    Inverse of :func:`wound_length` (same source). NaN where the argument of the root is negative.
     """
     with np.errstate(all="ignore"):
         arg = np.asarray(core_diameter, dtype=float) ** 2 + 4.0 * np.asarray(length, dtype=float) * \
@@ -62,7 +62,8 @@ def wound_diameter(length: ArrayLike, core_diameter: ArrayLike, caliper: ArrayLi
 def unwound_diameter(length: ArrayLike, start_diameter: ArrayLike, caliper: ArrayLike) -> np.ndarray:
     """Diameter of an unwind after paying out ``length``: ``D = sqrt(D0^2 - 4 L t / pi)``.
 
-    NaN once more web is asked for than the roll held (argument below zero).
+    NaN once more web is asked for than the roll held (argument below zero). Same source as
+    :func:`wound_length`.
     """
     return wound_diameter(-np.asarray(length, dtype=float), start_diameter, caliper)
 
@@ -71,7 +72,8 @@ def diameter_from_speed(web_speed: ArrayLike, rev_per_s: ArrayLike) -> np.ndarra
     """Roll diameter from surface speed and rotation: ``D = V / (pi n)``, n in rev/s.
 
     NaN where n is zero or not finite (a stopped roll tells nothing about its size), or
-    where the result is not finite.
+    where the result is not finite. Source: kinematics of rolling without slip (the roll
+    takes up one circumference of web per turn).
     """
     v, n = np.asarray(web_speed, dtype=float), np.asarray(rev_per_s, dtype=float)
     with np.errstate(all="ignore"):
@@ -83,7 +85,8 @@ def effective_caliper(diameter: ArrayLike, start_diameter: ArrayLike, length: Ar
     """Effective stack caliper from two diameters and the length between them, m.
 
     ``t = pi |D^2 - D0^2| / (4 L)``: the secant form of :func:`wound_length`, valid for
-    a rewind (D grows) and an unwind (D shrinks). NaN where L <= 0.
+    a rewind (D grows) and an unwind (D shrinks). NaN where L <= 0. Same source as
+    :func:`wound_length`.
     """
     d, d0, ln = (np.asarray(x, dtype=float) for x in (diameter, start_diameter, length))
     with np.errstate(all="ignore"):
@@ -118,8 +121,10 @@ def taper_tension(diameter: ArrayLike, t0: ArrayLike, k: ArrayLike, core_diamete
 def wound_on_tension(web_tension: ArrayLike, nip_load: ArrayLike, mu_k: ArrayLike) -> np.ndarray:
     """Wound-on tension with a nip, per unit width: ``WOT = T_w + mu_k N``.
 
-    Centre winding, undriven nip, moderate nip loads. Source: Pfeiffer (1968); Good, Wu &
-    Fikes, "The internal stresses in wound rolls with the presence of a nip roller" (1994).
+    Centre winding, undriven nip, moderate nip loads. Sources: J. D. Pfeiffer, "Mechanics
+    of a rolling nip on paper webs", Tappi 51(8), 1968; J. K. Good, Z. Wu and M. W. R.
+    Fikes, "The internal stresses in wound rolls with the presence of a nip roller", ASME
+    J. Appl. Mech. 61(1):182-185, 1994 (titles and volumes from memory).
     """
     with np.errstate(all="ignore"):
         return np.asarray(web_tension, dtype=float) + np.asarray(mu_k, dtype=float) * np.asarray(nip_load, dtype=float)

@@ -1,13 +1,16 @@
-"""Alarm handling (monitor/alarms.py AlarmEngine) with hand-built alarm points and check results.
+"""Alarm handling (spanwatch.rules.alarms AlarmEngine) with hand-built alarm points and check results.
 
-The expected behaviour follows the ISA-18.2 / IEC 62682 nuisance-alarm tools as summarised in
-/work/shared/reference/alarm-management.md ("Nuisance-alarm tools"; the summary is from memory of the
-standards, which are not freely readable):
+The expected behaviour follows the nuisance-alarm tools of ANSI/ISA-18.2-2016 (Management of Alarm Systems
+for the Process Industries), IEC 62682:2014 (its international counterpart) and EEMUA 191, 3rd edition
+(2013). The standards are not freely readable: the statements below are from memory, and their clause
+numbers were not checked.
 - deadband: the alarm clears only once the value is back past the limit by the deadband;
 - on-delay: the condition must hold for the delay before the alarm is raised;
 - off-delay: the condition must stay clear for the delay before the alarm clears;
-- suppression by design: logic keyed to process state (line stopped, threading, roll change);
-- chattering: 3 or more raise/clear cycles within 60 s (performance table in the same file).
+- suppression by design (designed suppression): logic keyed to process state (line stopped, threading,
+  roll change);
+- chattering: 3 or more raise/clear cycles within 60 s (the alarm-performance metrics of ISA-18.2 and
+  EEMUA 191).
 """
 
 from __future__ import annotations
@@ -93,7 +96,7 @@ def test_just_below_the_limit_never_raises():
 
 
 def test_deadband_clears_only_below_limit_minus_deadband():
-    # ISA-18.2 / IEC 62682 deadband (alarm-management.md): clears only once back past the limit by the deadband.
+    # ISA-18.2 / IEC 62682 deadband (from memory): clears only once back past the limit by the deadband.
     # limit 1.0, deadband 0.25: clear threshold 0.75 (exact in binary); at 0.75 itself the alarm stays.
     p = point(limit=1.0, deadband=0.25)
     values = steps((0.5, 1), (1.2, 1), (0.9, 1), (0.76, 1), (0.75, 1), (0.74, 1))
@@ -127,7 +130,7 @@ def test_deadband_abs_direction_both_signs():
 
 
 def test_on_delay_short_condition_raises_nothing():
-    # on-delay (alarm-management.md): the condition must hold for the delay before the alarm is raised
+    # on-delay (ISA-18.2 / IEC 62682, from memory): the condition must hold for the delay before the alarm is raised
     p = point(on_delay=2.0)
     assert run(p, steps((0.0, 1), (2.0, 1.9), (0.0, 3), (2.0, 1.5), (0.0, 3))) == []
 
@@ -140,7 +143,7 @@ def test_on_delay_long_condition_raises_at_start_plus_delay():
 
 
 def test_off_delay_short_dip_does_not_clear():
-    # off-delay (alarm-management.md): the condition must stay clear for the delay before the alarm clears
+    # off-delay (ISA-18.2 / IEC 62682, from memory): the condition must stay clear for the delay before it clears
     p = point(off_delay=3.0)
     trs = run(p, steps((2.0, 1), (0.0, 2.5), (2.0, 1), (0.0, 2.9), (2.0, 1)))
     assert events(trs) == [("raise", 0.0)]
@@ -167,7 +170,7 @@ def test_on_and_off_delay_with_deadband_together():
 
 
 def test_invalid_frames_hold_an_active_alarm():
-    # "a lost input neither raises nor clears an alarm" (module docstring of monitor/alarms.py)
+    # "a lost input neither raises nor clears an alarm" (module docstring of spanwatch.rules.alarms)
     p = point()
     n = 100
     values = np.r_[np.full(10, 2.0), np.full(80, 0.0), np.full(10, 0.0)]
@@ -210,7 +213,7 @@ def test_no_raise_when_first_valid_frame_is_normal():
 
 
 def test_line_state_resets_and_clears():
-    # suppression by design (alarm-management.md): a LINE_STATE-gated frame resets the condition
+    # designed suppression (ISA-18.2 / IEC 62682, from memory): a LINE_STATE-gated frame resets the condition
     p = point(off_delay=1.0)
     values = steps((2.0, 1), (0.0, 3))
     reasons = np.r_[np.zeros(10), np.full(30, Reason.LINE_STATE)]
@@ -284,7 +287,7 @@ def test_peak_ignores_values_before_the_raise():
 
 
 def _chattering(trs: list[Transition]) -> bool:
-    """3 or more raise/clear cycles within 60 s (alarm-management.md, performance table; from memory)."""
+    """3 or more raise/clear cycles within 60 s (ISA-18.2-2016 and EEMUA 191 performance metrics; from memory)."""
     raises = [tr.t for tr in trs if tr.event == "raise"]
     return any(raises[i + 2] - raises[i] <= 60.0 for i in range(len(raises) - 2))
 

@@ -1,7 +1,8 @@
 """Once-per-revolution detection (rules/runout.py), and every streaming check on hostile blocks.
 
 Goertzel is checked against numpy.fft and a directly evaluated DFT sum; roll angles come from an
-independent closed form for an unwinding roll (each turn takes 2 t off the diameter).
+independent closed form for an unwinding roll (each turn takes 2 t off the diameter), which also
+gives, differentiated numerically, the reference turn rate for rotation_frequency.
 """
 
 from __future__ import annotations
@@ -10,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from hostile import ANY_FLOAT, N_FUZZ, SPECIAL, any_array, special_grid
+from hostile import ANY_FLOAT, N_FUZZ, SPECIAL, any_array, no_runtime_warning, special_grid
 from hypothesis import given, settings
 from spanwatch.monitor.checkset import build_checks
 from spanwatch.monitor.line import load_line
@@ -101,11 +102,23 @@ def test_order_amplitude_recovers_once_per_rev_on_slowly_varying_speed(phase0):
     assert order_amplitude(x[keep], theta[keep]) == pytest.approx(4.0, rel=0.02)
 
 
-def test_rotation_frequency():
-    # Independent: turns per second = web speed / circumference (pi D).
-    assert float(rotation_frequency(5.0, 0.5)) == pytest.approx(5.0 / (np.pi * 0.5), rel=1e-12)
-    assert float(rotation_frequency(-5.0, 0.5)) == pytest.approx(5.0 / (np.pi * 0.5), rel=1e-12)
-    assert np.all(np.isnan(rotation_frequency(5.0, [0.0, -0.5, np.nan])))
+@pytest.mark.parametrize(("speed", "caliper", "d0"), [(5.0, 1e-3, 0.8), (3.0, 2e-3, 0.4), (12.0, 25.4e-6, 1.2)])
+def test_rotation_frequency_matches_wrap_counting_angle(speed, caliper, d0):
+    # Independent: the roll angle of an unwind from counting wraps (unwind_angle above: annulus area gives D(t),
+    # each turn takes 2 t off the diameter), differentiated numerically (numpy.gradient, second order), is the
+    # turn rate the code must give from web speed and the diameter at that instant.
+    t_half = np.pi * (d0**2 - (d0 / 2) ** 2) / (4 * speed * caliper)  # until the roll is down to half its diameter
+    t = np.linspace(0.0, min(t_half, 60.0), 30_001)
+    theta, d = unwind_angle(t, d0, caliper, speed)
+    turns_per_s = np.gradient(theta, t, edge_order=2) / (2 * np.pi)
+    np.testing.assert_allclose(rotation_frequency(speed, d), turns_per_s, rtol=1e-7)
+    # Running backwards turns the roll just as fast.
+    np.testing.assert_allclose(rotation_frequency(-speed, d), turns_per_s, rtol=1e-7)
+
+
+def test_rotation_frequency_undefined_without_a_diameter():
+    with no_runtime_warning():
+        assert np.all(np.isnan(rotation_frequency(5.0, [0.0, -0.5, np.nan])))
 
 
 # --- the streaming RunoutCheck --------------------------------------------------------------
@@ -283,7 +296,8 @@ def test_check_on_block_full_of_hostile_values(example_line, good_run, cid, kind
     t = t_good[-1] + (1 + np.arange(N_BAD)) / FS
     sig = {k: hostile_values(kind, v) for k, v in good_signals(example_line, t).items()}
     block = make_block(example_line, t, sig)
-    res = check.update(block)  # must not raise (nor warn: RuntimeWarnings in rules/ are errors here)
+    with no_runtime_warning():  # must neither raise nor warn
+        res = check.update(block)
     assert_well_formed(res, N_BAD)
     non_finite = kind in ("nan", "inf", "-inf")
     if check.kind.startswith("tag_"):
@@ -322,7 +336,8 @@ def test_check_invalid_when_one_declared_input_is_non_finite(example_line, good_
         t = t_good[-1] + (1 + np.arange(N_BAD)) / FS
         sig = good_signals(example_line, t)
         sig[name] = np.full(N_BAD, np.nan if kind == "nan" else np.inf)
-        res = check.update(make_block(example_line, t, sig))
+        with no_runtime_warning():
+            res = check.update(make_block(example_line, t, sig))
         assert_well_formed(res, N_BAD)
         if res.valid.any():
             failures.append(f"{name}: {int(res.valid.sum())} valid frames, e.g. {res.value[res.valid][:2]}")
@@ -333,39 +348,44 @@ def test_check_invalid_when_one_declared_input_is_non_finite(example_line, good_
 
 
 def test_runout_pure_functions_special_value_grid():
-    v, d = special_grid(2, seed=3)
-    assert rotation_frequency(v, d).shape == v.shape
-    x = special_grid(1, rows=64, seed=3)[0]
-    for freq in SPECIAL:
-        for fs in SPECIAL:
-            assert np.shape(goertzel(x, freq, fs)) == ()
-            assert np.shape(goertzel(np.vstack([x, x]), freq, fs)) == (2,)
-            assert np.shape(sinusoid_amplitude(x, freq, fs)) == ()
-    for _ in range(50):
-        xs, ps = special_grid(2, rows=9, seed=_)
-        assert isinstance(order_amplitude(xs, ps), float)
+    with no_runtime_warning():
+        v, d = special_grid(2, seed=3)
+        assert rotation_frequency(v, d).shape == v.shape
+        x = special_grid(1, rows=64, seed=3)[0]
+        for freq in SPECIAL:
+            for fs in SPECIAL:
+                assert np.shape(goertzel(x, freq, fs)) == ()
+                assert np.shape(goertzel(np.vstack([x, x]), freq, fs)) == (2,)
+                assert np.shape(sinusoid_amplitude(x, freq, fs)) == ()
+        for _ in range(50):
+            xs, ps = special_grid(2, rows=9, seed=_)
+            assert isinstance(order_amplitude(xs, ps), float)
 
 
 @settings(max_examples=80, deadline=None)
 @given(v=any_array(), d=any_array(), x=any_array(16), p=any_array(16), freq=ANY_FLOAT, fs=ANY_FLOAT)
 def test_runout_pure_functions_any_float(v, d, x, p, freq, fs):
-    f = rotation_frequency(v, d)
+    with no_runtime_warning():
+        f = rotation_frequency(v, d)
+        g = goertzel(x, freq, fs)
+        amp = sinusoid_amplitude(x, freq, fs)
+        oa = order_amplitude(x, p)
     assert f.shape == (N_FUZZ,)
     assert np.all(np.isnan(f) | (f >= 0))
-    assert np.shape(goertzel(x, freq, fs)) == ()
-    amp = sinusoid_amplitude(x, freq, fs)
+    assert np.shape(g) == ()
     assert np.shape(amp) == () and (np.isnan(amp) or amp >= 0)
-    assert isinstance(order_amplitude(x, p), float)
+    assert isinstance(oa, float)
 
 
 @settings(max_examples=80, deadline=None)
 @given(x=any_array(), a=any_array(), lo=ANY_FLOAT, hi=ANY_FLOAT, stop=ANY_FLOAT, thread=ANY_FLOAT, acc=ANY_FLOAT)
 def test_other_rules_pure_functions_any_float(x, a, lo, hi, stop, thread, acc):
     # plausibility.out_of_range, linestate.classify_line_state and base.finalise
-    oor = out_of_range(x, lo, hi)
+    with no_runtime_warning():
+        oor = out_of_range(x, lo, hi)
+        state = classify_line_state(x, a, stop_speed=stop, thread_speed=thread, accel_threshold=acc)
+        res = finalise(x, np.zeros(N_FUZZ, dtype=np.int8))
     assert oor.shape == (N_FUZZ,) and oor[~np.isfinite(x)].all()
-    state = classify_line_state(x, a, stop_speed=stop, thread_speed=thread, accel_threshold=acc)
     assert state.shape == (N_FUZZ,)
     assert (state[~np.isfinite(x)] == int(LineState.UNKNOWN)).all()
-    res = finalise(x, np.zeros(N_FUZZ, dtype=np.int8))
     assert np.all(np.isfinite(res.value[res.valid])) and np.all(np.isnan(res.value[~res.valid]))

@@ -21,14 +21,14 @@ EXACT = 1e-15
 
 
 def test_pli_in_newtons_per_metre():
-    # physics.md §7 and NIST SP 811: 1 pli = 1 lbf / 1 in = 175.1268 N/m.
+    # NIST SP 811 (2008), Appendix B: 1 pli = 1 lbf / 1 in = 4.4482216152605 N / 0.0254 m = 175.1268 N/m.
     assert U.to_si("1 pli", U.TENSION) == pytest.approx(LBF / INCH, rel=EXACT)
     assert U.to_si("1 pli", U.TENSION) == pytest.approx(175.1268, abs=5e-5)
     assert U.to_si("2 lbf/in", U.TENSION) == pytest.approx(2 * LBF / INCH, rel=EXACT)
 
 
 def test_fpm_is_exactly_0_3048_m_per_min():
-    # physics.md §7; NIST SP 811: 1 ft = 0.3048 m exactly.
+    # NIST SP 811 (2008), Appendix B: 1 ft = 0.3048 m exactly, so 1 fpm = 0.3048 m/min.
     assert U.to_si("1 fpm", U.SPEED) == pytest.approx(FOOT / 60.0, rel=EXACT)
     assert U.from_si(U.to_si("1 fpm", U.SPEED), "m/min") == pytest.approx(0.3048, rel=EXACT)
     assert U.to_si("1000 fpm", U.SPEED) == pytest.approx(5.08, rel=EXACT)
@@ -39,7 +39,8 @@ def test_fpm_is_exactly_0_3048_m_per_min():
     ("3 in", 3 * INCH), ("6 in", 6 * INCH), ("76 mm", 0.076), ("0.2 um", 0.2e-6),
 ])
 def test_lengths_including_mil_as_thousandth_of_an_inch(text, metres):
-    # physics.md §7: 1 mil = 25.4 um exactly (NIST SP 811); pint's "mil" would be an angle, spanwatch reads "thou".
+    # NIST SP 811 (2008), Appendix B: 1 mil = 0.001 in = 25.4 um exactly. (pint's own "mil" is an angle;
+    # spanwatch reads "mil" and "thou" as the length.)
     assert U.to_si(text, U.LENGTH) == pytest.approx(metres, rel=EXACT)
 
 
