@@ -27,10 +27,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.monitor.history import History
+from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
+from spanwatch.monitor.metrics import DaemonCollector
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.sources import build_connectors
 from spanwatch.rules.alarms import Transition
@@ -81,8 +82,8 @@ class Daemon:
         self.stats = TickStats()
         self.stopping = asyncio.Event()
         self.registry = CollectorRegistry()
-        self.registry.register(_Collector(self))
-        self._server: asyncio.Server | None = None
+        self.registry.register(DaemonCollector(self))
+        self._http: HttpEndpoint | None = None
         self.http_port: int | None = None
 
     def _publishers(self) -> list:  # type: ignore[type-arg]
@@ -121,9 +122,8 @@ class Daemon:
             self.pipe.finish_history()
             for p in self.publishers:
                 p.stop()
-            if self._server is not None:
-                self._server.close()
-                await self._server.wait_closed()
+            if self._http is not None:
+                await self._http.close()
             self.history.close()
 
     def receive(self, batch: SampleBatch) -> None:
@@ -198,34 +198,17 @@ class Daemon:
         }
 
     async def _start_http(self) -> None:
-        host, _, port = self.http.rpartition(":")
-        self._server = await asyncio.start_server(self._handle, host or "127.0.0.1", int(port))
-        self.http_port = self._server.sockets[0].getsockname()[1]
-        log.info("HTTP on %s:%s (/healthz, /metrics)", host, self.http_port)
+        self._http = await serve_http(self.http, {
+            "/healthz": self._healthz, "/status": self._healthz, "/metrics": self._metrics})
+        self.http_port = self._http.port
+        log.info("HTTP on %s (/healthz, /metrics)", self._http.address)
 
-    async def _handle(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
-        try:
-            request = await asyncio.wait_for(reader.readline(), timeout=5.0)
-            while (await asyncio.wait_for(reader.readline(), timeout=5.0)) not in (b"\r\n", b"\n", b""):
-                pass
-            parts = request.decode("latin-1").split()
-            path = parts[1] if len(parts) >= 2 else "/"
-            if path.startswith("/healthz") or path.startswith("/status"):
-                st = self.status()
-                code = 200 if st["status"] == "ok" else 503
-                body, ctype = json.dumps(st).encode(), "application/json"
-            elif path.startswith("/metrics"):
-                code, body, ctype = 200, generate_latest(self.registry), "text/plain; version=0.0.4; charset=utf-8"
-            else:
-                code, body, ctype = 404, b"not found\n", "text/plain"
-            reason = {200: "OK", 404: "Not Found", 503: "Service Unavailable"}[code]
-            writer.write(f"HTTP/1.1 {code} {reason}\r\nContent-Type: {ctype}\r\nContent-Length: {len(body)}\r\n"
-                         f"Connection: close\r\n\r\n".encode() + body)
-            await writer.drain()
-        except (TimeoutError, ConnectionError, UnicodeDecodeError):
-            pass
-        finally:
-            writer.close()
+    def _healthz(self) -> tuple[int, bytes, str]:
+        st = self.status()
+        return (200 if st["status"] == "ok" else 503), json.dumps(st).encode(), "application/json"
+
+    def _metrics(self) -> tuple[int, bytes, str]:
+        return 200, generate_latest(self.registry), "text/plain; version=0.0.4; charset=utf-8"
 
 
 def _merged(batches: list[SampleBatch]) -> list[SampleBatch]:
@@ -240,58 +223,6 @@ def _merged(batches: list[SampleBatch]) -> list[SampleBatch]:
     if run:
         out.append(SampleBatch.concat(run) if len(run) > 1 else run[0])
     return out
-
-
-class _Collector:
-    """Prometheus collector that reads the daemon's state at scrape time."""
-
-    def __init__(self, daemon: Daemon) -> None:
-        self.d = daemon
-
-    def collect(self):
-        d = self.d
-        samples = CounterMetricFamily("spanwatch_samples_in", "Samples received, by source", labels=["source"])
-        up = GaugeMetricFamily("spanwatch_connector_up", "1 when the source is connected", labels=["source"])
-        reconnects = CounterMetricFamily("spanwatch_connector_reconnects", "Reconnections", labels=["source"])
-        depth = GaugeMetricFamily("spanwatch_queue_depth", "Samples waiting in the connector queue",
-                                  labels=["source"])
-        overflow = CounterMetricFamily("spanwatch_queue_overflow", "Queue overflow events", labels=["source"])
-        malformed = CounterMetricFamily("spanwatch_malformed_messages", "Malformed messages", labels=["source"])
-        for c in d.connectors:
-            samples.add_metric([c.name], c.stats.samples_in)
-            up.add_metric([c.name], 1.0 if c.state == "connected" else 0.0)
-            reconnects.add_metric([c.name], c.stats.reconnects)
-            depth.add_metric([c.name], c.stats.queue_depth)
-            overflow.add_metric([c.name], c.stats.overflow)
-            malformed.add_metric([c.name], c.stats.malformed_total)
-        yield from (samples, up, reconnects, depth, overflow, malformed)
-        evals = SummaryMetricFamily("spanwatch_check_evaluation_seconds", "Time per tick spent in the pipeline",
-                                    count_value=d.stats.ticks, sum_value=d.stats.eval_seconds)
-        yield evals
-        frames = CounterMetricFamily("spanwatch_frames", "Frames computed")
-        frames.add_metric([], d.pipe.frames)
-        yield frames
-        lat = GaugeMetricFamily("spanwatch_frame_latency_seconds", "How far behind the clock frames are computed")
-        lat.add_metric([], d.frame_latency)
-        yield lat
-        active = GaugeMetricFamily("spanwatch_active_alarms", "Active alarms by priority", labels=["priority"])
-        counts = {"low": 0, "medium": 0, "high": 0}
-        for p in d.pipe.engine.active():
-            counts[p.priority] = counts.get(p.priority, 0) + 1
-        for prio, n in counts.items():
-            active.add_metric([prio], n)
-        yield active
-        trans = CounterMetricFamily("spanwatch_alarm_transitions", "Alarm transitions", labels=["event"])
-        for ev, n in d.stats.transitions.items():
-            trans.add_metric([ev], n)
-        yield trans
-        issues = CounterMetricFamily("spanwatch_input_issues", "Samples refused or flagged", labels=["reason"])
-        by_reason: dict[str, int] = {}
-        for r in d.pipe.inputs.rows():
-            by_reason[str(r["reason"])] = by_reason.get(str(r["reason"]), 0) + int(r["count"])  # type: ignore[call-overload]
-        for reason, n in by_reason.items():
-            issues.add_metric([reason], n)
-        yield issues
 
 
 async def run_daemon(line: Line, *, history_url: str | None = None, http: str | None = None) -> None:
