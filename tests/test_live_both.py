@@ -14,10 +14,10 @@ import time
 import uuid
 from pathlib import Path
 
+from spanwatch.connectors.history import sqlite_url
 from spanwatch.connectors.opcua_server import SimLineServer
 from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.daemon import Daemon
-from spanwatch.monitor.history import sqlite_url
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.simulate import publish_mqtt
 from spanwatch.rules.base import Reason

@@ -14,10 +14,10 @@ import time
 from pathlib import Path
 
 from livewait import assert_outage_committed, until
+from spanwatch.connectors.history import sqlite_url
 from spanwatch.connectors.opcua_server import SimLineServer, opcua_line_config
 from spanwatch.connectors.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.daemon import Daemon
-from spanwatch.monitor.history import sqlite_url
 from spanwatch.monitor.line import load_line
 
 ROOT = Path(__file__).resolve().parent.parent
