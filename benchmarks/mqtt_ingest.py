@@ -311,8 +311,8 @@ async def to_alarm_row(port: int, seconds: float, rate: float) -> dict | None:
 async def _to_alarm_row(port: int, seconds: float, folder: Path, rate: float) -> dict:
     import sqlite3
 
+    from spanwatch.connectors.history import sqlite_url
     from spanwatch.monitor.daemon import Daemon
-    from spanwatch.monitor.history import sqlite_url
     from spanwatch.monitor.line import load_line
 
     base = load_line(ROOT / "config" / "quillmere-q2.toml")

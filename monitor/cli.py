@@ -256,7 +256,7 @@ def alarms_cmd(
     import json
     from datetime import datetime
 
-    from spanwatch.monitor.history import make_engine, query_episodes
+    from spanwatch.connectors.history import make_engine, query_episodes
     from spanwatch.monitor.present import fmt_value
 
     if fmt not in ("table", "csv", "json"):

@@ -12,7 +12,7 @@ from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
-from spanwatch.monitor.history import Context
+from spanwatch.connectors.history import Context
 
 
 @dataclass

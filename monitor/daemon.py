@@ -27,14 +27,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
+from spanwatch.connectors.history import History
 from spanwatch.connectors.live import LiveConnector
-from spanwatch.monitor.history import History
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.metrics import DaemonCollector
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.sources import build_connectors
-from spanwatch.rules.alarms import Transition
+from spanwatch.rules.alarms import AlarmEngine, Transition
 from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.daemon")
@@ -73,7 +73,7 @@ class Daemon:
         self.history.start_run(mode=mode, line_name=line.name, config_file=line.file, config_hash=line.config_hash,
                                source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
         self.pipe = Pipeline(line, self.history, on_transition=on_transition)
-        restored = self.history.restore_open(self.pipe.engine)
+        restored = carry_on_open_alarms(self.history, self.pipe.engine)
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
         self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
@@ -230,3 +230,26 @@ async def run_daemon(line: Line, *, history_url: str | None = None, http: str | 
     daemon = Daemon(line, history_url=history_url, http=http)
     daemon.install_signal_handlers()
     await daemon.run()
+
+
+def carry_on_open_alarms(history: History, engine: AlarmEngine) -> int:
+    """Carry on the alarms an earlier run of this line and mode left open; returns how many.
+
+    Each open episode whose alarm the engine still has is restored as active in the engine (its
+    condition taken to hold since the raise) and adopted by this run, so the next clear completes it
+    instead of a new raise opening a second episode. One whose alarm the configuration no longer has
+    is closed at this run's start. Of two open episodes of one alarm, the older is carried on.
+    """
+    assert history.mode is not None and history.started_at is not None, "start_run first"
+    restored: set[str] = set()
+    gone: list[int] = []
+    for ep in history.open_episodes(line_name=history.line_name, mode=history.mode):
+        if ep.alarm_key in restored:
+            continue
+        if engine.restore(ep.alarm_key, ep.raised_t):
+            history.adopt(ep)
+            restored.add(ep.alarm_key)
+        else:
+            gone.append(ep.episode_id)
+    history.close_episodes(gone, at=history.started_at)
+    return len(restored)

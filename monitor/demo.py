@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.table import Table
-from spanwatch.monitor.history import History, query_episodes, sqlite_url
+from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.present import fmt_value, transition_line

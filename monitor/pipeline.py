@@ -15,10 +15,10 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+from spanwatch.connectors.history import History
 from spanwatch.monitor.aligner import Aligner
 from spanwatch.monitor.checkset import alarm_points, build_checks
 from spanwatch.monitor.context import ContextRecorder
-from spanwatch.monitor.history import History
 from spanwatch.monitor.inputs import InputStats
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.signals import SignalDeriver

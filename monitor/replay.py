@@ -7,8 +7,8 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from spanwatch.connectors.history import History
 from spanwatch.connectors.recording import ReadProblems, read_recording
-from spanwatch.monitor.history import History
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.pipeline import Pipeline
 

@@ -19,8 +19,8 @@ import urllib.request
 from pathlib import Path
 
 import pytest
+from spanwatch.connectors.history import sqlite_url
 from spanwatch.monitor.daemon import Daemon
-from spanwatch.monitor.history import sqlite_url
 from spanwatch.monitor.line import load_line
 
 ROOT = Path(__file__).resolve().parent.parent

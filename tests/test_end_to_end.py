@@ -12,7 +12,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from spanwatch.monitor.history import History, query_episodes, sqlite_url
+from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
@@ -29,7 +29,7 @@ def run_scenario(name: str, db: Path | None = None) -> tuple[list[Transition], d
     history = None
     if db is not None:
         history = History(sqlite_url(str(db)))
-        history.start_run(mode="test", line_name=line.name, config_file=line.file, config_hash=line.config_hash)
+        history.start_run(mode="replay", line_name=line.name, config_file=line.file, config_hash=line.config_hash)
     pipe = Pipeline(line, history)
     out: list[Transition] = []
     while sim.t < sc.scenario.duration - 1e-9:

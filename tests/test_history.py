@@ -1,4 +1,4 @@
-"""Alarm history (monitor/history.py) on a real SQLite file and on PostgreSQL.
+"""Alarm history (connectors/history/) on a real SQLite file and on PostgreSQL.
 
 Every test that takes ``db_url`` runs on both backends. PostgreSQL is expected on 127.0.0.1:5432 (trust auth,
 database ``test``, user ``postgres``); each test gets a fresh schema, dropped afterwards. Under CI=true a missing
@@ -7,6 +7,7 @@ PostgreSQL fails the PostgreSQL tests; elsewhere they are skipped with the reaso
 
 from __future__ import annotations
 
+import json
 import math
 import os
 import signal
@@ -19,11 +20,27 @@ from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
 
+import numpy as np
 import pytest
-from spanwatch.monitor.history import History, latest_run, make_engine, query_episodes, sqlite_url
-from spanwatch.rules.alarms import AlarmPoint, Transition
-from spanwatch.rules.base import LineState
-from sqlalchemy import text
+from alembic import command
+from alembic.autogenerate import compare_metadata
+from alembic.runtime.migration import MigrationContext
+from spanwatch.connectors.history import (
+    Context,
+    History,
+    SchemaError,
+    latest_run,
+    make_engine,
+    query_episodes,
+    sqlite_url,
+)
+from spanwatch.connectors.history.models import AlarmEpisode, Base, Level, Priority, Run, RunMode
+from spanwatch.connectors.history.schema import alembic_config, head, migration_connection
+from spanwatch.rules.alarms import LEVELS, AlarmEngine, AlarmPoint, Transition
+from spanwatch.rules.base import CheckResult, LineState
+from sqlalchemy import MetaData, String, inspect, select, text
+from sqlalchemy.exc import IntegrityError, StatementError
+from sqlalchemy.orm import Session
 
 REPO = Path(__file__).resolve().parents[1]
 PG_BASE = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
@@ -267,7 +284,7 @@ WRITER = textwrap.dedent("""
     import sys
     from spanwatch.rules.alarms import Transition
     from spanwatch.rules.alarms import AlarmPoint
-    from spanwatch.monitor.history import History
+    from spanwatch.connectors.history import History
 
     h = History(sys.argv[1])
     run = h.start_run(mode="daemon", line_name="crash test", config_file="f", config_hash="h")
@@ -321,3 +338,432 @@ def test_killed_writer_loses_no_committed_alarm(db_url, tmp_path):
         finally:
             con.close()
         assert n_events == len(stored)  # journal and episodes were written in the same transaction
+
+
+# --- long names: no length limit on either database ----------------------------------------------------------------
+
+LONG_TAG = ("q2.unwind." + "segment_" * 62)[:496] + ".rpm"  # 500 characters
+
+
+def test_500_character_tag_is_stored_whole(db_url):
+    # A 190-character tag once crashed the PostgreSQL history: its alarm key (check kind, tag, level) passed the
+    # old varchar(200). PostgreSQL refuses a string longer than a varchar(n) (PostgreSQL documentation, "Character
+    # Types": "an attempt to store a longer string into a column of these types will result in an error"), SQLite
+    # ignores the length (SQLite documentation, "Datatypes In SQLite": "SQLite does not impose any length
+    # restrictions"), so only the PostgreSQL run of this test could catch a limit.
+    assert len(LONG_TAG) == 500
+    p = point("tag_stale", LONG_TAG, "alarm", "medium", 0.5, unit="flag")
+    h = History(db_url)
+    run = h.start_run(mode="daemon", line_name="L" * 500, config_file="/d" * 250, config_hash="h" * 500,
+                      source="s" * 500)
+    h.record([Transition(T0, p, "raise", 1.0, RUNNING)])
+    h.record_contexts([Context(p.key, T0, f"tag/{LONG_TAG}", T0 - 1.0, 0.5, [1.0, None, 2.0])])
+    h.record([Transition(T0 + 5, p, "clear", 0.0, RUNNING, peak=1.0)])
+    h.finish_run(input_rows=[{"tag": LONG_TAG, "reason": "r" * 500, "count": 2, "refs": [1, 2]}])
+    h.close()
+    (row,) = _query(db_url, object_id=LONG_TAG)
+    assert row["object"] == LONG_TAG and row["run"] == run and row["cleared_t"] == T0 + 5
+    engine = make_engine(db_url)
+    try:
+        with Session(engine) as s:
+            ep = s.scalars(select(AlarmEpisode)).one()
+            assert ep.alarm_key == f"tag_stale:{LONG_TAG}:alarm"
+            assert [e.alarm_key for e in ep.events] == [ep.alarm_key, ep.alarm_key]
+            assert [c.signal for c in ep.context] == [f"tag/{LONG_TAG}"]
+            r = s.get(Run, run)
+            assert (r.line_name, r.config_file, r.config_hash, r.source) == ("L" * 500, "/d" * 250, "h" * 500,
+                                                                             "s" * 500)
+            assert [(i.tag, i.reason) for i in r.input_issues] == [(LONG_TAG, "r" * 500)]
+    finally:
+        engine.dispose()
+
+
+# --- relationships -------------------------------------------------------------------------------------------------
+
+
+def test_episode_events_context_and_run_through_relationships(db_url):
+    h = History(db_url)
+    run = h.start_run(mode="replay", line_name="test line", config_file="line.toml", config_hash="hash1")
+    trs = transitions(RUN1)
+    h.record(trs[:3])
+    h.record(trs[3:])
+    h.record_contexts([
+        Context(TR_ALARM.key, T0 + 15.0, "traction/pull_1", T0 - 5.0, 0.1, [0.9, 1.1, None]),
+        Context(TR_ALARM.key, T0 + 15.0, "tension/s2", T0 - 5.0, 0.1, [400.0, 410.0, 420.0]),
+        Context(SLIP.key, T0 + 50.0, "slip/idler_3", T0 + 30.0, 0.2, [0.07]),
+    ])
+    h.finish_run(input_rows=[{"tag": "q2.s2.tension", "reason": "late", "count": 1, "refs": [7]}])
+    h.close()
+    engine = make_engine(db_url)
+    try:
+        with Session(engine) as s:
+            r = s.get(Run, run)
+            assert len(r.episodes) == len(RUN1)
+            by_raise = {(e.alarm_key, e.raised_t): e for e in r.episodes}
+            ep = by_raise[(TR_ALARM.key, T0 + 15.0)]
+            assert [(e.event, e.t, e.run_id) for e in ep.events] == [("raise", T0 + 15.0, run),
+                                                                     ("clear", T0 + 35.0, run)]
+            assert all(e.episode is ep for e in ep.events) and ep.run is r
+            assert [(c.signal, c.t0, c.dt, json.loads(c.values)) for c in ep.context] == [
+                ("traction/pull_1", T0 - 5.0, 0.1, [0.9, 1.1, None]),
+                ("tension/s2", T0 - 5.0, 0.1, [400.0, 410.0, 420.0])]
+            assert all(c.episode is ep for c in ep.context)
+            slip = by_raise[(SLIP.key, T0 + 50.0)]
+            assert [e.event for e in slip.events] == ["raise"] and [c.signal for c in slip.context] == ["slip/idler_3"]
+            # the warning was raised twice: each episode has its own raise (and the first its clear), no context
+            first, second = by_raise[(TR_WARN.key, T0 + 10.0)], by_raise[(TR_WARN.key, T0 + 100.0)]
+            assert [e.t for e in first.events] == [T0 + 10.0, T0 + 40.0] and [e.t for e in second.events] == [T0 + 100]
+            assert first.context == [] and second.context == []
+            # every journal row of the run belongs to one of its episodes
+            assert sorted(e.id for e in r.events) == sorted(e.id for x in r.episodes for e in x.events)
+            assert [(i.tag, i.reason, i.count, json.loads(i.refs)) for i in r.input_issues] == [
+                ("q2.s2.tension", "late", 1, [7])]
+    finally:
+        engine.dispose()
+
+
+# --- closed sets ---------------------------------------------------------------------------------------------------
+
+
+def test_closed_sets_are_the_applications():
+    # the enums restate sets owned elsewhere: the alarm levels of the core and the priorities the config accepts
+    from typing import get_args
+
+    from spanwatch.monitor.config import Priority as ConfigPriority
+
+    assert [m.value for m in Level] == list(LEVELS)
+    assert [m.value for m in Priority] == list(get_args(ConfigPriority))
+    assert {m.value for m in RunMode} == {"replay", "demo", "daemon"}  # spanwatch replay, demo, run
+
+
+INSERT_EVENT = text('insert into alarm_events (run_id, t, alarm_key, kind, object_id, level, event, value, "limit", '
+                    "priority, line_state, config_hash) values (:run, 0, 'k', 'slip', 'o', :level, :event, 1, 1, "
+                    ":priority, 'running', 'h')")
+
+
+def test_closed_sets_refuse_an_unknown_value(db_url):
+    h = History(db_url)
+    with pytest.raises(ValueError, match="run mode"):
+        h.start_run(mode="test", line_name="l", config_file="f", config_hash="h")
+    run = h.start_run(mode="replay", line_name="l", config_file="f", config_hash="h")
+    # by the ORM, before any statement: the whole transaction is refused, its valid raise with it
+    with pytest.raises(StatementError, match="acknowledge"):
+        h.record([Transition(T0, SLIP, "raise", 1.0, RUNNING), Transition(T0 + 1, SLIP, "acknowledge", 1.0, RUNNING)])
+    with pytest.raises(StatementError, match="urgent"):
+        h.record([Transition(T0, point("slip", "idler_3", "alarm", "urgent", 0.05), "raise", 1.0, RUNNING)])
+    with pytest.raises(StatementError, match="critical"):
+        h.record([Transition(T0, point("slip", "idler_3", "critical", "high", 0.05), "raise", 1.0, RUNNING)])
+    h.close()
+    assert _query(db_url) == []
+    # by the database, from any other writer: the CHECK constraints (the same statement with valid values passes)
+    engine = make_engine(db_url)
+    ok = {"run": run, "level": "alarm", "event": "raise", "priority": "low"}
+    try:
+        with engine.begin() as c:
+            c.execute(INSERT_EVENT, ok)
+        for column, bad in (("level", "critical"), ("event", "acknowledge"), ("priority", "urgent")):
+            with pytest.raises(IntegrityError), engine.begin() as c:
+                c.execute(INSERT_EVENT, {**ok, column: bad})
+        with pytest.raises(IntegrityError), engine.begin() as c:
+            c.execute(text("update runs set mode = 'test'"))
+        with pytest.raises(IntegrityError), engine.begin() as c:
+            c.execute(text("insert into alarm_episodes (run_id, alarm_key, kind, object_id, level, priority, unit, "
+                           "raised_t, \"limit\", line_state, config_hash) values (:run, 'k', 'slip', 'o', 'alarm', "
+                           "'urgent', 'ratio', 0, 1, 'running', 'h')"), {"run": run})
+    finally:
+        engine.dispose()
+
+
+# --- migrations ----------------------------------------------------------------------------------------------------
+
+
+def _schema_diff(url: str, metadata: MetaData = Base.metadata) -> tuple[list, str | None]:
+    """Alembic's comparison of the database with ``metadata`` (``compare_metadata``), and its revision."""
+    engine = make_engine(url)
+    try:
+        with engine.connect() as c:
+            mc = MigrationContext.configure(c)
+            return compare_metadata(mc, metadata), mc.get_current_revision()
+    finally:
+        engine.dispose()
+
+
+def test_migrated_schema_equals_the_models(db_url):
+    # Alembic documentation, "API Details: Autogeneration" (alembic.autogenerate.compare_metadata): the
+    # differences between a live database and a MetaData, as autogenerate would write them into a revision
+    History(db_url).close()
+    diff, rev = _schema_diff(db_url)
+    assert diff == []
+    assert rev == head()
+    # control: the comparison sees column types and columns, so a model with the former varchar(200) key and
+    # without the episode link differs from the migrated database
+    other = MetaData()
+    for t in Base.metadata.tables.values():
+        t.to_metadata(other)
+    other.tables["alarm_events"].c.alarm_key.type = String(200)
+    diff, _ = _schema_diff(db_url, other)
+    assert [d[0][0] if isinstance(d, list) else d[0] for d in diff] == ["modify_type"]
+    events = other.tables["alarm_events"]
+    events._columns.remove(events.c.episode_id)
+    diff, _ = _schema_diff(db_url, other)
+    assert {d[0][0] if isinstance(d, list) else d[0] for d in diff} >= {"remove_column"}
+
+
+def test_downgrade_to_nothing_and_upgrade_again(db_url):
+    History(db_url).close()
+    engine = make_engine(db_url)
+    try:
+        with migration_connection(engine) as conn:
+            command.downgrade(alembic_config(conn), "base")
+        assert set(inspect(engine).get_table_names()) <= {"alembic_version"}
+    finally:
+        engine.dispose()
+    h = History(db_url)
+    h.start_run(mode="replay", line_name="l", config_file="f", config_hash="h")
+    h.close()
+    assert _schema_diff(db_url) == ([], head())
+
+
+# The tables as spanwatch created them before the migrations (SQLAlchemy create_all of the former models), for
+# both databases: {id} is INTEGER on SQLite and SERIAL on PostgreSQL.
+LEGACY_DDL = """
+CREATE TABLE runs (
+    id {id} NOT NULL, started_at FLOAT NOT NULL, finished_at FLOAT, mode VARCHAR(16) NOT NULL,
+    line_name VARCHAR(200) NOT NULL, config_file VARCHAR(500) NOT NULL, config_hash VARCHAR(64) NOT NULL,
+    source VARCHAR(500) NOT NULL, data_start FLOAT, data_end FLOAT,
+    PRIMARY KEY (id));
+CREATE TABLE alarm_episodes (
+    id {id} NOT NULL, run_id INTEGER NOT NULL, alarm_key VARCHAR(200) NOT NULL, kind VARCHAR(40) NOT NULL,
+    object_id VARCHAR(200) NOT NULL, level VARCHAR(16) NOT NULL, priority VARCHAR(16) NOT NULL,
+    unit VARCHAR(40) NOT NULL, raised_t FLOAT NOT NULL, cleared_t FLOAT, raise_value FLOAT, peak_value FLOAT,
+    "limit" FLOAT NOT NULL, line_state VARCHAR(16) NOT NULL, config_hash VARCHAR(64) NOT NULL,
+    PRIMARY KEY (id), FOREIGN KEY(run_id) REFERENCES runs (id));
+CREATE INDEX ix_alarm_episodes_kind ON alarm_episodes (kind);
+CREATE INDEX ix_alarm_episodes_object_id ON alarm_episodes (object_id);
+CREATE INDEX ix_alarm_episodes_raised_t ON alarm_episodes (raised_t);
+CREATE INDEX ix_alarm_episodes_run_id ON alarm_episodes (run_id);
+CREATE INDEX ix_episode_open ON alarm_episodes (alarm_key, cleared_t);
+CREATE TABLE alarm_events (
+    id {id} NOT NULL, run_id INTEGER NOT NULL, t FLOAT NOT NULL, alarm_key VARCHAR(200) NOT NULL,
+    kind VARCHAR(40) NOT NULL, object_id VARCHAR(200) NOT NULL, level VARCHAR(16) NOT NULL,
+    event VARCHAR(16) NOT NULL, value FLOAT, "limit" FLOAT NOT NULL, priority VARCHAR(16) NOT NULL,
+    line_state VARCHAR(16) NOT NULL, config_hash VARCHAR(64) NOT NULL,
+    PRIMARY KEY (id), FOREIGN KEY(run_id) REFERENCES runs (id));
+CREATE INDEX ix_alarm_events_alarm_key ON alarm_events (alarm_key);
+CREATE INDEX ix_alarm_events_run_id ON alarm_events (run_id);
+CREATE INDEX ix_alarm_events_t ON alarm_events (t);
+CREATE TABLE input_issues (
+    id {id} NOT NULL, run_id INTEGER NOT NULL, tag VARCHAR(200) NOT NULL, reason VARCHAR(60) NOT NULL,
+    count INTEGER NOT NULL, refs TEXT NOT NULL,
+    PRIMARY KEY (id), FOREIGN KEY(run_id) REFERENCES runs (id));
+CREATE INDEX ix_input_issues_run_id ON input_issues (run_id);
+CREATE TABLE alarm_context (
+    id {id} NOT NULL, episode_id INTEGER NOT NULL, signal VARCHAR(200) NOT NULL, t0 FLOAT NOT NULL,
+    dt FLOAT NOT NULL, "values" TEXT NOT NULL,
+    PRIMARY KEY (id), FOREIGN KEY(episode_id) REFERENCES alarm_episodes (id));
+CREATE INDEX ix_alarm_context_episode_id ON alarm_context (episode_id);
+"""
+
+
+def _legacy_rows(c, run_id_of: dict[str, int]) -> None:
+    """What the former code wrote for one run: TR_ALARM raised and cleared, SLIP raised and left open."""
+    run = c.execute(text("insert into runs (started_at, finished_at, mode, line_name, config_file, config_hash, "
+                         "source) values (:t, null, 'daemon', 'test line', 'line.toml', 'hash0', '') returning id"),
+                    {"t": T0}).scalar_one()
+    run_id_of["run"] = run
+    for p, t_raise, t_clear in ((TR_ALARM, 15.0, 35.0), (SLIP, 50.0, None)):
+        ep = c.execute(text(
+            "insert into alarm_episodes (run_id, alarm_key, kind, object_id, level, priority, unit, raised_t, "
+            "cleared_t, raise_value, peak_value, \"limit\", line_state, config_hash) values (:run, :key, :kind, :obj, "
+            ":level, :prio, :unit, :tr, :tc, 1.2, :peak, :limit, 'running', 'hash0') returning id"),
+            {"run": run, "key": p.key, "kind": p.kind, "obj": p.object_id, "level": p.level, "prio": p.priority,
+             "unit": p.unit, "tr": T0 + t_raise, "tc": None if t_clear is None else T0 + t_clear,
+             "peak": None if t_clear is None else 1.4, "limit": p.limit}).scalar_one()
+        run_id_of[p.key] = ep
+        for event, t in (("raise", t_raise), ("clear", t_clear)):
+            if t is not None:
+                c.execute(text(
+                    "insert into alarm_events (run_id, t, alarm_key, kind, object_id, level, event, value, \"limit\", "
+                    "priority, line_state, config_hash) values (:run, :t, :key, :kind, :obj, :level, :event, 1.2, "
+                    ":limit, :prio, 'running', 'hash0')"),
+                    {"run": run, "t": T0 + t, "key": p.key, "kind": p.kind, "obj": p.object_id, "level": p.level,
+                     "event": event, "limit": p.limit, "prio": p.priority})
+    c.execute(text("insert into alarm_context (episode_id, signal, t0, dt, \"values\") values (:ep, 'traction/pull_1', "
+                   ":t0, 0.1, '[0.9, 1.1]')"), {"ep": run_id_of[TR_ALARM.key], "t0": T0 + 5})
+    c.execute(text("insert into input_issues (run_id, tag, reason, count, refs) values (:run, 'q2.s2.tension', "
+                   "'late', 2, '[3, 4]')"), {"run": run})
+
+
+def test_history_written_before_migrations_is_stamped_and_upgraded(db_url):
+    postgres = db_url.startswith("postgresql")
+    engine = make_engine(db_url)
+    ids: dict[str, int] = {}
+    try:
+        with engine.begin() as c:
+            for stmt in LEGACY_DDL.format(id="SERIAL" if postgres else "INTEGER").split(";"):
+                if stmt.strip():
+                    c.exec_driver_sql(stmt)
+            _legacy_rows(c, ids)
+        if postgres:  # control: the former schema refuses the long tag on PostgreSQL, which the upgrade must lift
+            with pytest.raises(Exception, match="too long"), engine.begin() as c:
+                c.execute(text("update alarm_episodes set object_id = :o"), {"o": LONG_TAG})
+    finally:
+        engine.dispose()
+    before = _query(db_url)
+    assert [r["object"] for r in before] == ["pull_1", "idler_3"]
+
+    h = History(db_url)
+    assert _schema_diff(db_url) == ([], head())
+    assert _query(db_url) == before  # every episode read back as it was
+    check = make_engine(db_url)
+    try:
+        with Session(check) as s:  # the journal rows were linked to their episodes by key and time
+            closed, still_open = s.get(AlarmEpisode, ids[TR_ALARM.key]), s.get(AlarmEpisode, ids[SLIP.key])
+            assert [(e.event, e.t) for e in closed.events] == [("raise", T0 + 15.0), ("clear", T0 + 35.0)]
+            assert [(e.event, e.t) for e in still_open.events] == [("raise", T0 + 50.0)]
+            assert [json.loads(c.values) for c in closed.context] == [[0.9, 1.1]]
+            assert [(i.tag, i.count) for i in s.get(Run, ids["run"]).input_issues] == [("q2.s2.tension", 2)]
+    finally:
+        check.dispose()
+    # the upgraded history takes what the former schema refused, and carries on the alarm it left open
+    engine_after = AlarmEngine([SLIP])
+    run2 = h.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash1")
+    from spanwatch.monitor.daemon import carry_on_open_alarms
+
+    assert carry_on_open_alarms(h, engine_after) == 1
+    h.record([Transition(T0 + 300.0, point("tag_stale", LONG_TAG, "alarm", "medium", 0.5, unit="flag"), "raise", 1.0,
+                         RUNNING)])
+    h.close()
+    assert [r["object"] for r in _query(db_url, run_id=run2)] == [LONG_TAG]
+
+
+def test_unknown_schemas_are_refused_with_the_reason(tmp_path):
+    partial = tmp_path / "partial.db"
+    con = sqlite3.connect(partial)
+    con.execute("create table runs (id integer primary key)")
+    con.commit()
+    con.close()
+    with pytest.raises(SchemaError, match=r"but not \['alarm_events'"):
+        History(sqlite_url(str(partial)))
+    newer = tmp_path / "newer.db"
+    History(sqlite_url(str(newer))).close()
+    con = sqlite3.connect(newer)
+    con.execute("update alembic_version set version_num = '9999'")
+    con.commit()
+    con.close()
+    with pytest.raises(SchemaError, match=r"'9999'.*newer spanwatch"):
+        History(sqlite_url(str(newer)))
+
+
+OPENER = textwrap.dedent("""
+    import pathlib, sys, time
+    from spanwatch.connectors.history import History
+
+    print("ready", flush=True)
+    go = pathlib.Path(sys.argv[2])
+    while not go.exists():
+        time.sleep(0.005)
+    h = History(sys.argv[1])
+    print("run", h.start_run(mode="daemon", line_name="l", config_file="f", config_hash="h"), flush=True)
+    h.close()
+""")
+
+
+def test_processes_opening_a_new_history_together_all_succeed(db_url, tmp_path):
+    # four processes create the same history at once: one migrates under the write lock, the others wait and
+    # find it at head; without the lock they race to create the same tables. The locks: SQLite documentation,
+    # "BEGIN TRANSACTION" (IMMEDIATE starts a write transaction at once); PostgreSQL documentation, "Explicit
+    # Locking", advisory locks (pg_advisory_xact_lock, held until the transaction ends)
+    script = tmp_path / "opener.py"
+    script.write_text(OPENER, encoding="utf-8")
+    go = tmp_path / "go"
+    procs = [subprocess.Popen([sys.executable, str(script), db_url, str(go)], cwd=REPO, stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True) for _ in range(4)]
+    try:
+        for p in procs:
+            assert p.stdout.readline().strip() == "ready", p.stderr.read()
+        go.touch()
+        outs = [p.communicate(timeout=120) for p in procs]
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.wait()
+    assert [p.returncode for p in procs] == [0, 0, 0, 0], [err for _, err in outs]
+    runs = sorted(int(out.split()[1]) for out, _ in outs)
+    assert len(set(runs)) == 4
+    assert _schema_diff(db_url) == ([], head())
+
+
+# --- carrying open alarms on across a restart (monitor.daemon.carry_on_open_alarms, through the engine) -----------
+
+
+def _falling_traction(t_start: float, n: int = 5) -> tuple[np.ndarray, dict, np.ndarray]:
+    """A block where pull_1's traction ratio is well below both limits: an active traction alarm clears."""
+    t = T0 + t_start + np.arange(n) * 0.1
+    res = CheckResult(value=np.full(n, 0.3), reason=np.zeros(n, dtype=np.int8))
+    return t, {("traction", "pull_1"): res}, np.full(n, RUNNING, dtype=np.int8)
+
+
+def test_restart_carries_open_alarms_on_and_closes_those_no_longer_configured(db_url):
+    from spanwatch.monitor.daemon import carry_on_open_alarms
+
+    h1 = History(db_url)
+    run1 = h1.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash1")
+    h1.record([Transition(T0 + 10.0, TR_ALARM, "raise", 1.2, RUNNING), Transition(T0 + 11.0, SLIP, "raise", 0.08,
+                                                                                  RUNNING)])
+    h1.close()  # killed: both alarms left open
+
+    # the new run's config has no slip alarm on idler_3 any more
+    engine = AlarmEngine([TR_ALARM, TR_WARN])
+    h2 = History(db_url)
+    run2 = h2.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash2",
+                        started_at=T0 + 100.0)
+    assert carry_on_open_alarms(h2, engine) == 1
+    assert [p.key for p in engine.active()] == [TR_ALARM.key]
+    slip = _query(db_url, kind="slip")
+    assert [(r["run"], r["cleared_t"]) for r in slip] == [(run1, T0 + 100.0)]  # closed at the new run's start
+
+    # the carried alarm clears through the engine's own evaluation (a raise would need a value above the limit)
+    trs = engine.evaluate(*_falling_traction(120.0))
+    assert [(tr.key, tr.event) for tr in trs] == [(TR_ALARM.key, "clear")]
+    h2.record(trs)
+    h2.close()
+    traction = _query(db_url, kind="traction")
+    assert [(r["run"], r["raised_t"], r["cleared_t"]) for r in traction] == [(run1, T0 + 10.0, T0 + 120.0)]
+    assert _query(db_url, run_id=run2) == []  # no second episode
+    engine_db = make_engine(db_url)
+    try:
+        with Session(engine_db) as s:
+            ep = s.get(AlarmEpisode, traction[0]["id"])
+            assert [(e.event, e.run_id) for e in ep.events] == [("raise", run1), ("clear", run2)]
+    finally:
+        engine_db.dispose()
+
+    # a third start finds nothing open, so nothing is restored
+    h3 = History(db_url)
+    h3.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash2")
+    fresh = AlarmEngine([TR_ALARM, TR_WARN])
+    assert carry_on_open_alarms(h3, fresh) == 0 and fresh.active() == []
+    h3.close()
+
+
+def test_only_runs_of_the_same_line_and_mode_are_carried_on(db_url):
+    from spanwatch.monitor.daemon import carry_on_open_alarms
+
+    h1 = History(db_url)
+    h1.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash1")
+    h1.record([Transition(T0 + 10.0, TR_ALARM, "raise", 1.2, RUNNING)])
+    h1.close()
+    for mode, line in (("replay", "test line"), ("demo", "test line"), ("daemon", "other line")):
+        h = History(db_url)
+        h.start_run(mode=mode, line_name=line, config_file="line.toml", config_hash="hash1")
+        engine = AlarmEngine([TR_ALARM])
+        assert carry_on_open_alarms(h, engine) == 0 and engine.active() == [], (mode, line)
+        h.close()
+    assert [r["cleared_t"] for r in _query(db_url)] == [None]  # left alone by the other lines and modes
+    h = History(db_url)
+    h.start_run(mode="daemon", line_name="test line", config_file="line.toml", config_hash="hash1")
+    engine = AlarmEngine([TR_ALARM])
+    assert carry_on_open_alarms(h, engine) == 1 and engine.active() == [TR_ALARM]
+    h.close()

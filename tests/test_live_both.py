@@ -14,8 +14,8 @@ import time
 import uuid
 from pathlib import Path
 
+from spanwatch.connectors.history import sqlite_url
 from spanwatch.monitor.daemon import Daemon
-from spanwatch.monitor.history import sqlite_url
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.simserve import SimLineServer

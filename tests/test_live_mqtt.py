@@ -20,8 +20,8 @@ from pathlib import Path
 import paho.mqtt.client as mqtt
 from livewait import assert_outage_committed, until
 from paho.mqtt.enums import CallbackAPIVersion
+from spanwatch.connectors.history import sqlite_url
 from spanwatch.monitor.daemon import Daemon
-from spanwatch.monitor.history import sqlite_url
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.monitor.simulate import publish_mqtt

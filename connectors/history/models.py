@@ -1,0 +1,168 @@
+"""The history's tables as SQLAlchemy 2.0 typed models, with their relationships and closed sets of values.
+
+Nullability comes from the ``Mapped[...]`` hints (``float | None`` is nullable, ``float`` is not).
+Free text — tags, alarm keys, object ids, file names, hashes — is :class:`~sqlalchemy.Text`, unbounded
+on SQLite and PostgreSQL alike (a ``VARCHAR(200)`` limit once refused a long tag on PostgreSQL only).
+
+Closed sets are Python enums stored as their values (``"raise"``, ``"warning"``, ``"high"``,
+``"daemon"``) in an unbounded string column with a named CHECK constraint: the same schema and the same
+refusal of an unknown value on both databases (the ORM refuses it before the statement, the CHECK
+refuses it from any other writer), and one migration code path when a set grows (drop and re-create the
+CHECK constraint, in batch mode on SQLite), where a PostgreSQL ``ENUM`` type would need ``ALTER TYPE``.
+
+The schema itself is created and changed by the Alembic revisions in ``migrations/``, never by
+``create_all``; a test checks that the migrated schema equals this metadata.
+"""
+
+from __future__ import annotations
+
+import enum
+
+from sqlalchemy import Enum, Float, ForeignKey, Index, MetaData, Text
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+# Constraint names the migrations can refer to; index names as SQLAlchemy's default (the original tables').
+NAMING = {"ix": "ix_%(column_0_label)s", "ck": "ck_%(table_name)s_%(constraint_name)s"}
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING)
+    type_annotation_map = {str: Text(), float: Float()}  # noqa: RUF012 - SQLAlchemy reads it from the class
+
+
+class EventKind(enum.StrEnum):
+    """What happened to an alarm (the ``event`` column of ``alarm_events``)."""
+
+    RAISE = "raise"
+    CLEAR = "clear"
+
+
+class Level(enum.StrEnum):
+    """The level of an alarm point (:data:`spanwatch.rules.alarms.LEVELS`)."""
+
+    WARNING = "warning"
+    ALARM = "alarm"
+
+
+class Priority(enum.StrEnum):
+    """ISA-18.2 alarm priority as the configuration offers it."""
+
+    LOW = "low"
+    MEDIUM = "medium"
+    HIGH = "high"
+
+
+class RunMode(enum.StrEnum):
+    """How a run was started: ``spanwatch replay``, ``spanwatch demo`` or ``spanwatch run``."""
+
+    REPLAY = "replay"
+    DEMO = "demo"
+    DAEMON = "daemon"
+
+
+def closed_set(cls: type[enum.StrEnum], name: str) -> Enum:
+    """A string column holding the values of ``cls``, with a CHECK constraint ``ck_<table>_<name>``.
+
+    No length: a VARCHAR(n) sized to today's longest value would refuse a longer one on PostgreSQL
+    only, and would need widening when a set grows.
+    """
+    return Enum(cls, name=name, native_enum=False, create_constraint=True, validate_strings=True, length=None,
+                values_callable=lambda e: [m.value for m in e])
+
+
+class Run(Base):
+    """One replay, demo or daemon start: the config it ran with and the span of data it saw."""
+
+    __tablename__ = "runs"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    started_at: Mapped[float]
+    finished_at: Mapped[float | None]
+    mode: Mapped[RunMode] = mapped_column(closed_set(RunMode, "mode"))
+    line_name: Mapped[str]
+    config_file: Mapped[str]
+    config_hash: Mapped[str]
+    source: Mapped[str] = mapped_column(default="")
+    data_start: Mapped[float | None]
+    data_end: Mapped[float | None]
+
+    episodes: Mapped[list[AlarmEpisode]] = relationship(back_populates="run", order_by="AlarmEpisode.id")
+    events: Mapped[list[AlarmEvent]] = relationship(back_populates="run", order_by="AlarmEvent.id")
+    input_issues: Mapped[list[InputIssue]] = relationship(back_populates="run", order_by="InputIssue.id")
+
+
+class AlarmEvent(Base):
+    """The journal: one row per transition, append-only. ``episode_id`` is the episode it raised or cleared."""
+
+    __tablename__ = "alarm_events"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"), index=True)
+    episode_id: Mapped[int | None] = mapped_column(ForeignKey("alarm_episodes.id", name="fk_alarm_events_episode_id"),
+                                                   index=True)
+    t: Mapped[float] = mapped_column(index=True)
+    alarm_key: Mapped[str] = mapped_column(index=True)
+    kind: Mapped[str]
+    object_id: Mapped[str]
+    level: Mapped[Level] = mapped_column(closed_set(Level, "level"))
+    event: Mapped[EventKind] = mapped_column(closed_set(EventKind, "event"))
+    value: Mapped[float | None]
+    limit: Mapped[float]
+    priority: Mapped[Priority] = mapped_column(closed_set(Priority, "priority"))
+    line_state: Mapped[str]  # a line state's name, or its code when it is not one: not a closed set
+    config_hash: Mapped[str]
+
+    run: Mapped[Run] = relationship(back_populates="events")
+    episode: Mapped[AlarmEpisode | None] = relationship(back_populates="events")
+
+
+class AlarmEpisode(Base):
+    """One row per raise, completed by its clear (possibly in a later run that carried the alarm on)."""
+
+    __tablename__ = "alarm_episodes"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"), index=True)
+    alarm_key: Mapped[str]
+    kind: Mapped[str] = mapped_column(index=True)
+    object_id: Mapped[str] = mapped_column(index=True)
+    level: Mapped[Level] = mapped_column(closed_set(Level, "level"))
+    priority: Mapped[Priority] = mapped_column(closed_set(Priority, "priority"))
+    unit: Mapped[str]
+    raised_t: Mapped[float] = mapped_column(index=True)
+    cleared_t: Mapped[float | None]
+    raise_value: Mapped[float | None]
+    peak_value: Mapped[float | None]
+    limit: Mapped[float]
+    line_state: Mapped[str]
+    config_hash: Mapped[str]
+    __table_args__ = (Index("ix_episode_open", "alarm_key", "cleared_t"),)
+
+    run: Mapped[Run] = relationship(back_populates="episodes")
+    events: Mapped[list[AlarmEvent]] = relationship(back_populates="episode", order_by="AlarmEvent.t")
+    context: Mapped[list[AlarmContext]] = relationship(back_populates="episode", order_by="AlarmContext.id")
+
+
+class AlarmContext(Base):
+    """The samples of one signal around a raise: ``values[i]`` at ``t0 + i * dt`` (JSON, null where unusable)."""
+
+    __tablename__ = "alarm_context"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    episode_id: Mapped[int] = mapped_column(ForeignKey("alarm_episodes.id"), index=True)
+    signal: Mapped[str]
+    t0: Mapped[float]
+    dt: Mapped[float]
+    values: Mapped[str]
+
+    episode: Mapped[AlarmEpisode] = relationship(back_populates="context")
+
+
+class InputIssue(Base):
+    """Per run, tag and reason: how many samples were refused or flagged, with the first line numbers (JSON)."""
+
+    __tablename__ = "input_issues"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"), index=True)
+    tag: Mapped[str]
+    reason: Mapped[str]
+    count: Mapped[int]
+    refs: Mapped[str]
+
+    run: Mapped[Run] = relationship(back_populates="input_issues")

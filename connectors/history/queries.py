@@ -1,0 +1,60 @@
+"""The readers: alarm episodes with filters (what ``spanwatch alarms`` lists) and the latest run."""
+
+from __future__ import annotations
+
+import enum
+from typing import Any
+
+from spanwatch.connectors.history.models import AlarmEpisode, Level, Priority, Run
+from spanwatch.rules.values import iso
+from sqlalchemy import false, select
+from sqlalchemy.engine import Engine
+from sqlalchemy.orm import Session
+
+
+def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | None = None,
+                   object_id: str | None = None, priority: str | None = None, level: str | None = None,
+                   since: float | None = None, until: float | None = None, active_only: bool = False
+                   ) -> list[dict[str, Any]]:
+    """Alarm episodes with filters, oldest first, as plain dicts (ISO times included).
+
+    ``since`` is inclusive and ``until`` exclusive, on the raise time; a ``priority`` or ``level``
+    outside its closed set matches nothing.
+    """
+    q = select(AlarmEpisode).order_by(AlarmEpisode.raised_t, AlarmEpisode.id)
+    if run_id is not None:
+        q = q.where(AlarmEpisode.run_id == run_id)
+    if kind:
+        q = q.where(AlarmEpisode.kind == kind)
+    if object_id:
+        q = q.where(AlarmEpisode.object_id == object_id)
+    if priority:
+        q = q.where(AlarmEpisode.priority == Priority(priority) if priority in _values(Priority) else false())
+    if level:
+        q = q.where(AlarmEpisode.level == Level(level) if level in _values(Level) else false())
+    if since is not None:
+        q = q.where(AlarmEpisode.raised_t >= since)
+    if until is not None:
+        q = q.where(AlarmEpisode.raised_t < until)
+    if active_only:
+        q = q.where(AlarmEpisode.cleared_t.is_(None))
+    with Session(engine) as s:
+        rows = s.scalars(q).all()
+        return [{
+            "id": e.id, "run": e.run_id, "raised": iso(e.raised_t), "cleared": iso(e.cleared_t),
+            "duration_s": None if e.cleared_t is None else round(e.cleared_t - e.raised_t, 3),
+            "check": e.kind, "object": e.object_id, "level": str(e.level), "priority": str(e.priority),
+            "value": e.raise_value, "peak": e.peak_value, "limit": e.limit, "unit": e.unit,
+            "line_state": e.line_state, "config_hash": e.config_hash, "raised_t": e.raised_t,
+            "cleared_t": e.cleared_t,
+        } for e in rows]
+
+
+def _values(cls: type[enum.StrEnum]) -> set[str]:
+    return {m.value for m in cls}
+
+
+def latest_run(engine: Engine) -> int | None:
+    """The id of the newest run, or None for an empty history."""
+    with Session(engine) as s:
+        return s.scalar(select(Run.id).order_by(Run.id.desc()).limit(1))

@@ -1,0 +1,190 @@
+"""The writer: one run's transitions, episodes, context windows and input issues.
+
+Every :meth:`History.record` is one transaction (journal rows, new episodes, completed episodes), so
+a crash or ``kill -9`` loses nothing committed and leaves nothing half-written. The store knows alarm
+keys and episodes, not the alarm engine: carrying an alarm on across a restart is the application's
+job, with :meth:`History.open_episodes`, :meth:`History.adopt` and :meth:`History.close_episodes`.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+
+from spanwatch.connectors.history.database import make_engine
+from spanwatch.connectors.history.models import AlarmContext, AlarmEpisode, AlarmEvent, InputIssue, Run, RunMode
+from spanwatch.connectors.history.schema import upgrade
+from spanwatch.rules.alarms import Transition
+from spanwatch.rules.base import state_name
+from spanwatch.rules.values import finite_or_none
+from sqlalchemy import select, update
+from sqlalchemy.orm import Session
+
+
+@dataclass(frozen=True)
+class Context:
+    """A window of one signal around a raise: ``values[i]`` at ``t0 + i * dt`` (None where unusable)."""
+
+    key: str
+    raised_t: float
+    signal: str
+    t0: float
+    dt: float
+    values: list[float | None]
+
+
+@dataclass(frozen=True)
+class OpenEpisode:
+    """An episode raised and not cleared, as an earlier run left it."""
+
+    episode_id: int
+    alarm_key: str
+    raised_t: float
+    run_id: int
+
+
+class History:
+    """Writes one run into the history at ``url`` (upgraded to the newest schema on opening)."""
+
+    def __init__(self, url: str) -> None:
+        self.url = url
+        self.engine = make_engine(url)
+        try:
+            upgrade(self.engine)
+        except BaseException:
+            self.engine.dispose()
+            raise
+        self.run_id: int | None = None
+        self.started_at: float | None = None
+        self.mode: RunMode | None = None
+        self.line_name = ""
+        self.config_hash = ""
+        self._open: dict[str, int] = {}  # alarm key -> id of its open episode (raised here or adopted)
+        self._raised: dict[tuple[str, float], int] = {}  # (alarm key, raise time) -> episode id, until its context
+
+    def start_run(self, *, mode: str, line_name: str, config_file: str, config_hash: str, source: str = "",
+                  started_at: float | None = None) -> int:
+        """Open a run (``mode``: replay, demo or daemon) and return its id."""
+        try:
+            run_mode = RunMode(mode)
+        except ValueError:
+            raise ValueError(f"run mode: expected one of {[m.value for m in RunMode]}, got {mode!r}") from None
+        at = started_at if started_at is not None else datetime.now(UTC).timestamp()
+        with Session(self.engine) as s, s.begin():
+            run = Run(started_at=at, mode=run_mode, line_name=line_name, config_file=config_file,
+                      config_hash=config_hash, source=source)
+            s.add(run)
+            s.flush()
+            self.run_id = run.id
+        self.started_at, self.mode, self.line_name, self.config_hash = at, run_mode, line_name, config_hash
+        return self.run_id
+
+    # --- alarms an earlier run left open ---------------------------------------------------------------------------
+
+    def open_episodes(self, *, line_name: str, mode: str) -> list[OpenEpisode]:
+        """Episodes not cleared, of the runs of ``line_name`` in ``mode`` other than this one, oldest first."""
+        runs = select(Run.id).where(Run.line_name == line_name, Run.mode == RunMode(mode))
+        if self.run_id is not None:
+            runs = runs.where(Run.id != self.run_id)
+        q = (select(AlarmEpisode.id, AlarmEpisode.alarm_key, AlarmEpisode.raised_t, AlarmEpisode.run_id)
+             .where(AlarmEpisode.cleared_t.is_(None), AlarmEpisode.run_id.in_(runs))
+             .order_by(AlarmEpisode.raised_t, AlarmEpisode.id))
+        with Session(self.engine) as s:
+            return [OpenEpisode(*row) for row in s.execute(q).all()]
+
+    def adopt(self, episode: OpenEpisode) -> None:
+        """This run carries ``episode`` on: the next clear of its alarm key completes it."""
+        self._open[episode.alarm_key] = episode.episode_id
+
+    def close_episodes(self, ids: Iterable[int], at: float) -> int:
+        """Mark open episodes cleared at ``at`` (epoch s) without a clear event; returns how many were open."""
+        ids = list(ids)
+        if not ids:
+            return 0
+        with Session(self.engine) as s, s.begin():
+            res = s.execute(update(AlarmEpisode).where(AlarmEpisode.id.in_(ids), AlarmEpisode.cleared_t.is_(None))
+                            .values(cleared_t=at).execution_options(synchronize_session=False))
+            closed = res.rowcount  # type: ignore[attr-defined]
+        gone = set(ids)
+        for key in [k for k, v in self._open.items() if v in gone]:
+            del self._open[key]
+        return closed
+
+    # --- this run --------------------------------------------------------------------------------------------------
+
+    def record(self, transitions: Iterable[Transition]) -> None:
+        """Write transitions in one transaction: journal rows, new episodes, completed episodes."""
+        trs = list(transitions)
+        if not trs:
+            return
+        assert self.run_id is not None, "start_run first"
+        opened: dict[str, AlarmEpisode] = {}  # raised in this call, still open
+        raised: list[AlarmEpisode] = []
+        closed: dict[str, int] = {}  # alarm key -> episode id cleared in this call (opened earlier)
+        completed: list[dict[str, object]] = []
+        with Session(self.engine, expire_on_commit=False) as s, s.begin():
+            for tr in trs:
+                p = tr.point
+                ev = AlarmEvent(run_id=self.run_id, t=tr.t, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
+                                level=p.level, event=tr.event, value=finite_or_none(tr.value), limit=p.limit,
+                                priority=p.priority, line_state=state_name(tr.line_state),
+                                config_hash=self.config_hash)
+                if tr.event == "raise":
+                    ep = AlarmEpisode(run_id=self.run_id, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
+                                      level=p.level, priority=p.priority, unit=p.unit, raised_t=tr.t,
+                                      raise_value=finite_or_none(tr.value), limit=p.limit,
+                                      line_state=ev.line_state, config_hash=self.config_hash)
+                    ev.episode = ep  # the unit of work inserts the episode first and links the event to it
+                    opened[p.key] = ep
+                    raised.append(ep)
+                elif tr.event == "clear":
+                    if p.key in opened:
+                        ep = opened.pop(p.key)
+                        ep.cleared_t, ep.peak_value = tr.t, finite_or_none(tr.peak)
+                        ev.episode = ep
+                    elif p.key in self._open and p.key not in closed:
+                        ev.episode_id = closed[p.key] = self._open[p.key]
+                        completed.append({"id": ev.episode_id, "cleared_t": tr.t,
+                                          "peak_value": finite_or_none(tr.peak)})
+                s.add(ev)
+            s.flush()  # one INSERT per table (batched), then the completed episodes in one UPDATE
+            if completed:
+                s.execute(update(AlarmEpisode), completed)
+        for key in closed:  # committed: now the state follows
+            del self._open[key]
+        for key, ep in opened.items():
+            self._open[key] = ep.id
+        for ep in raised:
+            self._raised[(ep.alarm_key, ep.raised_t)] = ep.id
+
+    def record_contexts(self, contexts: Iterable[Context]) -> None:
+        """Write context windows; each belongs to the episode raised at its ``raised_t``."""
+        rows = []
+        done = set()
+        for c in contexts:
+            ep_id = self._raised.get((c.key, c.raised_t))
+            if ep_id is not None:
+                rows.append(AlarmContext(episode_id=ep_id, signal=c.signal, t0=c.t0, dt=c.dt,
+                                         values=json.dumps(c.values)))
+                done.add((c.key, c.raised_t))
+        if rows:
+            with Session(self.engine) as s, s.begin():
+                s.add_all(rows)
+        for k in done:
+            del self._raised[k]
+
+    def finish_run(self, *, input_rows: Sequence[dict[str, object]], data_start: float | None = None,
+                   data_end: float | None = None) -> None:
+        """Close the run: finish time, the span of data seen, and the input issues per tag and reason."""
+        with Session(self.engine) as s, s.begin():
+            s.execute(update(Run).where(Run.id == self.run_id)
+                      .values(finished_at=datetime.now(UTC).timestamp(), data_start=data_start, data_end=data_end)
+                      .execution_options(synchronize_session=False))
+            s.add_all([InputIssue(run_id=self.run_id, tag=str(r["tag"]), reason=str(r["reason"]),
+                                  count=int(r["count"]),  # type: ignore[call-overload]
+                                  refs=json.dumps(r["refs"])) for r in input_rows])
+
+    def close(self) -> None:
+        self.engine.dispose()
