@@ -9,16 +9,17 @@ from __future__ import annotations
 import contextlib
 import sys
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 from rich.console import Console
-from rich.table import Table
 from spanwatch import __version__
-from spanwatch.monitor import units as U
-from spanwatch.monitor.checkset import alarm_points, build_checks
-from spanwatch.monitor.config import ConfigError
-from spanwatch.monitor.line import Line, load_line
+
+# Start-up: only typer and rich.console load with the command line. numpy, pint, pydantic, SQLAlchemy,
+# asyncua, paho and the line model load inside the commands that use them (benchmarks/startup.py).
+if TYPE_CHECKING:
+    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.line import Line
 
 app = typer.Typer(
     name="spanwatch",
@@ -38,8 +39,17 @@ SAFETY_NOTE = (
 )
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        typer.echo(f"spanwatch {__version__}")
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
+def _root(
+    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.", is_eager=True,
+                                          callback=_print_version)] = False,
+) -> None:
     """spanwatch: streaming monitor for web-handling lines (advisory only; not a safety function)."""
 
 
@@ -52,6 +62,10 @@ def fail_config(exc: ConfigError) -> None:
 
 def open_line(path: Path) -> Line:
     """Load a line and its alarm settings, exiting with status 2 on any config problem."""
+    from spanwatch.monitor.checkset import alarm_points, build_checks
+    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.line import load_line
+
     try:
         line = load_line(path)
         alarm_points(line, build_checks(line))
@@ -61,12 +75,16 @@ def open_line(path: Path) -> Line:
 
 
 def _tension(v: float | None) -> str:
+    from spanwatch.monitor import units as U
+
     if v is None:
         return "-"
     return f"{v:.0f} N/m ({U.from_si(v, 'pli'):.2f} pli)"
 
 
 def _speed(v: float) -> str:
+    from spanwatch.monitor import units as U
+
     return f"{U.from_si(v, 'm/min'):.0f} m/min ({U.from_si(v, 'fpm'):.0f} fpm)"
 
 
@@ -75,6 +93,10 @@ def check_config(
     file: Annotated[Path, typer.Argument(help="Line configuration (TOML).")],
 ) -> None:
     """Validate a line configuration and print the derived line and each driven roller's capacity."""
+    from rich.table import Table
+    from spanwatch.monitor import units as U
+    from spanwatch.monitor.checkset import alarm_points, build_checks
+
     line = open_line(file)
     cfg = line.config
     lw, mat = cfg.line, cfg.material
@@ -155,6 +177,8 @@ def simulate_cmd(
     speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
     """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
+    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.line import load_line
     from spanwatch.monitor.simline import SimulatedLine, load_scenario
     from spanwatch.monitor.simulate import simulate_to_file
 
@@ -256,6 +280,7 @@ def alarms_cmd(
     import json
     from datetime import datetime
 
+    from rich.table import Table
     from spanwatch.connectors.history import make_engine, query_episodes
     from spanwatch.monitor.present import fmt_value
 
@@ -303,7 +328,8 @@ def alarms_cmd(
 
 @app.command("demo")
 def demo_cmd(
-    scenario: Annotated[Path | None, typer.Option(help="Scenario to run (default: the built-in demo).")] = None,
+    scenario: Annotated[Path | None, typer.Option(help="Scenario file, or the name of a shipped one such as "
+                                                   "cof-drop (see spanwatch examples); default: the demo.")] = None,
     speedup: Annotated[float, typer.Option(help="Simulated seconds per wall-clock second.")] = 6.0,
     duration: Annotated[str | None, typer.Option(help="Stop after this much simulated time, e.g. '2 min'.")] = None,
     db: Annotated[Path | None, typer.Option(help="Keep the alarm history in this SQLite file.")] = None,
@@ -313,6 +339,8 @@ def demo_cmd(
                                                 "direct: samples straight into the pipeline.")] = "opcua",
 ) -> None:
     """Watch a simulated line raise traction, roll-build and sensor alarms as they happen (no arguments needed)."""
+    from spanwatch.monitor import units as U
+    from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.demo import run_demo
 
     dur = None
@@ -345,6 +373,7 @@ def run_cmd(
     import asyncio
     import logging
 
+    from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.daemon import run_daemon
 
     line = open_line(config)
@@ -374,6 +403,7 @@ def opcua_browse_cmd(
     """List the variables under a node of an OPC UA server, to fill in the tag map."""
     import asyncio
 
+    from rich.table import Table
     from spanwatch.connectors.opcua import browse
 
     try:
@@ -391,6 +421,59 @@ def opcua_browse_cmd(
     for r in rows:
         t.add_row(str(r["node_id"]), str(r["path"]), str(r.get("data_type", "")), str(r.get("value", "")))
     console.print(t)
+
+
+@app.command("examples")
+def examples_cmd(
+    copy: Annotated[list[str] | None, typer.Option("--copy", metavar="NAME", help="Copy this example, and the files "
+                                                   "it refers to, into --to (repeatable; 'all' copies every one).")]
+    = None,
+    to: Annotated[Path, typer.Option("--to", help="Folder to copy into; made if missing.")] = Path("."),
+    force: Annotated[bool, typer.Option("--force", help="Replace copies that differ from the shipped file.")] = False,
+    path: Annotated[str | None, typer.Option("--path", metavar="NAME", help="Print where the example NAME is "
+                                             "installed, and nothing else.")] = None,
+) -> None:
+    """List the example line files and scenarios that ship with spanwatch; copy them out to edit them."""
+    from spanwatch.monitor.examples import ExampleError, copy_example, example_path, examples_root, list_examples
+
+    if path is not None:
+        try:
+            typer.echo(str(example_path(path)))
+        except ExampleError as exc:
+            err_console.print(str(exc), highlight=False, markup=False)
+            raise typer.Exit(2) from None
+        return
+    if copy:
+        names = [e.name for e in list_examples()] if "all" in copy else copy
+        shown: set[Path] = set()
+        try:
+            for name in names:
+                for target, status in copy_example(name, to, overwrite=force):
+                    if target not in shown:  # a line file several scenarios share is reported once
+                        shown.add(target)
+                        console.print(f"{status}: {target}", highlight=False, markup=False)
+        except ExampleError as exc:
+            err_console.print(str(exc), highlight=False, markup=False)
+            raise typer.Exit(2) from None
+        except FileExistsError as exc:
+            err_console.print(f"{exc}; --force replaces them", highlight=False, markup=False)
+            raise typer.Exit(2) from None
+        except OSError as exc:
+            err_console.print(f"cannot copy into {to}: {exc}", highlight=False, markup=False)
+            raise typer.Exit(2) from None
+        return
+    from rich.table import Table
+
+    found = list_examples()
+    t = Table(title=f"{len(found)} examples shipped with spanwatch {__version__}", title_justify="left")
+    for col in ("name", "kind", "description", "refers to"):
+        t.add_column(col)
+    for e in found:
+        t.add_row(e.name, e.kind, e.description, ", ".join(e.refers_to) or "-")
+    console.print(t)
+    console.print(f"installed in {examples_root()}", highlight=False, markup=False)
+    console.print("copy one out to edit it: spanwatch examples --copy NAME [--to FOLDER]; "
+                  "run a scenario: spanwatch demo --scenario NAME", highlight=False, markup=False)
 
 
 def main() -> None:

@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 from rich.console import Console
 from rich.table import Table
 from spanwatch.connectors.history import History, query_episodes, sqlite_url
+from spanwatch.monitor.examples import ExampleError, example_path
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.present import fmt_value, transition_line
@@ -30,8 +31,7 @@ from spanwatch.rules.base import state_name
 if TYPE_CHECKING:
     from spanwatch.monitor.daemon import Daemon
 
-REPO = Path(__file__).resolve().parent.parent
-DEFAULT_SCENARIO = REPO / "config" / "scenarios" / "demo.toml"
+DEFAULT_SCENARIO = "scenarios/demo.toml"  # a shipped example (spanwatch.monitor.examples), found where installed
 
 
 @dataclass
@@ -46,8 +46,12 @@ class DemoResult:
 def run_demo(console: Console, *, scenario: Path | None = None, speedup: float = 6.0, duration: float | None = None,
              db: Path | None = None, tick: float = 0.1, pace: bool = True, status_every: float = 30.0,
              transport: str = "opcua") -> DemoResult:
-    """Run the demo; returns what was raised and where the history went."""
-    scenario = scenario or DEFAULT_SCENARIO
+    """Run the demo; returns what was raised and where the history went.
+
+    ``scenario`` is a scenario file, or the name of a shipped one (``"cof-drop"``,
+    ``"scenarios/cof-drop.toml"``); by default the shipped demo scenario.
+    """
+    scenario = scenario_file(scenario)
     sc, cfg_path = load_scenario(scenario)
     line = load_line(cfg_path)
     sim = SimulatedLine(line, sc)
@@ -62,6 +66,21 @@ def run_demo(console: Console, *, scenario: Path | None = None, speedup: float =
         return _demo_direct(console, sim, line, scenario, total, speedup, db, tick, pace, status_every)
     finally:
         tmp.cleanup()
+
+
+def scenario_file(scenario: str | Path | None) -> Path:
+    """The scenario to run: an existing file as given, else a shipped example of that name, else ``scenario``.
+
+    A name that is neither is returned as a path, so loading it reports the missing file.
+    """
+    if scenario is None:
+        return example_path(DEFAULT_SCENARIO)
+    if Path(scenario).exists():
+        return Path(scenario)
+    try:
+        return example_path(str(scenario))
+    except ExampleError:
+        return Path(scenario)
 
 
 def _banner(console: Console, line_name: str, plant: str, name: str, total: float, speedup: float, db: Path,

@@ -18,10 +18,9 @@ from typing import Any
 from spanwatch.connectors.opcua_server import FeedServer
 from spanwatch.monitor import units as U
 from spanwatch.monitor.config import parse_config
+from spanwatch.monitor.examples import example_path
 from spanwatch.monitor.line import build_line
 from spanwatch.monitor.simline import SimulatedLine
-
-EXAMPLE_CONFIG = Path(__file__).resolve().parent.parent / "config" / "quillmere-q2.toml"
 
 
 class SimLineServer(FeedServer):
@@ -46,7 +45,7 @@ def _toml_value(value: Any) -> str:
 _TAG_HEADER = re.compile(r'^\[tags\."(?P<name>[^"]+)"\]\s*$')
 
 
-def opcua_line_config(endpoint: str, *, base: str | Path = EXAMPLE_CONFIG, source: str = "plc",
+def opcua_line_config(endpoint: str, *, base: str | Path | None = None, source: str = "plc",
                       namespace_index: int = 2, publishing_interval: str = "100 ms", queue_size: int = 50,
                       **source_options: Any) -> str:
     """The example line (``base``, by default config/quillmere-q2.toml) read from an OPC UA server.
@@ -57,7 +56,7 @@ def opcua_line_config(endpoint: str, *, base: str | Path = EXAMPLE_CONFIG, sourc
     ``address = "ns=<namespace_index>;s=<tag name>"``, the node ids :class:`SimLineServer` serves.
     Everything else is the base file, verbatim. The result is validated before it is returned.
     """
-    text = Path(base).read_text(encoding="utf-8")
+    text = Path(base if base is not None else example_path("quillmere-q2.toml")).read_text(encoding="utf-8")
     options: dict[str, Any] = {
         "kind": "opcua", "endpoint": endpoint, "security_policy": "None", "security_mode": "None",
         "publishing_interval": publishing_interval, "queue_size": queue_size, "watchdog_interval": "1 s",

@@ -10,6 +10,10 @@ conversion tables; spanwatch adds three names the trade uses:
 * ``fpm`` — feet per minute (exactly 0.00508 m/s), and ``mpm`` — metres per minute,
 * ``mil`` — a thousandth of an inch (25.4 um). pint defines ``mil`` as an angle;
   spanwatch never takes an angle in mils, so the word is read as ``thou``.
+
+The registry is built on first use (:func:`ureg`), not at import: building it takes
+about a fifth of a second, which a command that never converts a unit (``--help``,
+``--version``) should not pay. ``UREG`` is still available as a module attribute.
 """
 
 from __future__ import annotations
@@ -18,13 +22,29 @@ import math
 import re
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import TYPE_CHECKING, Any
 
-import pint
+if TYPE_CHECKING:
+    import pint
 
-UREG = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
-UREG.define("pli = lbf / inch")
-UREG.define("fpm = foot / minute")
-UREG.define("mpm = meter / minute")
+
+@lru_cache(maxsize=1)
+def ureg() -> pint.UnitRegistry:
+    """spanwatch's unit registry: pint's defaults plus ``pli``, ``fpm`` and ``mpm``, built once on first use."""
+    import pint
+
+    reg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+    reg.define("pli = lbf / inch")
+    reg.define("fpm = foot / minute")
+    reg.define("mpm = meter / minute")
+    return reg
+
+
+def __getattr__(name: str) -> Any:  # module attribute hook (PEP 562): UREG, built on first use
+    if name == "UREG":
+        return ureg()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 _MIL = re.compile(r"\bmils?\b")
 
@@ -39,7 +59,7 @@ class Kind:
 
     @property
     def dimensionality(self) -> pint.util.UnitsContainer:
-        return UREG.parse_units(self.si_unit).dimensionality
+        return ureg().parse_units(self.si_unit).dimensionality
 
 
 LENGTH = Kind("length", "m", '"76 mm", "3 in" or "1.2 mil"')
@@ -86,7 +106,7 @@ def _normalise(text: str) -> str:
 def parse_unit(text: str) -> pint.Unit:
     """Parse a unit name such as ``"N"``, ``"pli"`` or ``"m/min"`` (spanwatch's registry)."""
     try:
-        return UREG.parse_units(_normalise(text))
+        return ureg().parse_units(_normalise(text))
     except Exception as exc:  # pint raises several exception types for bad input
         raise UnitError(f"expected a unit such as 'N', 'pli', 'm/min' or 'rpm', got {text!r}") from exc
 
@@ -130,13 +150,16 @@ def to_si(value: object, kind: Kind, *, default_unit: str | None = None) -> floa
         value = f"{value} {default_unit}"
     if not isinstance(value, str):
         raise UnitError(f"expected {kind.name} such as {kind.example}, got {value!r}")
+    import pint
+
+    reg = ureg()
     text = _normalise(value)
     try:
-        q = UREG.Quantity(text)
+        q = reg.Quantity(text)
     except Exception as exc:
         raise UnitError(f"expected {kind.name} such as {kind.example}, got {value!r}") from exc
     if not isinstance(q, pint.Quantity):
-        q = UREG.Quantity(float(q), "")
+        q = reg.Quantity(float(q), "")
     if str(q.units) == "dimensionless" and kind is not DIMENSIONLESS:  # a bare number inside a string
         raise UnitError(f"expected {kind.name} with a unit such as {kind.example}, got the bare number {value!r}")
     try:
@@ -154,7 +177,7 @@ def to_si(value: object, kind: Kind, *, default_unit: str | None = None) -> floa
 
 
 def _hertz_scale(q: pint.Quantity) -> float:
-    return float(UREG.Quantity(1.0, q.units).to("Hz").magnitude)
+    return float(ureg().Quantity(1.0, q.units).to("Hz").magnitude)
 
 
 def _unit_is_rotation(q: pint.Quantity) -> bool:
@@ -177,12 +200,13 @@ def from_si(value: float, unit: str) -> float:
     u = parse_unit(unit)
     if _is_hertz(unit):
         return float(value)
-    base = UREG.Quantity(1.0, u).to_base_units()
+    reg = ureg()
+    base = reg.Quantity(1.0, u).to_base_units()
     kind = unit_kind(unit)
     if kind is ROTATION:
-        return float(UREG.Quantity(value, "turn/s").to(u).magnitude)
+        return float(reg.Quantity(value, "turn/s").to(u).magnitude)
     if kind is not None and kind.si_unit:
-        return float(UREG.Quantity(value, kind.si_unit).to(u).magnitude)
+        return float(reg.Quantity(value, kind.si_unit).to(u).magnitude)
     return float(value / base.magnitude)
 
 
