@@ -15,7 +15,7 @@ million frames never stops at one NaN, a zero speed or a negative tension.
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from enum import IntEnum
 from typing import TYPE_CHECKING, ClassVar, Protocol, runtime_checkable
 
@@ -150,7 +150,7 @@ class CheckResult:
         return self.reason == _OK
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class AlarmSettings:
     """What a user may set per check kind and per object (``[checks.KIND]`` and its ``overrides``).
 
@@ -160,33 +160,7 @@ class AlarmSettings:
     (ANSI/ISA-18.2-2016, master alarm database; from memory).
     """
 
-    enabled: bool
-    warning: float | None
-    alarm: float
-    deadband: float
-    on_delay: float
-    off_delay: float
-    priority: str
-    warning_priority: str
-    cause: str
-    consequence: str
-    action: str
-    response_time: float
-
-    def limit(self, level: str) -> float | None:
-        """The limit of ``level`` ("warning" or "alarm")."""
-        return self.warning if level == "warning" else self.alarm
-
-    def level_priority(self, level: str) -> str:
-        return self.warning_priority if level == "warning" else self.priority
-
-
-@dataclass(frozen=True)
-class AlarmDefaults:
-    """A check kind's default alarm settings and rationalization (config may override each)."""
-
-    direction: str  # "high": alarm when value >= limit; "low": value <= limit; "abs": |value| >= limit
-    unit: str  # how the value reads to a person: "share of safe capacity", "%", "x band", "flag"
+    enabled: bool = True
     warning: float | None
     alarm: float
     deadband: float
@@ -199,12 +173,26 @@ class AlarmDefaults:
     action: str
     response_time: float = 60.0
 
+    def limit(self, level: str) -> float | None:
+        """The limit of ``level`` ("warning" or "alarm")."""
+        return self.warning if level == "warning" else self.alarm
+
+    def level_priority(self, level: str) -> str:
+        return self.warning_priority if level == "warning" else self.priority
+
+
+@dataclass(frozen=True, kw_only=True)
+class AlarmDefaults(AlarmSettings):
+    """A check kind's default alarm settings and rationalization (config may override each), with what no config
+    changes: ``direction`` ("high": alarm when value >= limit; "low": value <= limit; "abs": |value| >= limit) and
+    ``unit`` (how the value reads to a person: "share of safe capacity", "%", "x band", "flag")."""
+
+    direction: str
+    unit: str
+
     def settings(self) -> AlarmSettings:
         """The defaults as settings a config may override."""
-        return AlarmSettings(
-            enabled=True, warning=self.warning, alarm=self.alarm, deadband=self.deadband, on_delay=self.on_delay,
-            off_delay=self.off_delay, priority=self.priority, warning_priority=self.warning_priority,
-            cause=self.cause, consequence=self.consequence, action=self.action, response_time=self.response_time)
+        return AlarmSettings(**{f.name: getattr(self, f.name) for f in fields(AlarmSettings)})
 
 
 @runtime_checkable
