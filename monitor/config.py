@@ -77,6 +77,11 @@ class LineSection(Strict):
     encoder_ratio_tolerance: Fraction = 1e-4
     check_window: PosDuration = 2.0
     roll_settle_time: Duration = 10.0
+    max_gap: PosDuration = Field(
+        default=30.0, description="a longer stretch without any sample is a gap: frames skip it and the checks "
+                                  "start afresh")
+    future_horizon: PosDuration = Field(
+        default=60.0, description="a sample further than this beyond its source's newest time is refused")
 
 
 class MaterialSection(Strict):
@@ -223,9 +228,15 @@ class DaemonSection(Strict):
     history: str = "sqlite:///spanwatch.db"
     http: str = "127.0.0.1:9108"
     latency: PosDuration = Field(
-        default=0.02, description="how far behind the clock frames are computed, on top of the delivery delay "
-                                  "the daemon observes (which follows e.g. an OPC UA publishing interval)")
-    max_latency: PosDuration = 10.0
+        default=0.1, description="how far behind the newest source time frames are computed: a sample arriving "
+                                 "up to this much out of step with the others is folded into its frame")
+    lost_after: PosDuration = Field(
+        default=5.0, description="a source that delivers nothing for this long is lost: frames go on without it")
+    delay_limit: PosDuration = Field(
+        default=30.0, description="a source whose newest time is further behind the wall clock is delayed")
+    degraded_rate: Fraction = Field(
+        default=0.01, description="share of samples refused, late or lost over the last minute that makes the "
+                                  "status degraded")
     tick: PosDuration = 0.05
     startup_grace: Duration = 10.0
     log_level: Literal["debug", "info", "warning", "error"] = "info"

@@ -277,12 +277,15 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                 length_accuracy=tags[sec.length_tag].accuracy if sec.length_tag else none,
                 runout_check=sec.runout_check)
     computed = {f"diameter/{w.id}" for w in winders.values() if not w.has_diameter_sensor and w.has_rpm}
+    only = next(iter(cfg.sources)) if len(cfg.sources) == 1 else None
+    source_of = {n: (t.source or only) for n, t in cfg.tags.items()}
     return LineModel(
         name=lw.name, settings=settings, material=material, path=path, rollers=rollers, winders=winders,
         zones=zones, tags={n: Tag(name=n, low=t.low, high=t.high, sample_period=t.sample_period,
                                   stale_after=t.stale_after, frozen_after=t.frozen_after,
-                                  frozen_tolerance=t.frozen_tolerance) for n, t in tags.items()},
-        signals=frozenset({s.name for s in signals} | computed))
+                                  frozen_tolerance=t.frozen_tolerance, source=source_of.get(n))
+              for n, t in tags.items()},
+        signals=frozenset({s.name for s in signals} | computed), sources=tuple(cfg.sources))
 
 
 class _Errors:
