@@ -176,7 +176,18 @@ class _Bytes:
 _DIGITS = [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18]  # YYYY-MM-DDTHH:MM:SS
 
 
+_ISO_SLICE = 32_768  # rows per pass of the vectorised parser: bounds its temporary arrays (a few MB)
+
+
 def _iso_fast(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_iso_slice` over slices of the column."""
+    if len(col) <= _ISO_SLICE:
+        return _iso_slice(col)
+    parts = [_iso_slice(col[i:i + _ISO_SLICE]) for i in range(0, len(col), _ISO_SLICE)]
+    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+
+
+def _iso_slice(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
     """Vectorised ``YYYY-MM-DD[T ]HH:MM:SS[.f{1,6}](Z|+HH:MM|-HH:MM)``; (epoch seconds, ok).
 
     Rows not of exactly this form are not ok (the caller parses them one by one with
