@@ -229,7 +229,8 @@ class Daemon:
             "active_alarms": [p.key for p in self.pipe.engine.active()],
             "connectors": {c.name: {"kind": c.kind, "state": c.state, "samples_in": c.stats.samples_in,
                                     "reconnects": c.stats.reconnects, "malformed": c.stats.malformed_total,
-                                    "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error}
+                                    "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error,
+                                    "lost": dict(c.stats.lost), "publisher_restarts": c.stats.publisher_restarts}
                            for c in self.connectors},
             "input_issues": {f"{r['tag']}: {r['reason']}": r["count"] for r in self.pipe.inputs.rows()},
         }

@@ -107,6 +107,9 @@ class MqttSource(Strict):
     value_path: str = "value"
     time_path: str | None = "time"
     quality_path: str | None = "quality"
+    seq_path: str | None = Field(
+        default=None, description="where a JSON payload carries its publisher's sequence number for the topic, e.g. "
+                                  "\"seq\": lost messages are counted from its jumps")
     time_unit: Literal["s", "ms", "iso"] = "s"
     max_payload: int = Field(default=65536, ge=16)
     queue_size: int = Field(default=100_000, ge=100)
@@ -115,6 +118,13 @@ class MqttSource(Strict):
     active_topic: str | None = None
     reconnect_min: PosDuration = 0.5
     reconnect_max: PosDuration = 30.0
+
+    @model_validator(mode="after")
+    def _seq_path(self) -> MqttSource:
+        if self.seq_path is not None and self.payload != "json":
+            raise ValueError("expected seq_path only with payload = \"json\" (a number payload has no sequence "
+                             "number)")
+        return self
 
 
 def mqtt_settings(spec: MqttSource) -> MqttSettings:
@@ -170,8 +180,11 @@ def _mqtt(name: str, spec: MqttSource, line: Line, sink: Sink) -> LiveConnector:
     from spanwatch.connectors.mqtt import MqttConnector
     from spanwatch.monitor.config import mqtt_settings
 
-    tags = {n: t.address for n, t in line.tags_of_source(name).items()}
-    return MqttConnector(name, mqtt_settings(spec), tags, sink)
+    mine = line.tags_of_source(name)
+    tags = {n: t.address for n, t in mine.items()}
+    # time gaps count as lost messages only for tags whose sample period the config states
+    periods = {n: t.sample_period for n, t in mine.items() if "sample_period" in t.model_fields_set}
+    return MqttConnector(name, mqtt_settings(spec), tags, sink, periods=periods)
 
 
 def _simulated(name: str, spec: SimulatedSource, line: Line, sink: Sink) -> LiveConnector:
