@@ -5,11 +5,15 @@ their samples through the pipeline and computes frames up to ``clock() - latency
 (so a tag that stops updating goes stale on time even when nothing arrives), and a
 small HTTP server on localhost with ``/healthz`` and Prometheus ``/metrics``.
 
-Alarms are committed to the history at every tick that has transitions (SQLite in
-WAL mode or PostgreSQL), so a crash or ``kill -9`` loses nothing committed; on the
-next start, alarms left open by the previous run are restored as active, so the
-restart carries on instead of raising them again. SIGTERM and SIGINT stop the
-connectors, process what has arrived, close the run and the database.
+Alarms go to the history through a writer thread (``connectors/history/writer.py``), so the
+event loop never waits for the database: each tick's transitions are committed in one
+transaction (SQLite in WAL mode or PostgreSQL), and while the database is unavailable
+(locked, full, read-only, down) they wait in a spool on disk, in order, and are written
+when it returns; ``/healthz`` says ``degraded`` meanwhile. One daemon writes a line into a
+history (a writer lock); on the next start, what the spool holds is written first, then
+alarms left open by the previous run are restored as active, so the restart carries on
+instead of raising them again. SIGTERM and SIGINT stop the connectors, process what has
+arrived, close the run, the writer and the database.
 """
 
 from __future__ import annotations
@@ -24,10 +28,12 @@ import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
+from spanwatch.connectors.history.writer import open_writer
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
@@ -69,16 +75,29 @@ class Daemon:
         self.frame_latency = latency
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
-        self.history = History(history_url or d.history)
-        self.history.start_run(mode=mode, line_name=line.name, config_file=line.file, config_hash=line.config_hash,
-                               source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
-        self.pipe = Pipeline(line, self.history, on_transition=on_transition)
-        restored = carry_on_open_alarms(self.history, self.pipe.engine)
-        if restored:
-            log.info("carrying on %d alarm(s) left active by the previous run", restored)
-        self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
-        self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
-        self.publishers = self._publishers()
+        # the history: schema, writer lock of the line, spool (and what a killed run left in it), before any run
+        self.writer = open_writer(history_url or d.history, line_name=line.name, spool_folder=d.spool or None,
+                                  default_spool_folder=Path(line.file).resolve().parent / ".spanwatch-spool",
+                                  spool_max=d.spool_max, timeout=d.history_timeout, lock_timeout=d.lock_timeout)
+        self.history = self.writer.history
+        try:
+            self.history.start_run(mode=mode, line_name=line.name, config_file=line.file,
+                                   config_hash=line.config_hash,
+                                   source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
+            dead = self.history.interrupt_dead_runs()
+            if dead:
+                log.info("run(s) %s of this line ended without closing (killed): marked interrupted",
+                         ", ".join(map(str, dead)))
+            self.pipe = Pipeline(line, self.writer, on_transition=on_transition)
+            restored = carry_on_open_alarms(self.history, self.pipe.engine)
+            if restored:
+                log.info("carrying on %d alarm(s) left active by the previous run", restored)
+            self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
+            self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
+            self.publishers = self._publishers()
+        except BaseException:
+            self.writer.close()  # releases the writer lock: a failed start does not block the next one
+            raise
         self.stats = TickStats()
         self.stopping = asyncio.Event()
         self.registry = CollectorRegistry()
@@ -100,9 +119,14 @@ class Daemon:
 
     async def run(self) -> None:
         """Run until :meth:`request_stop` (or SIGTERM / SIGINT when installed)."""
+        self.writer.start()
         self.pipe.aligner.start_at(self.clock(), grace=self.line.config.daemon.startup_grace)
         if self.http:
-            await self._start_http()
+            try:
+                await self._start_http()
+            except BaseException:
+                await asyncio.to_thread(self.writer.close)
+                raise
         for p in self.publishers:
             p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
@@ -124,7 +148,7 @@ class Daemon:
                 p.stop()
             if self._http is not None:
                 await self._http.close()
-            self.history.close()
+            await asyncio.to_thread(self.writer.close)  # writes what is queued (or spools it); off the event loop
 
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
@@ -181,9 +205,14 @@ class Daemon:
         now = time.time()
         fresh = now - self.stats.last_tick_wall < max(5.0, 20 * self.tick)
         up = [c for c in self.connectors if c.state == "connected"]
-        healthy = fresh and (bool(up) or not self.connectors)
+        history = self.writer.status()
+        reasons = [] if history["state"] == "ok" else [
+            f"history {history['state']} ({history['reason']}): {history['spooled']} record(s) spooled, "
+            f"{history['lost']} lost"]
+        healthy = fresh and (bool(up) or not self.connectors) and not reasons
         return {
             "status": "ok" if healthy else "degraded",
+            "reasons": reasons,
             "line": self.line.name,
             "line_state": None if self.pipe.line_state is None else int(self.pipe.line_state),
             "frames": self.pipe.frames,
@@ -195,6 +224,7 @@ class Daemon:
                                     "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error}
                            for c in self.connectors},
             "input_issues": {f"{r['tag']}: {r['reason']}": r["count"] for r in self.pipe.inputs.rows()},
+            "history": history,
         }
 
     async def _start_http(self) -> None:

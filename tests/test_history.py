@@ -34,12 +34,13 @@ from spanwatch.connectors.history import (
     query_episodes,
     sqlite_url,
 )
+from spanwatch.connectors.history.errors import RecordRefused
 from spanwatch.connectors.history.models import AlarmEpisode, Base, Level, Priority, Run, RunMode
 from spanwatch.connectors.history.schema import alembic_config, head, migration_connection
 from spanwatch.rules.alarms import LEVELS, AlarmEngine, AlarmPoint, Transition
 from spanwatch.rules.base import CheckResult, LineState
 from sqlalchemy import MetaData, String, inspect, select, text
-from sqlalchemy.exc import IntegrityError, StatementError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 REPO = Path(__file__).resolve().parents[1]
@@ -447,11 +448,11 @@ def test_closed_sets_refuse_an_unknown_value(db_url):
         h.start_run(mode="test", line_name="l", config_file="f", config_hash="h")
     run = h.start_run(mode="replay", line_name="l", config_file="f", config_hash="h")
     # by the ORM, before any statement: the whole transaction is refused, its valid raise with it
-    with pytest.raises(StatementError, match="acknowledge"):
+    with pytest.raises(RecordRefused, match="acknowledge"):
         h.record([Transition(T0, SLIP, "raise", 1.0, RUNNING), Transition(T0 + 1, SLIP, "acknowledge", 1.0, RUNNING)])
-    with pytest.raises(StatementError, match="urgent"):
+    with pytest.raises(RecordRefused, match="urgent"):
         h.record([Transition(T0, point("slip", "idler_3", "alarm", "urgent", 0.05), "raise", 1.0, RUNNING)])
-    with pytest.raises(StatementError, match="critical"):
+    with pytest.raises(RecordRefused, match="critical"):
         h.record([Transition(T0, point("slip", "idler_3", "critical", "high", 0.05), "raise", 1.0, RUNNING)])
     h.close()
     assert _query(db_url) == []
