@@ -75,6 +75,9 @@ def classify(exc: BaseException, url: str | URL, *, timeout: float | None = None
             or "canceling statement due to lock timeout" in low:
         return HistoryUnavailable(f"{db}: locked by another process{waited}; try again when it is done, or "
                                   "find the process that holds it")
+    if "statement timeout" in low:
+        return HistoryUnavailable(f"{db}: the database did not answer within {timeout:g} s" if timeout is not None
+                                  else f"{db}: the database did not answer in time")
     if "disk is full" in low or "no space left" in low or "could not extend file" in low:
         return HistoryUnavailable(f"{db}: the disk is full; free space on it")
     if "readonly database" in low or "read-only file system" in low or "read-only transaction" in low:

@@ -80,13 +80,15 @@ def migration_connection(engine: Engine) -> Iterator[Connection]:
     SQLite: the driver is put in autocommit mode so the transaction is ours (``BEGIN IMMEDIATE``, and
     every DDL statement inside it: the driver would otherwise run DDL outside any transaction), with foreign keys
     off while Alembic's batch mode re-creates tables that others refer to (:func:`upgrade` checks them).
-    PostgreSQL: DDL is transactional; a transaction-level advisory lock per schema serialises openers.
+    PostgreSQL: DDL is transactional; a transaction-level advisory lock per schema serialises openers (a second
+    waits at most the engine's ``lock_timeout``), and the migration itself has no statement timeout.
     """
     if engine.dialect.name != "sqlite":
         with engine.connect() as conn, conn.begin():
             if engine.dialect.name == "postgresql":
                 conn.execute(text("select pg_advisory_xact_lock(hashtext('spanwatch history '"
                                   " || coalesce(current_schema(), '')))"))
+                conn.execute(text("SET LOCAL statement_timeout = 0"))  # a migration takes what it takes
             yield conn
         return
     with engine.connect() as base:

@@ -65,8 +65,8 @@ def spool_path(url: str, line_name: str, folder: str | Path | None = None,
     In ``folder`` when given; else beside a SQLite database file, else in ``default_folder``. The name is the
     database's (a SQLite file's name, or the backend and a hash of the URL without password) and the line's.
 
-    >>> spool_path("sqlite:////var/lib/spanwatch/q2.db", "Q2 film rewinder").name[:25]
-    'q2.db.Q2-film-rewinder-0b'
+    >>> spool_path("sqlite:////var/lib/spanwatch/q2.db", "Q2 film rewinder").name
+    'q2.db.Q2-film-rewinder-78ff.spool'
     >>> str(spool_path("sqlite:////var/lib/spanwatch/q2.db", "Q2").parent)
     '/var/lib/spanwatch'
     """
@@ -308,8 +308,8 @@ class HistoryWriter:
         self._backoff = 0.5
         if self._state != OK:
             down = self.clock() - self._since
-            log.warning("history recovered after %.0f s: wrote %d buffered record(s); %d lost while it was "
-                        "unavailable", down, n, self.lost)
+            log.warning("history recovered after %.0f s: wrote %d buffered record(s) (%d transition(s) lost so far)",
+                        down, n, self.lost)
             self._set(OK, "")
 
     def _retry_later(self) -> None:
@@ -419,25 +419,25 @@ def open_writer(url: str, *, line_name: str, spool_folder: str | Path | None = N
         if lock.took_over:
             log.warning("took over the writer lock of line %r from %s", line_name, lock.took_over)
         path = spool_path(url, line_name, spool_folder, default_spool_folder)
-        try:
-            spool = Spool(path, spool_max)
-        except SpoolBusy as exc:
-            raise HistoryError(str(exc)) from None
-        except OSError as exc:
-            raise HistoryError(f"{path}: cannot create the history spool ({exc.strerror or exc}); set [daemon] spool "
-                               "to a folder this user can write") from None
+        spool, others = _open_spools(path, spool_max)
         if not spool.reserved:
             log.warning("history spool %s: could not reserve its %d bytes (%s); a full disk can refuse it",
-                        path, spool.capacity, spool.reserve_error)
-        if spool.count:
-            left = spool.count
-            try:
-                n = drain_spool(history, spool)
-            except HistoryError as exc:
-                raise HistoryError(f"{path}: holds {left} record(s) a previous run could not write, and they cannot "
-                                   f"be written now: {exc}") from None
-            log.warning("wrote %d record(s) a previous run left in the history spool %s", n, path)
-            history.run_id = None
+                        spool.path, spool.capacity, spool.reserve_error)
+        for sp in [spool, *others]:  # what earlier runs could not write, before anything of this run
+            if sp.count:
+                left = sp.count
+                try:
+                    n = drain_spool(history, sp)
+                except HistoryError as exc:
+                    for o in others:
+                        o.close()
+                    raise HistoryError(f"{sp.path}: holds {left} record(s) a previous run could not write, and they "
+                                       f"cannot be written now: {exc}") from None
+                log.warning("wrote %d record(s) a previous run left in the history spool %s", n, sp.path)
+                history.run_id = None
+        for o in others:
+            o.path.unlink(missing_ok=True)
+            o.close()
         return HistoryWriter(history, spool, lock, retry_max=retry_max, heartbeat=max(0.2, lock_timeout / 4))
     except BaseException:
         if spool is not None:
@@ -447,3 +447,40 @@ def open_writer(url: str, *, line_name: str, spool_folder: str | Path | None = N
                 lock.release()
         history.close()
         raise
+
+
+ALTERNATES = 8
+
+
+def _open_spools(path: Path, capacity: int) -> tuple[Spool, list[Spool]]:
+    """This writer's spool, and the other spools of the line that no process holds (to be written and removed).
+
+    The spool is ``path``; while a hung writer whose lock was taken over still holds it, an alternate
+    ``<name>.<n>.spool`` beside it. Every spool of the line that no process holds open is returned too, so a start
+    writes what any earlier writer left.
+    """
+    mine: Spool | None = None
+    others: list[Spool] = []
+    stem = path.name.removesuffix(".spool")
+    candidates = [path, *(path.with_name(f"{stem}.{k}.spool") for k in range(1, ALTERNATES + 1))]
+    try:
+        for p in candidates:
+            if mine is not None and not p.exists():
+                continue
+            try:
+                sp = Spool(p, capacity)
+            except SpoolBusy:
+                continue
+            if mine is None:
+                mine = sp
+            else:
+                others.append(sp)
+    except OSError as exc:
+        for sp in [*([mine] if mine else []), *others]:
+            sp.close()
+        raise HistoryError(f"{path}: cannot create the history spool ({exc.strerror or exc}); set [daemon] spool to "
+                           "a folder this user can write") from None
+    if mine is None:
+        raise HistoryError(f"{path}: this spool and its {ALTERNATES} alternates are open in other processes (other "
+                           "spanwatch daemons of this line and history, hung or stopped)")
+    return mine, others
