@@ -90,14 +90,14 @@ class Daemon:
                          ", ".join(map(str, dead)))
             self.pipe = Pipeline(line, self.writer, on_transition=on_transition)
             restored = carry_on_open_alarms(self.history, self.pipe.engine)
-            if restored:
-                log.info("carrying on %d alarm(s) left active by the previous run", restored)
-            self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
-            self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
-            self.publishers = self._publishers()
         except BaseException:
             self.writer.close()  # releases the writer lock: a failed start does not block the next one
             raise
+        if restored:
+            log.info("carrying on %d alarm(s) left active by the previous run", restored)
+        self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
+        self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
+        self.publishers = self._publishers()
         self.stats = TickStats()
         self.stopping = asyncio.Event()
         self.registry = CollectorRegistry()

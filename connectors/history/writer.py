@@ -233,6 +233,7 @@ class HistoryWriter:
             except Exception as exc:  # a defect must not stop the thread that keeps the alarms
                 log.exception("history writer: unexpected error")
                 self.last_error = f"{type(exc).__name__}: {exc}"
+                self._retry_later()
         try:
             if self.spool.count:
                 self._drain()
@@ -298,8 +299,8 @@ class HistoryWriter:
                 self._retry_later()
                 return
             n = drain_spool(self.history, self.spool, refused=self._refuse_seq)
-            if self.history.run_id != self.run_id and self.run_id is not None:
-                self.history.resume(self.run_id)
+            if self.run_id is not None and (self.history.run_id != self.run_id or self._state != OK):
+                self.history.resume(self.run_id)  # and what is open, as the database has it now
         except HistoryError as exc:
             self._unavailable(exc)
             self._retry_later()
