@@ -396,7 +396,8 @@ def demo_cmd(
         err_console.print(f"--transport: expected opcua or direct, got {transport!r}")
         raise typer.Exit(2)
     try:
-        run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
+        with history_errors(str(db) if db is not None else "the demo's history"):
+            run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
     except ConfigError as exc:
         fail_config(exc)
 
