@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -20,6 +21,7 @@ from spanwatch import __version__
 if TYPE_CHECKING:
     from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.line import Line
+    from sqlalchemy.engine import Engine
 
 app = typer.Typer(
     name="spanwatch",
@@ -225,12 +227,46 @@ def _db_url(db: str) -> str:
     return db if "://" in db else f"sqlite:///{db}"
 
 
+@contextlib.contextmanager
+def history_errors(db: str, timeout: float | None = None) -> Iterator[None]:
+    """Any failure of the history ``db`` inside (opening, reading, writing, its lock): one line, exit 2.
+
+    The line names the database (password hidden) and says what is wrong: no such file, unreadable,
+    read-only, locked by another process beyond the timeout, corrupt or not a database, another program's
+    database, a schema revision this version does not know, another daemon writing the line.
+    """
+    from spanwatch.connectors.history.errors import HistoryError, classify
+    from sqlalchemy.exc import SQLAlchemyError
+
+    try:
+        yield
+    except HistoryError as exc:
+        err_console.print(str(exc), highlight=False, markup=False, soft_wrap=True)
+        raise typer.Exit(2) from None
+    except SQLAlchemyError as exc:
+        err_console.print(str(classify(exc, _db_url(db), timeout=timeout)), highlight=False, markup=False,
+                          soft_wrap=True)
+        raise typer.Exit(2) from None
+
+
+def open_history_reader(db: str, timeout: float) -> Engine:
+    """The history ``db`` opened to read (nothing in it changes), or one line and exit 2."""
+    from spanwatch.connectors.history import open_reader
+
+    with history_errors(db, timeout):
+        return open_reader(_db_url(db), timeout=timeout)
+
+
+DB_TIMEOUT = "Seconds to wait for a database another process holds locked, then give up (exit 2)."
+
+
 @app.command("replay")
 def replay_cmd(
     recording: Annotated[Path, typer.Argument(help="Recording (CSV long form: time,tag,value,quality; .gz ok).")],
     config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration (TOML).")],
     db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
     progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 30.0,
 ) -> None:
     """Run a recording through the checks as fast as the CPU allows; alarms go to the history database."""
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn, TransferSpeedColumn
@@ -245,7 +281,9 @@ def replay_cmd(
     with bar:
         task = bar.add_task("replay", total=recording.stat().st_size)
         try:
-            summary = replay(line, recording, _db_url(db), progress=lambda pos, tot: bar.update(task, completed=pos))
+            with history_errors(db, db_timeout):
+                summary = replay(line, recording, _db_url(db), timeout=db_timeout,
+                                 progress=lambda pos, tot: bar.update(task, completed=pos))
         except ValueError as exc:
             err_console.print(str(exc), highlight=False)
             raise typer.Exit(2) from None
@@ -274,6 +312,7 @@ def alarms_cmd(
     until: Annotated[str | None, typer.Option(help="Raised before this ISO 8601 time.")] = None,
     active: Annotated[bool, typer.Option("--active", help="Only alarms not yet cleared.")] = False,
     fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
+    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
 ) -> None:
     """List alarms from a history database, with filters."""
     import csv
@@ -281,7 +320,7 @@ def alarms_cmd(
     from datetime import datetime
 
     from rich.table import Table
-    from spanwatch.connectors.history import make_engine, query_episodes
+    from spanwatch.connectors.history import query_episodes
     from spanwatch.monitor.present import fmt_value
 
     if fmt not in ("table", "csv", "json"):
@@ -301,12 +340,12 @@ def alarms_cmd(
             raise typer.Exit(2)
         return dt.timestamp()
 
-    url = _db_url(db)
-    if url.startswith("sqlite:///") and not Path(url.removeprefix("sqlite:///")).exists():
-        err_console.print(f"{db}: no such database")
-        raise typer.Exit(2)
-    rows = query_episodes(make_engine(url), run_id=run, kind=check, object_id=obj, priority=priority, level=level,
-                          since=when(since, "--since"), until=when(until, "--until"), active_only=active)
+    since_t, until_t = when(since, "--since"), when(until, "--until")
+    engine = open_history_reader(db, db_timeout)
+    with history_errors(db, db_timeout):
+        rows = query_episodes(engine, run_id=run, kind=check, object_id=obj, priority=priority, level=level,
+                              since=since_t, until=until_t, active_only=active)
+    engine.dispose()
     cols = ["raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
             "unit", "line_state", "run", "config_hash"]
     if fmt == "json":
@@ -357,7 +396,8 @@ def demo_cmd(
         err_console.print(f"--transport: expected opcua or direct, got {transport!r}")
         raise typer.Exit(2)
     try:
-        run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
+        with history_errors(str(db) if db is not None else "the demo's history"):
+            run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
     except ConfigError as exc:
         fail_config(exc)
 
@@ -387,7 +427,8 @@ def run_cmd(
         logging.getLogger("asyncua").setLevel(logging.CRITICAL)
     logging.getLogger("spanwatch").info("spanwatch %s monitoring %s; %s", __version__, line.name, SAFETY_NOTE)
     try:
-        asyncio.run(run_daemon(line, history_url=_db_url(db) if db else None, http=http))
+        with history_errors(db or line.config.daemon.history, line.config.daemon.history_timeout):
+            asyncio.run(run_daemon(line, history_url=_db_url(db) if db else None, http=http))
     except OSError as exc:
         err_console.print(f"cannot start: {exc}", highlight=False, markup=False)
         raise typer.Exit(1) from None

@@ -16,12 +16,13 @@ from __future__ import annotations
 
 import math
 import os
+import re
 import stat
 import tomllib
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, Field, ValidationError, model_validator
+from pydantic import AfterValidator, BeforeValidator, Field, ValidationError, model_validator
 from spanwatch.monitor import units as U
 from spanwatch.monitor.schema import (
     ID_PATTERN,
@@ -285,10 +286,49 @@ class CheckSection(AlarmOverride):
 
 
 
+_BYTES = {"b": 1, "kb": 10**3, "kib": 2**10, "mb": 10**6, "mib": 2**20, "gb": 10**9, "gib": 2**30}
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([A-Za-z]*)\s*$")
+
+
+def _size(value: Any) -> int:
+    """A size in bytes: an integer, or a string such as ``"16 MiB"`` (B, kB, KiB, MB, MiB, GB, GiB); at least 64 KiB.
+
+    >>> _size("16 MiB"), _size("1 MB"), _size(65536)
+    (16777216, 1000000, 65536)
+    """
+    if isinstance(value, bool):
+        raise ValueError(f"expected a size such as \"16 MiB\", got {value!r}")
+    if isinstance(value, int):
+        n = value
+    else:
+        m = _SIZE.match(value) if isinstance(value, str) else None
+        unit = (m.group(2).lower() or "b") if m else ""
+        if m is None or unit not in _BYTES:
+            raise ValueError(f"expected a size such as \"16 MiB\" (B, kB, KiB, MB, MiB, GB, GiB), got {value!r}")
+        n = int(float(m.group(1)) * _BYTES[unit])
+    if not 64 * 2**10 <= n <= 2**40:
+        raise ValueError(f"expected a size from 64 KiB to 1 TiB, got {value!r}")
+    return n
+
+
+Size = Annotated[int, BeforeValidator(_size)]
+
+
 class DaemonSection(Strict):
-    """How ``spanwatch run`` runs: history, HTTP endpoint, latency allowance."""
+    """How ``spanwatch run`` runs: history (and its spool and writer lock), HTTP endpoint, latency allowance."""
 
     history: str = "sqlite:///spanwatch.db"
+    spool: str = Field(
+        default="", description="folder of the history spool, where alarms wait while the database is unavailable; "
+                                "empty: beside a SQLite database file, else .spanwatch-spool in the config file's "
+                                "folder")
+    spool_max: Size = Field(default=16 * 2**20, description="size of the spool, reserved on disk at start")
+    history_timeout: PosDuration = Field(
+        default=5.0, description="how long a history write waits for a locked or slow database before its "
+                                 "records go to the spool")
+    lock_timeout: PosDuration = Field(
+        default=60.0, description="a writer lock whose heartbeat is older than this belongs to a daemon that "
+                                  "died, and is taken over (SQLite; PostgreSQL releases it with the connection)")
     http: str = "127.0.0.1:9108"
     latency: PosDuration = Field(
         default=0.1, description="how far behind the newest source time frames are computed: a sample arriving "

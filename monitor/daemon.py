@@ -5,11 +5,15 @@ their samples through the pipeline and computes frames up to ``clock() - latency
 (so a tag that stops updating goes stale on time even when nothing arrives), and a
 small HTTP server on localhost with ``/healthz`` and Prometheus ``/metrics``.
 
-Alarms are committed to the history at every tick that has transitions (SQLite in
-WAL mode or PostgreSQL), so a crash or ``kill -9`` loses nothing committed; on the
-next start, alarms left open by the previous run are restored as active, so the
-restart carries on instead of raising them again. SIGTERM and SIGINT stop the
-connectors, process what has arrived, close the run and the database.
+Alarms go to the history through a writer thread (``connectors/history/writer.py``), so the
+event loop never waits for the database: each tick's transitions are committed in one
+transaction (SQLite in WAL mode or PostgreSQL), and while the database is unavailable
+(locked, full, read-only, down) they wait in a spool on disk, in order, and are written
+when it returns; ``/healthz`` says ``degraded`` meanwhile. One daemon writes a line into a
+history (a writer lock); on the next start, what the spool holds is written first, then
+alarms left open by the previous run are restored as active, so the restart carries on
+instead of raising them again. SIGTERM and SIGINT stop the connectors, process what has
+arrived, close the run, the writer and the database.
 """
 
 from __future__ import annotations
@@ -24,9 +28,11 @@ import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
+from spanwatch.connectors.history.writer import open_writer
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
@@ -65,16 +71,29 @@ class Daemon:
         self.frame_latency = 0.0  # how far behind the wall clock frames are computed, for the status
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
-        self.history = History(history_url or d.history)
-        self.history.start_run(mode=mode, line_name=line.name, config_file=line.file, config_hash=line.config_hash,
-                               source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
-        self.pipe = Pipeline(line, self.history, on_transition=on_transition)
-        if latency is not None:
-            self.pipe.clocks.hold = latency
-        if lost_after is not None:
-            self.pipe.clocks.lost_after = lost_after
+        # the history: schema, writer lock of the line, spool (and what a killed run left in it), before any run
+        self.writer = open_writer(history_url or d.history, line_name=line.name, spool_folder=d.spool or None,
+                                  default_spool_folder=Path(line.file).resolve().parent / ".spanwatch-spool",
+                                  spool_max=d.spool_max, timeout=d.history_timeout, lock_timeout=d.lock_timeout)
+        self.history = self.writer.history
+        try:
+            self.history.start_run(mode=mode, line_name=line.name, config_file=line.file,
+                                   config_hash=line.config_hash,
+                                   source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
+            dead = self.history.interrupt_dead_runs()
+            if dead:
+                log.info("run(s) %s of this line ended without closing (killed): marked interrupted",
+                         ", ".join(map(str, dead)))
+            self.pipe = Pipeline(line, self.writer, on_transition=on_transition)
+            if latency is not None:
+                self.pipe.clocks.hold = latency
+            if lost_after is not None:
+                self.pipe.clocks.lost_after = lost_after
+            restored = carry_on_open_alarms(self.history, self.pipe.engine)
+        except BaseException:
+            self.writer.close()  # releases the writer lock: a failed start does not block the next one
+            raise
         self._counts: deque[tuple[float, int, int]] = deque()  # (elapsed, samples seen, samples refused/late/lost)
-        restored = carry_on_open_alarms(self.history, self.pipe.engine)
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
         self.inbox: list[tuple[float, float, SampleBatch]] = []  # (elapsed and wall clock at arrival, batch)
@@ -101,10 +120,15 @@ class Daemon:
 
     async def run(self) -> None:
         """Run until :meth:`request_stop` (or SIGTERM / SIGINT when installed)."""
+        self.writer.start()
         self.pipe.aligner.start_at(self.clock(), grace=self.line.config.daemon.startup_grace)
         self.pipe.clocks.begin(self.clock(), self.elapsed())
         if self.http:
-            await self._start_http()
+            try:
+                await self._start_http()
+            except BaseException:
+                await asyncio.to_thread(self.writer.close)
+                raise
         for p in self.publishers:
             p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
@@ -126,7 +150,7 @@ class Daemon:
                 p.stop()
             if self._http is not None:
                 await self._http.close()
-            self.history.close()
+            await asyncio.to_thread(self.writer.close)  # writes what is queued (or spools it); off the event loop
 
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
@@ -207,7 +231,10 @@ class Daemon:
             state, delay = self.pipe.clocks.state(name, elapsed, wall, d.delay_limit)
             sources[name] = {"state": state, "behind_s": None if delay is None else round(delay, 3)}
         rate = self.trouble_rate()
-        reasons = []
+        history = self.writer.status()
+        reasons = [] if history["state"] == "ok" else [
+            f"history {history['state']} ({history['reason']}): {history['spooled']} record(s) spooled, "
+            f"{history['lost']} lost"]
         if not fresh:
             reasons.append("the pipeline has not run for a while")
         if self.connectors and not up:
@@ -233,6 +260,7 @@ class Daemon:
                                     "lost": dict(c.stats.lost), "publisher_restarts": c.stats.publisher_restarts}
                            for c in self.connectors},
             "input_issues": {f"{r['tag']}: {r['reason']}": r["count"] for r in self.pipe.inputs.rows()},
+            "history": history,
         }
 
     async def _start_http(self) -> None:

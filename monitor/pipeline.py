@@ -17,7 +17,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from spanwatch.connectors.history import History
+from spanwatch.connectors.history.store import HistorySink
 from spanwatch.monitor.aligner import Aligner
 from spanwatch.monitor.checkset import alarm_points, build_checks
 from spanwatch.monitor.context import ContextRecorder
@@ -58,7 +58,7 @@ class CheckStats:
 class Pipeline:
     """Streaming monitor of one line."""
 
-    def __init__(self, line: Line, history: History | None = None, *,
+    def __init__(self, line: Line, history: HistorySink | None = None, *,
                  on_transition: Callable[[Transition], None] | None = None, context: bool = True,
                  replay_lag: float | None = None) -> None:
         self.line = line

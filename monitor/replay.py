@@ -1,4 +1,10 @@
-"""Replay a recording through the pipeline into a history database, as fast as the CPU allows."""
+"""Replay a recording through the pipeline into a history database, as fast as the CPU allows.
+
+Replay writes the history synchronously (it has no event loop to keep free). A run that stops on an error
+(the recording, the database) is closed as ``failed``, one stopped by Ctrl-C as ``interrupted``, before the
+error goes on to the caller; a failure of the history itself is a one-line
+:class:`~spanwatch.connectors.history.errors.HistoryError`.
+"""
 
 from __future__ import annotations
 
@@ -7,7 +13,9 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from spanwatch.connectors.history import History
+from spanwatch.connectors.history import History, HistoryError
+from spanwatch.connectors.history.database import SQLITE_BUSY_TIMEOUT_S
+from spanwatch.connectors.history.models import RunEnd
 from spanwatch.connectors.recording import ReadProblems, read_recording
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.pipeline import Pipeline
@@ -29,19 +37,28 @@ class ReplaySummary:
 
 
 def replay(line: Line, recording: str | Path, db_url: str | None, *,
-           progress: Callable[[int, int], None] | None = None, chunk_rows: int = 200_000) -> ReplaySummary:
-    """Run a recording through a fresh pipeline; write alarms to ``db_url`` (None: no database)."""
+           progress: Callable[[int, int], None] | None = None, chunk_rows: int = 200_000,
+           timeout: float = SQLITE_BUSY_TIMEOUT_S) -> ReplaySummary:
+    """Run a recording through a fresh pipeline; write alarms to ``db_url`` (None: no database).
+
+    ``timeout``: how long a write waits for a database another process holds locked.
+    """
     recording = Path(recording)
-    history = History(db_url) if db_url else None
+    total = recording.stat().st_size
+    history = History(db_url, timeout=timeout) if db_url else None
     if history is not None:
-        history.start_run(mode="replay", line_name=line.name, config_file=line.file, config_hash=line.config_hash,
-                          source=str(recording))
+        try:
+            history.start_run(mode="replay", line_name=line.name, config_file=line.file,
+                              config_hash=line.config_hash, source=str(recording))
+        except BaseException:
+            history.close()
+            raise
     pipe = Pipeline(line, history)
     problems = ReadProblems()
-    total = recording.stat().st_size
     raised: dict[str, int] = {}
     used = 0
     start = time.perf_counter()
+    finished = False
     try:
         for batch, pos in read_recording(recording, pipe.names, chunk_rows=chunk_rows, problems=problems,
                                          with_position=True):
@@ -61,6 +78,11 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
             why = "unknown tag" if reason.startswith("unknown tag: ") else reason
             pipe.inputs.add(tag, why, problems.lines.get(reason, []), count=count)
         pipe.finish_history()
+        finished = True
+    except BaseException as exc:
+        if history is not None and not finished:
+            _close_as(history, pipe, RunEnd.INTERRUPTED if isinstance(exc, KeyboardInterrupt) else RunEnd.FAILED, exc)
+        raise
     finally:
         if history is not None:
             history.close()
@@ -80,3 +102,11 @@ def _nothing_read(size: int, problems: ReadProblems) -> str:
                 else "the file has only the header")
     why = ", ".join(f"{reason} {n}" for reason, n in problems.counts.items())
     return f"none of its {problems.rows} row{'s' if problems.rows != 1 else ''} could be used ({why})"
+
+
+def _close_as(history: History, pipe: Pipeline, state: RunEnd, exc: BaseException) -> None:
+    """Close a run that stopped before its end, with what it saw; a history that refuses it too is noted on ``exc``."""
+    try:
+        history.finish_run(input_rows=pipe.inputs.rows(), data_start=pipe.first_t, data_end=pipe.last_t, state=state)
+    except HistoryError as again:
+        exc.add_note(f"run {history.run_id} could not be closed as {state}: {again}")

@@ -34,12 +34,13 @@ from spanwatch.connectors.history import (
     query_episodes,
     sqlite_url,
 )
+from spanwatch.connectors.history.errors import RecordRefused
 from spanwatch.connectors.history.models import AlarmEpisode, Base, Level, Priority, Run, RunMode
 from spanwatch.connectors.history.schema import alembic_config, head, migration_connection
 from spanwatch.rules.alarms import LEVELS, AlarmEngine, AlarmPoint, Transition
 from spanwatch.rules.base import CheckResult, LineState
 from sqlalchemy import MetaData, String, inspect, select, text
-from sqlalchemy.exc import IntegrityError, StatementError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 REPO = Path(__file__).resolve().parents[1]
@@ -378,6 +379,100 @@ def test_500_character_tag_is_stored_whole(db_url):
         engine.dispose()
 
 
+TAG_190 = ("q2.rewind." + "nip_load_" * 21)[:186] + ".pos"  # 190 characters: the length that once crashed
+
+
+def _rows_of(url: str) -> list[tuple]:
+    engine = make_engine(url)
+    try:
+        with engine.connect() as c:
+            return [tuple(r) for q in (
+                "select run_id, t, alarm_key, kind, object_id, level, event, value, \"limit\", priority, line_state "
+                "from alarm_events order by id",
+                "select run_id, alarm_key, kind, object_id, raised_t, cleared_t, raise_value, peak_value "
+                "from alarm_episodes order by id",
+                "select episode_id, signal, t0, dt, \"values\" from alarm_context order by id",
+                "select tag, reason, count, refs from input_issues order by id",
+                "select line_name, config_file, source, end_state from runs order by id") for r in c.execute(text(q))]
+    finally:
+        engine.dispose()
+
+
+def test_the_same_long_names_give_the_same_rows_on_both_databases(tmp_path, pg_url):
+    # The issue's case (a 190-character tag crashed PostgreSQL only) and a 500-character one, through the same
+    # writes on both databases: every row equal, no length limit on either (see the 500-character test's sources).
+    assert len(TAG_190) == 190 and len(LONG_TAG) == 500
+    urls = (sqlite_url(str(tmp_path / "history.db")), pg_url)
+    for url in urls:
+        h = History(url)
+        h.start_run(mode="replay", line_name="Q2 " + "x" * 300, config_file="/c" * 200, config_hash="h",
+                    source=LONG_TAG)
+        for i, tag in enumerate((TAG_190, LONG_TAG)):
+            p = point("tag_stale", tag, "alarm", "medium", 0.5, unit="flag")
+            h.record([Transition(T0 + i, p, "raise", 1.0, RUNNING)])
+            h.record_contexts([Context(p.key, T0 + i, f"tag/{tag}", T0 + i - 1.0, 0.5, [1.0, None])])
+            h.record([Transition(T0 + 10 + i, p, "clear", 0.0, RUNNING, peak=1.0)])
+        h.finish_run(input_rows=[{"tag": t, "reason": "late", "count": 1, "refs": [7]} for t in (TAG_190, LONG_TAG)])
+        h.close()
+    on_sqlite, on_postgres = (_rows_of(u) for u in urls)
+    assert on_sqlite == on_postgres
+    assert {r[4] for r in on_sqlite if len(r) == 11} == {TAG_190, LONG_TAG}
+
+
+# --- what the history refuses to open, and how runs end -------------------------------------------------------------
+
+
+def test_a_foreign_database_is_refused_and_left_as_it_was(db_url):
+    # a database that holds another program's tables and no history: spanwatch adds nothing to it (it used to add
+    # its tables beside the others, and switch a SQLite file to WAL)
+    engine = make_engine(db_url)
+    with engine.begin() as c:
+        c.execute(text("create table customers (id integer primary key, name text)"))
+        c.execute(text("insert into customers values (1, 'a customer')"))
+    engine.dispose()
+    before = Path(db_url.removeprefix("sqlite:///")).read_bytes() if db_url.startswith("sqlite") else None
+    with pytest.raises(SchemaError, match=r"holds other tables \(customers\) and no spanwatch history"):
+        History(db_url)
+    engine = make_engine(db_url)
+    try:
+        assert set(inspect(engine).get_table_names()) == {"customers"}
+    finally:
+        engine.dispose()
+    if before is not None:
+        assert Path(db_url.removeprefix("sqlite:///")).read_bytes() == before
+
+
+def test_runs_end_as_finished_failed_or_interrupted(db_url):
+    # revision 0002 on a history at 0001: its finished runs become "finished", an open one stays open
+    engine = make_engine(db_url)
+    with migration_connection(engine) as conn:
+        command.upgrade(alembic_config(conn), "0001")
+    with engine.begin() as c:
+        for finished in (T0 + 60, None):
+            c.execute(text("insert into runs (started_at, finished_at, mode, line_name, config_file, config_hash, "
+                           "source) values (:s, :f, 'daemon', 'Q2', 'f', 'h', '')"), {"s": T0, "f": finished})
+    engine.dispose()
+    h = History(db_url)
+    assert [(r[0], r[1]) for r in _runs(db_url)] == [(1, "finished"), (2, None)]
+    # a new daemon run of the line (holding its writer lock) finds the open one dead: interrupted
+    h.start_run(mode="daemon", line_name="Q2", config_file="f", config_hash="h")
+    assert h.interrupt_dead_runs() == [2]
+    h.finish_run(input_rows=[], state="failed")
+    h.close()
+    assert [r[1] for r in _runs(db_url)] == ["finished", "interrupted", "failed"]
+    with pytest.raises(ValueError):
+        h.finish_run(input_rows=[], state="crashed")
+
+
+def _runs(url: str) -> list[tuple]:
+    engine = make_engine(url)
+    try:
+        with engine.connect() as c:
+            return [tuple(r) for r in c.execute(text("select id, end_state, finished_at from runs order by id"))]
+    finally:
+        engine.dispose()
+
+
 # --- relationships -------------------------------------------------------------------------------------------------
 
 
@@ -447,11 +542,11 @@ def test_closed_sets_refuse_an_unknown_value(db_url):
         h.start_run(mode="test", line_name="l", config_file="f", config_hash="h")
     run = h.start_run(mode="replay", line_name="l", config_file="f", config_hash="h")
     # by the ORM, before any statement: the whole transaction is refused, its valid raise with it
-    with pytest.raises(StatementError, match="acknowledge"):
+    with pytest.raises(RecordRefused, match="acknowledge"):
         h.record([Transition(T0, SLIP, "raise", 1.0, RUNNING), Transition(T0 + 1, SLIP, "acknowledge", 1.0, RUNNING)])
-    with pytest.raises(StatementError, match="urgent"):
+    with pytest.raises(RecordRefused, match="urgent"):
         h.record([Transition(T0, point("slip", "idler_3", "alarm", "urgent", 0.05), "raise", 1.0, RUNNING)])
-    with pytest.raises(StatementError, match="critical"):
+    with pytest.raises(RecordRefused, match="critical"):
         h.record([Transition(T0, point("slip", "idler_3", "critical", "high", 0.05), "raise", 1.0, RUNNING)])
     h.close()
     assert _query(db_url) == []

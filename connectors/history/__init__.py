@@ -10,24 +10,30 @@ committed transaction), PostgreSQL for a plant (``postgresql+psycopg://user@host
 * ``alarm_context`` — the signals a check read, from shortly before to shortly after each raise.
 * ``input_issues`` — per run, per tag and reason, how many samples were refused or flagged, with the
   first line numbers.
+* ``writer_locks`` — which daemon writes each line into this history, with its heartbeat.
 
 Times are epoch seconds (UTC) as floats; they are shown in ISO 8601.
 
 Modules: :mod:`.models` (tables, relationships, closed sets), :mod:`.database` (engines and URLs),
 :mod:`.schema` (Alembic revisions in ``migrations/``, applied when a history opens), :mod:`.store`
-(the writer, :class:`History`), :mod:`.queries` (the readers).
+(the store, :class:`History`), :mod:`.queries` (the readers), :mod:`.errors` (every failure as one line),
+:mod:`.lock` (one writer per line), :mod:`.spool` (the store-and-forward file) and :mod:`.writer` (the
+daemon's writer thread in front of the store, with the spool).
 
 The schema is created and changed only by Alembic migrations, shipped in ``migrations/`` and applied
-when a history opens: revision ``0001`` creates today's tables; a database from before the migrations
-(``create_all``, no ``alembic_version`` table) is converted in place to what ``0001`` creates and
-stamped with it. The next issue, the ISA-18.2 alarm lifecycle (acknowledge, shelve, suppress), adds
-its tables through new revisions (``0002``, ...) in ``migrations/versions/``.
+when a history opens: revision ``0001`` creates the tables; ``0002`` adds how a run ended
+(``runs.end_state``: finished, failed, interrupted), the last write of its writer applied
+(``runs.written_seq``) and ``writer_locks``. A database from before the migrations (``create_all``, no
+``alembic_version`` table) is converted in place to what ``0001`` creates and stamped with it. The
+ISA-18.2 alarm lifecycle (acknowledge, shelve, suppress) adds its tables through new revisions in
+``migrations/versions/``.
 """
 
 from spanwatch.connectors.history.database import make_engine, sqlite_url
-from spanwatch.connectors.history.queries import latest_run, query_episodes
+from spanwatch.connectors.history.errors import HistoryError, HistoryUnavailable, WriterLockBusy
+from spanwatch.connectors.history.queries import latest_run, open_reader, query_episodes
 from spanwatch.connectors.history.schema import SchemaError, upgrade
-from spanwatch.connectors.history.store import Context, History, OpenEpisode
+from spanwatch.connectors.history.store import Context, History, HistorySink, OpenEpisode
 
-__all__ = ["Context", "History", "OpenEpisode", "SchemaError", "latest_run", "make_engine", "query_episodes",
-           "sqlite_url", "upgrade"]
+__all__ = ["Context", "History", "HistoryError", "HistorySink", "HistoryUnavailable", "OpenEpisode", "SchemaError",
+           "WriterLockBusy", "latest_run", "make_engine", "open_reader", "query_episodes", "sqlite_url", "upgrade"]

@@ -60,6 +60,19 @@ class RunMode(enum.StrEnum):
     DAEMON = "daemon"
 
 
+class RunEnd(enum.StrEnum):
+    """How a run ended (``runs.end_state``; empty while it runs, or when it was killed and not yet found so).
+
+    ``finished``: it reached its end (a recording's last row, a daemon's clean stop); ``failed``: it stopped
+    on an error (the recording or the database); ``interrupted``: stopped by the user (Ctrl-C), or a daemon
+    or demo run found dead (killed, power lost) when the next run of its line starts.
+    """
+
+    FINISHED = "finished"
+    FAILED = "failed"
+    INTERRUPTED = "interrupted"
+
+
 def closed_set(cls: type[enum.StrEnum], name: str) -> Enum:
     """A string column holding the values of ``cls``, with a CHECK constraint ``ck_<table>_<name>``.
 
@@ -84,6 +97,8 @@ class Run(Base):
     source: Mapped[str] = mapped_column(default="")
     data_start: Mapped[float | None]
     data_end: Mapped[float | None]
+    end_state: Mapped[RunEnd | None] = mapped_column(closed_set(RunEnd, "end_state"))
+    written_seq: Mapped[int] = mapped_column(default=0, server_default="0")  # last write applied (writer.py)
 
     episodes: Mapped[list[AlarmEpisode]] = relationship(back_populates="run", order_by="AlarmEpisode.id")
     events: Mapped[list[AlarmEvent]] = relationship(back_populates="run", order_by="AlarmEvent.id")
@@ -166,3 +181,20 @@ class InputIssue(Base):
     refs: Mapped[str]
 
     run: Mapped[Run] = relationship(back_populates="input_issues")
+
+
+class WriterLock(Base):
+    """Who writes a line into this history: one row per line, kept fresh by its writer's heartbeat.
+
+    A second daemon of the same line finds the row with a recent heartbeat and refuses to start; a row
+    whose heartbeat is older than the lock timeout belongs to a writer that died or hangs, and is taken
+    over, and so is one whose process is gone from this machine.
+    """
+
+    __tablename__ = "writer_locks"
+    line_name: Mapped[str] = mapped_column(primary_key=True)
+    token: Mapped[str]  # the holder's random id
+    owner: Mapped[str]  # host and process id, for the message a second writer prints
+    process: Mapped[str]  # boot id, process id namespace and process id: a writer on the same machine sees it gone
+    acquired_at: Mapped[float]
+    heartbeat_at: Mapped[float]

@@ -1,15 +1,50 @@
-"""The readers: alarm episodes with filters (what ``spanwatch alarms`` lists) and the latest run."""
+"""The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists) and the
+latest run."""
 
 from __future__ import annotations
 
 import enum
+from pathlib import Path
 from typing import Any
 
+from spanwatch.connectors.history.database import make_engine
+from spanwatch.connectors.history.errors import HistoryError, classify
 from spanwatch.connectors.history.models import AlarmEpisode, Level, Priority, Run
+from spanwatch.connectors.history.schema import check_readable
 from spanwatch.rules.values import iso
 from sqlalchemy import false, select
-from sqlalchemy.engine import Engine
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
+
+READ_TIMEOUT_S = 10.0
+
+
+def open_reader(url: str, *, timeout: float = READ_TIMEOUT_S) -> Engine:
+    """An engine that reads the history at ``url`` and changes nothing (no upgrade, no journal mode), checked first.
+
+    Raises :class:`HistoryError` (one line) for a missing SQLite file, a database that cannot be opened or read
+    (permissions, locked beyond ``timeout`` seconds, corrupt, not a database) and one that is not a spanwatch
+    history this version can read (empty, foreign tables, an unknown schema revision). A read-only file or
+    folder can be read.
+    """
+    u = make_url(url)
+    if u.get_backend_name() == "sqlite":
+        path = Path(u.database or "")
+        if not u.database or not path.exists():
+            raise HistoryError(f"{u.database or url}: no such database")
+        if path.is_dir():
+            raise HistoryError(f"{path}: a folder, not a database file")
+    engine = make_engine(url, timeout=timeout, read_only=True)
+    try:
+        check_readable(engine)
+    except HistoryError:
+        engine.dispose()
+        raise
+    except (SQLAlchemyError, OSError) as exc:
+        engine.dispose()
+        raise classify(exc, url, timeout=timeout, doing="reading") from exc
+    return engine
 
 
 def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | None = None,

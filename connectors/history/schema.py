@@ -37,17 +37,18 @@ from alembic.config import Config
 from alembic.operations import Operations
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
+from spanwatch.connectors.history.errors import HistoryError, where
 from spanwatch.connectors.history.migrations import legacy
 from sqlalchemy import inspect, text
-from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.engine import URL, Connection, Engine
 
 MIGRATIONS = Path(__file__).resolve().parent / "migrations"
 BASELINE = "0001"  # what a history from before the migrations is converted to
 HISTORY_TABLES = ("runs", "alarm_events", "alarm_episodes", "alarm_context", "input_issues")
 
 
-class SchemaError(RuntimeError):
-    """The database holds something the history cannot open: a partial or a newer schema."""
+class SchemaError(HistoryError):
+    """The database holds something the history cannot open: a partial, a newer or a foreign schema."""
 
 
 def alembic_config(connection: Connection | None = None) -> Config:
@@ -79,13 +80,15 @@ def migration_connection(engine: Engine) -> Iterator[Connection]:
     SQLite: the driver is put in autocommit mode so the transaction is ours (``BEGIN IMMEDIATE``, and
     every DDL statement inside it: the driver would otherwise run DDL outside any transaction), with foreign keys
     off while Alembic's batch mode re-creates tables that others refer to (:func:`upgrade` checks them).
-    PostgreSQL: DDL is transactional; a transaction-level advisory lock per schema serialises openers.
+    PostgreSQL: DDL is transactional; a transaction-level advisory lock per schema serialises openers (a second
+    waits at most the engine's ``lock_timeout``), and the migration itself has no statement timeout.
     """
     if engine.dialect.name != "sqlite":
         with engine.connect() as conn, conn.begin():
             if engine.dialect.name == "postgresql":
                 conn.execute(text("select pg_advisory_xact_lock(hashtext('spanwatch history '"
                                   " || coalesce(current_schema(), '')))"))
+                conn.execute(text("SET LOCAL statement_timeout = 0"))  # a migration takes what it takes
             yield conn
         return
     with engine.connect() as base:
@@ -106,22 +109,26 @@ def migration_connection(engine: Engine) -> Iterator[Connection]:
 def upgrade(engine: Engine) -> str:
     """Bring the history behind ``engine`` to the newest revision (creating it if empty); return the revision.
 
-    Raises :class:`SchemaError` for a database with only some of the history's tables and no revision,
-    and for one at a revision this version of spanwatch does not know (written by a newer one).
+    Raises :class:`SchemaError` for a database with only some of the history's tables and no revision, for
+    one that holds other tables and no history (foreign: spanwatch does not add its tables to another
+    program's database), and for one at a revision this version of spanwatch does not know (written by a
+    newer one, or by another program that uses Alembic).
     """
     newest = head()
     if current(engine) == newest:  # the usual case: no lock taken
         return newest
     with migration_connection(engine) as conn:
         cfg = alembic_config(conn)
-        where = engine.url.render_as_string(hide_password=True)
+        db = where(engine.url)
         tables = set(inspect(conn).get_table_names())
         present = [t for t in HISTORY_TABLES if t in tables]
         converted = "alembic_version" not in tables and bool(present)
+        if "alembic_version" not in tables and not present and tables:
+            raise SchemaError(foreign(engine.url, tables))
         if converted:  # written by spanwatch before it had migrations
             if len(present) < len(HISTORY_TABLES):
                 missing = [t for t in HISTORY_TABLES if t not in tables]
-                raise SchemaError(f"{where}: has the history tables {present} but not {missing}, and no "
+                raise SchemaError(f"{db}: has the history tables {present} but not {missing}, and no "
                                   "alembic_version table: not a spanwatch history this version can open")
             with Operations.context(MigrationContext.configure(conn)):
                 legacy.upgrade()
@@ -129,13 +136,52 @@ def upgrade(engine: Engine) -> str:
         at = MigrationContext.configure(conn).get_current_revision()
         known = {s.revision for s in ScriptDirectory.from_config(cfg).walk_revisions()}
         if at is not None and at not in known:
-            raise SchemaError(f"{where}: the history is at schema revision {at!r}, which this version of "
-                              f"spanwatch does not know (it knows up to {newest!r}); it was written by a newer "
-                              "spanwatch")
+            raise SchemaError(unknown_revision(db, at, newest))
         if at != newest:  # another process may have upgraded it while this one waited for the lock
             command.upgrade(cfg, "head")
         if converted and engine.dialect.name == "sqlite":  # batch mode ran with foreign keys off
             broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
             if broken:
-                raise SchemaError(f"{where}: the conversion left rows whose foreign key points nowhere: {broken[:5]}")
+                raise SchemaError(f"{db}: the conversion left rows whose foreign key points nowhere: {broken[:5]}")
     return newest
+
+
+def foreign(url: str | URL, tables: set[str] | list[str]) -> str:
+    """The message for a database that holds other tables and no spanwatch history."""
+    names = sorted(tables)
+    shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+    return (f"{where(url)}: holds other tables ({shown}) and no spanwatch history: not a spanwatch history; give "
+            "spanwatch its own database file, or its own database or schema on a server")
+
+
+def unknown_revision(db: str, at: str, newest: str) -> str:
+    return (f"{db}: the history is at schema revision {at!r}, which this version of spanwatch does not know (it "
+            f"knows up to {newest!r}): written by a newer spanwatch, or by another program")
+
+
+def check_readable(engine: Engine) -> str | None:
+    """Make sure the database behind ``engine`` is a spanwatch history this version can read; return its revision.
+
+    Reads only (a reader never upgrades). Raises :class:`SchemaError` for an empty database, a foreign one
+    (other tables, no history), one with only some of the history's tables, and one at a revision this
+    version does not know; a history from before the migrations (all its tables, no revision) is read as
+    it is. Driver errors (locked, corrupt, unreadable) propagate for the caller to classify.
+    """
+    db = where(engine.url)
+    with engine.connect() as conn:
+        tables = set(inspect(conn).get_table_names())
+        at = MigrationContext.configure(conn).get_current_revision() if "alembic_version" in tables else None
+    present = [t for t in HISTORY_TABLES if t in tables]
+    if not tables:
+        raise SchemaError(f"{db}: empty: no spanwatch history in it yet")
+    if "alembic_version" not in tables and not present:
+        raise SchemaError(foreign(engine.url, tables))
+    if at is not None:
+        known = {s.revision for s in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
+        if at not in known:
+            raise SchemaError(unknown_revision(db, at, head()))
+    if len(present) < len(HISTORY_TABLES):
+        missing = [t for t in HISTORY_TABLES if t not in tables]
+        raise SchemaError(f"{db}: has the history tables {present} but not {missing}: not a spanwatch history this "
+                          "version can read")
+    return at

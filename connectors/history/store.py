@@ -1,26 +1,49 @@
-"""The writer: one run's transitions, episodes, context windows and input issues.
+"""The store: one run's transitions, episodes, context windows and input issues.
 
 Every :meth:`History.record` is one transaction (journal rows, new episodes, completed episodes), so
 a crash or ``kill -9`` loses nothing committed and leaves nothing half-written. The store knows alarm
 keys and episodes, not the alarm engine: carrying an alarm on across a restart is the application's
 job, with :meth:`History.open_episodes`, :meth:`History.adopt` and :meth:`History.close_episodes`.
+
+Every failure of a public method is a :class:`~spanwatch.connectors.history.errors.HistoryError` that says
+in one line what is wrong (:func:`~spanwatch.connectors.history.errors.classify`). A write may carry the
+number ``seq`` its writer gave it: the run's ``written_seq`` is set to it in the same transaction, so a
+writer that replays writes from its spool (:mod:`.writer`) skips those the database already has.
+:meth:`History.resume` and :meth:`History.resync` rebuild the store's memory of open episodes from the
+database, for a writer that lost track (a failed commit) or replays the spool of a run a killed process
+left behind.
 """
 
 from __future__ import annotations
 
+import functools
 import json
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from typing import ParamSpec, Protocol, TypeVar
 
-from spanwatch.connectors.history.database import make_engine
-from spanwatch.connectors.history.models import AlarmContext, AlarmEpisode, AlarmEvent, InputIssue, Run, RunMode
+from spanwatch.connectors.history.database import SQLITE_BUSY_TIMEOUT_S, make_engine
+from spanwatch.connectors.history.errors import HistoryError, classify
+from spanwatch.connectors.history.models import (
+    AlarmContext,
+    AlarmEpisode,
+    AlarmEvent,
+    InputIssue,
+    Run,
+    RunEnd,
+    RunMode,
+)
 from spanwatch.connectors.history.schema import upgrade
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
 from spanwatch.rules.values import finite_or_none
-from sqlalchemy import select, update
+from sqlalchemy import func, select, update
+from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
+
+P = ParamSpec("P")
+R = TypeVar("R")
 
 
 @dataclass(frozen=True)
@@ -45,16 +68,52 @@ class OpenEpisode:
     run_id: int
 
 
-class History:
-    """Writes one run into the history at ``url`` (upgraded to the newest schema on opening)."""
+class HistorySink(Protocol):
+    """What the pipeline writes to: a :class:`History` (replay, demo) or a writer thread in front of one (daemon)."""
 
-    def __init__(self, url: str) -> None:
+    def record(self, transitions: Iterable[Transition]) -> None: ...
+
+    def record_contexts(self, contexts: Iterable[Context]) -> None: ...
+
+    def finish_run(self, *, input_rows: Sequence[dict[str, object]], data_start: float | None = None,
+                   data_end: float | None = None) -> None: ...
+
+
+def _said(doing: str) -> Callable[[Callable[P, R]], Callable[P, R]]:
+    """Turn a database's failure in a store method into a one-line :class:`HistoryError` (the original as cause)."""
+
+    def wrap(fn: Callable[P, R]) -> Callable[P, R]:
+        @functools.wraps(fn)
+        def inner(*args: P.args, **kwargs: P.kwargs) -> R:
+            try:
+                return fn(*args, **kwargs)
+            except HistoryError:
+                raise
+            except (SQLAlchemyError, OSError) as exc:
+                self: History = args[0]  # type: ignore[assignment]
+                raise classify(exc, self.engine.url, timeout=self.timeout, doing=doing) from exc
+
+        return inner
+
+    return wrap
+
+
+class History:
+    """Writes one run into the history at ``url`` (upgraded to the newest schema on opening).
+
+    ``timeout``: how long a statement waits for a database another process holds locked before it fails.
+    """
+
+    def __init__(self, url: str, *, timeout: float = SQLITE_BUSY_TIMEOUT_S) -> None:
         self.url = url
-        self.engine = make_engine(url)
+        self.timeout = timeout
+        self.engine = make_engine(url, timeout=timeout)
         try:
             upgrade(self.engine)
-        except BaseException:
+        except BaseException as exc:
             self.engine.dispose()
+            if isinstance(exc, SQLAlchemyError | OSError):
+                raise classify(exc, self.engine.url, timeout=timeout, doing="opening") from exc
             raise
         self.run_id: int | None = None
         self.started_at: float | None = None
@@ -64,6 +123,7 @@ class History:
         self._open: dict[str, int] = {}  # alarm key -> id of its open episode (raised here or adopted)
         self._raised: dict[tuple[str, float], int] = {}  # (alarm key, raise time) -> episode id, until its context
 
+    @_said("starting a run in")
     def start_run(self, *, mode: str, line_name: str, config_file: str, config_hash: str, source: str = "",
                   started_at: float | None = None) -> int:
         """Open a run (``mode``: replay, demo or daemon) and return its id."""
@@ -79,10 +139,12 @@ class History:
             s.flush()
             self.run_id = run.id
         self.started_at, self.mode, self.line_name, self.config_hash = at, run_mode, line_name, config_hash
+        self._open, self._raised = {}, {}
         return self.run_id
 
     # --- alarms an earlier run left open ---------------------------------------------------------------------------
 
+    @_said("reading")
     def open_episodes(self, *, line_name: str, mode: str) -> list[OpenEpisode]:
         """Episodes not cleared, of the runs of ``line_name`` in ``mode`` other than this one, oldest first."""
         runs = select(Run.id).where(Run.line_name == line_name, Run.mode == RunMode(mode))
@@ -98,6 +160,7 @@ class History:
         """This run carries ``episode`` on: the next clear of its alarm key completes it."""
         self._open[episode.alarm_key] = episode.episode_id
 
+    @_said("writing")
     def close_episodes(self, ids: Iterable[int], at: float) -> int:
         """Mark open episodes cleared at ``at`` (epoch s) without a clear event; returns how many were open."""
         ids = list(ids)
@@ -114,8 +177,9 @@ class History:
 
     # --- this run --------------------------------------------------------------------------------------------------
 
-    def record(self, transitions: Iterable[Transition]) -> None:
-        """Write transitions in one transaction: journal rows, new episodes, completed episodes."""
+    @_said("writing")
+    def record(self, transitions: Iterable[Transition], *, seq: int | None = None) -> None:
+        """Write transitions in one transaction: journal rows, new episodes, completed episodes (and ``seq``)."""
         trs = list(transitions)
         if not trs:
             return
@@ -152,6 +216,7 @@ class History:
             s.flush()  # one INSERT per table (batched), then the completed episodes in one UPDATE
             if completed:
                 s.execute(update(AlarmEpisode), completed)
+            self._mark(s, seq)
         for key in closed:  # committed: now the state follows
             del self._open[key]
         for key, ep in opened.items():
@@ -159,32 +224,99 @@ class History:
         for ep in raised:
             self._raised[(ep.alarm_key, ep.raised_t)] = ep.id
 
-    def record_contexts(self, contexts: Iterable[Context]) -> None:
+    @_said("writing")
+    def record_contexts(self, contexts: Iterable[Context], *, seq: int | None = None) -> None:
         """Write context windows; each belongs to the episode raised at its ``raised_t``."""
         rows = []
         done = set()
-        for c in contexts:
-            ep_id = self._raised.get((c.key, c.raised_t))
-            if ep_id is not None:
-                rows.append(AlarmContext(episode_id=ep_id, signal=c.signal, t0=c.t0, dt=c.dt,
-                                         values=json.dumps(c.values)))
-                done.add((c.key, c.raised_t))
-        if rows:
-            with Session(self.engine) as s, s.begin():
-                s.add_all(rows)
+        with Session(self.engine) as s, s.begin():
+            for c in contexts:
+                ep_id = self._raised.get((c.key, c.raised_t))
+                if ep_id is None:  # raised before a resync, or by a write replayed from a spool
+                    ep_id = s.scalar(select(AlarmEpisode.id).where(
+                        AlarmEpisode.run_id == self.run_id, AlarmEpisode.alarm_key == c.key,
+                        AlarmEpisode.raised_t == c.raised_t).order_by(AlarmEpisode.id).limit(1))
+                if ep_id is not None:
+                    rows.append(AlarmContext(episode_id=ep_id, signal=c.signal, t0=c.t0, dt=c.dt,
+                                             values=json.dumps(c.values)))
+                    done.add((c.key, c.raised_t))
+            s.add_all(rows)
+            self._mark(s, seq)
         for k in done:
-            del self._raised[k]
+            self._raised.pop(k, None)
 
+    @_said("closing the run in")
     def finish_run(self, *, input_rows: Sequence[dict[str, object]], data_start: float | None = None,
-                   data_end: float | None = None) -> None:
-        """Close the run: finish time, the span of data seen, and the input issues per tag and reason."""
+                   data_end: float | None = None, state: str = RunEnd.FINISHED, finished_at: float | None = None,
+                   seq: int | None = None) -> None:
+        """Close the run: how it ended (finished, failed, interrupted), when, the span of data seen, and the
+        input issues per tag and reason."""
+        end = RunEnd(state)
+        at = finished_at if finished_at is not None else datetime.now(UTC).timestamp()
         with Session(self.engine) as s, s.begin():
             s.execute(update(Run).where(Run.id == self.run_id)
-                      .values(finished_at=datetime.now(UTC).timestamp(), data_start=data_start, data_end=data_end)
+                      .values(finished_at=at, data_start=data_start, data_end=data_end, end_state=end)
                       .execution_options(synchronize_session=False))
             s.add_all([InputIssue(run_id=self.run_id, tag=str(r["tag"]), reason=str(r["reason"]),
                                   count=int(r["count"]),  # type: ignore[call-overload]
                                   refs=json.dumps(r["refs"])) for r in input_rows])
+            self._mark(s, seq)
+
+    def _mark(self, s: Session, seq: int | None) -> None:
+        if seq is not None:
+            s.execute(update(Run).where(Run.id == self.run_id).values(written_seq=seq)
+                      .execution_options(synchronize_session=False))
+
+    # --- a writer that lost track, or replays another run's writes --------------------------------------------------
+
+    @_said("reading")
+    def written_seq(self) -> int:
+        """The number of the last write of this run that reached the database (0: none numbered)."""
+        with Session(self.engine) as s:
+            return int(s.scalar(select(Run.written_seq).where(Run.id == self.run_id)) or 0)
+
+    @_said("reading")
+    def resume(self, run_id: int) -> None:
+        """Write into the existing run ``run_id`` (e.g. the spool a killed daemon left), its open episodes reloaded."""
+        with Session(self.engine) as s:
+            run = s.get(Run, run_id)
+            if run is None:
+                raise HistoryError(f"run {run_id} is not in the history: its buffered writes cannot be applied")
+            self.run_id, self.started_at, self.mode = run.id, run.started_at, run.mode
+            self.line_name, self.config_hash = run.line_name, run.config_hash
+        self.resync()
+
+    @_said("reading")
+    def resync(self) -> None:
+        """Reload which episode each alarm key has open, from the database.
+
+        The open episode of a key is the oldest not cleared among the runs of this line and mode up to this one
+        (what :meth:`adopt` took on at the start, or what this run raised since): the same choice as carrying
+        alarms on across a restart.
+        """
+        assert self.run_id is not None and self.mode is not None, "start_run or resume first"
+        runs = select(Run.id).where(Run.line_name == self.line_name, Run.mode == self.mode, Run.id <= self.run_id)
+        q = (select(AlarmEpisode.alarm_key, func.min(AlarmEpisode.id))
+             .where(AlarmEpisode.cleared_t.is_(None), AlarmEpisode.run_id.in_(runs))
+             .group_by(AlarmEpisode.alarm_key))
+        with Session(self.engine) as s:
+            self._open = {key: int(ep) for key, ep in s.execute(q).all()}
+        self._raised.clear()
+
+    @_said("writing")
+    def interrupt_dead_runs(self) -> list[int]:
+        """Mark the runs of this line and mode that never ended (killed) as interrupted; return their ids.
+
+        Only for a writer that holds the line's writer lock (:mod:`.lock`): then no other run of the line is alive.
+        """
+        assert self.run_id is not None and self.mode is not None, "start_run first"
+        with Session(self.engine) as s, s.begin():
+            ids = list(s.scalars(select(Run.id).where(Run.line_name == self.line_name, Run.mode == self.mode,
+                                                     Run.id != self.run_id, Run.end_state.is_(None))))
+            if ids:
+                s.execute(update(Run).where(Run.id.in_(ids)).values(end_state=RunEnd.INTERRUPTED)
+                          .execution_options(synchronize_session=False))
+        return ids
 
     def close(self) -> None:
         self.engine.dispose()
