@@ -44,14 +44,31 @@ class Aligner:
         self._pend: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(k)]
         self.next_frame: int | None = None  # index of the next frame to emit
         self.late = 0
-        self.grace_until = -np.inf  # until then, a tag's age counts from this time at the earliest
+        self.grace_until = -np.inf  # a tag not seen yet ages from this time
+        self.start: float | None = None  # live: when monitoring started (frames start there at the latest)
+        self.backlog = 3600.0
 
-    def start_at(self, t: float, grace: float = 0.0) -> None:
-        """Start the frame grid at ``t`` even before any sample arrives, so a tag that never reports goes
-        stale; ``grace`` seconds are allowed for connecting before a never-seen tag ages."""
-        if self.next_frame is None:
-            self.next_frame = math.ceil(t * self.rate - 1e-9)
+    def start_at(self, t: float, grace: float = 0.0, backlog: float = 3600.0) -> None:
+        """Monitoring starts at ``t``: frames start there even if no sample ever arrives, so a tag that never
+        reports goes stale (``grace`` seconds are allowed for connecting before a never-seen tag ages); if older
+        samples arrive first (a broker's queue after a restart, up to ``backlog`` seconds old), frames start at
+        the first of them instead, so nothing queued is skipped."""
+        self.start, self.backlog = t, backlog
         self.grace_until = t + grace
+
+    def _first_frame(self, until: float) -> int | None:
+        """Index of the first frame: the first sample (a recording), or the start of monitoring (live) unless older
+        samples within the backlog arrived first."""
+        first = self._first_pending()
+        if self.start is None:
+            return None if first is None else math.ceil(first * self.rate - 1e-9)
+        if first is None or first >= self.start:
+            if until < self.start:
+                return None
+            first = self.start
+        else:
+            first = max(first, self.start - self.backlog)
+        return math.ceil(first * self.rate - 1e-9)
 
     @property
     def emitted_until(self) -> float:
@@ -107,10 +124,9 @@ class Aligner:
         """``(frame times, frames)`` with time <= ``until`` not emitted yet, at most ``max_frames`` of them (call
         again for the rest); None if there are none. A gap longer than ``max_gap`` is skipped first."""
         if self.next_frame is None:
-            first = self._first_pending()
-            if first is None:
+            self.next_frame = self._first_frame(until)
+            if self.next_frame is None:
                 return None
-            self.next_frame = math.ceil(first * self.rate - 1e-9)
         elif math.isfinite(until) and until - self.emitted_until > self.max_gap:
             self._skip_gap(until)
         last = math.floor(until * self.rate + 1e-9) if math.isfinite(until) else None
@@ -144,7 +160,8 @@ class Aligner:
                 value[:, c] = self.held_v[c]
                 quality[:, c] = self.held_q[c]
                 st = np.full(n, self.held_t[c])
-            age[:, c] = frames - np.maximum(st, self.grace_until)
+            # a tag seen ages from its sample; one never seen (or not since a gap) from the end of the grace
+            age[:, c] = np.where(np.isfinite(st), frames - st, frames - self.grace_until)
             # carry the newest sample at or before the last frame; keep the rest pending
             m = int(np.searchsorted(pt, t_end, side="right"))
             if m > 0:

@@ -94,6 +94,7 @@ class Daemon:
             self.writer.close()  # releases the writer lock: a failed start does not block the next one
             raise
         self._counts: deque[tuple[float, int, int]] = deque()  # (elapsed, samples seen, samples refused/late/lost)
+        self._wall0 = self._elapsed0 = 0.0
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
         self.inbox: list[tuple[float, float, SampleBatch]] = []  # (elapsed and wall clock at arrival, batch)
@@ -118,11 +119,27 @@ class Daemon:
 
     # --- the loop --------------------------------------------------------------------------
 
+    def begin(self) -> None:
+        """Start the history writer and the clocks (``run`` does it; tests that drive ``step`` call it)."""
+        self.writer.start()
+        self._wall0, self._elapsed0 = self.clock(), self.elapsed()
+        self.pipe.aligner.start_at(self._wall0, grace=self.line.config.daemon.startup_grace)
+        self.pipe.clocks.begin(self._wall0, self._elapsed0)
+
+    def end(self) -> None:
+        """Compute what is left, close the run and the writer (what ``run`` does after its connectors stop)."""
+        self.step(final=True)
+        self.pipe.finish_history()
+        self.writer.close()
+
+    def _wall(self) -> float:
+        """The wall clock for judging source times: the later of the clock and the start time plus the elapsed
+        clock, so a host clock stepped back does not make every sample look like the future."""
+        return max(self.clock(), self._wall0 + (self.elapsed() - self._elapsed0))
+
     async def run(self) -> None:
         """Run until :meth:`request_stop` (or SIGTERM / SIGINT when installed)."""
-        self.writer.start()
-        self.pipe.aligner.start_at(self.clock(), grace=self.line.config.daemon.startup_grace)
-        self.pipe.clocks.begin(self.clock(), self.elapsed())
+        self.begin()
         if self.http:
             try:
                 await self._start_http()
@@ -155,7 +172,7 @@ class Daemon:
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
         if len(batch):
-            self.inbox.append((self.elapsed(), self.clock(), batch))
+            self.inbox.append((self.elapsed(), self._wall(), batch))
 
     def step(self, *, final: bool = False) -> list[Transition]:
         """Feed what arrived, compute the frames its event time allows, record, publish.

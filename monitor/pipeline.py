@@ -209,7 +209,8 @@ class Pipeline:
             # how long the source has been silent at each frame beyond what its fastest tag's period allows
             with np.errstate(invalid="ignore"):
                 lag = np.maximum(0.0, np.min(frames.age[:, cols] - self._periods[cols], axis=1))
-            signals[f"source_lag/{name}"] = Signal(lag, np.isfinite(lag))
+            # not judged during the start-up grace: the source may still be connecting
+            signals[f"source_lag/{name}"] = Signal(lag, np.isfinite(lag) & (t >= self.aligner.grace_until))
             # seconds since the source was last silent: a tag is not judged stale on a silence that was its source's
             silent = lag > 0
             idx = forward_fill_index(silent)

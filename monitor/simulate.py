@@ -53,7 +53,8 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
                        console: Console | None = None) -> int:
     """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality", "seq"}``, paced.
 
-    The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``. ``seq``
+    The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``; at a speed-up
+    they start in the past and reach the present at the end, never running ahead of the wall clock. ``seq``
     counts the messages of each topic from 1, so a subscriber can count what a broker dropped.
     Returns the number of messages published.
     """
@@ -67,8 +68,10 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     client.max_queued_messages_set(0)
     client.connect(host, port)
     client.loop_start()
-    sim.t0 = time.time()
     end = min(duration, sim.sc.scenario.duration) if duration else sim.sc.scenario.duration
+    # sample times never run ahead of the wall clock (a subscriber refuses times from the future): at a speed-up
+    # the scenario's times start in the past and reach the present at its end
+    sim.t0 = time.time() - (end - sim.t) * (1.0 - 1.0 / speedup) - sim.t if speedup > 1 else time.time() - sim.t
     topics = [tag_topic(prefix, t) for t in sim.tag_names]
     seq = [0] * len(topics)
     sent = 0

@@ -106,6 +106,7 @@ class Watermarks:
                     sc._behind_since = None
                     t += shift
                 else:
+                    sc.arrived = elapsed  # it is talking, with a clock behind: not lost, not yet followed
                     ok = np.zeros(t.shape, dtype=bool)  # not adopted: the aligner refuses them as out of order
             else:
                 sc._behind_since = None

@@ -62,5 +62,5 @@ class SourceLostCheck:
         lag = block.signals.get(self.signal_name)
         if lag is None:
             return finalise(np.full(block.n, np.nan), np.full(block.n, int(Reason.INPUT_BAD), dtype=np.int8))
-        reason = combine_reasons((~np.isfinite(lag.value), Reason.INPUT_BAD), n=block.n)
+        reason = combine_reasons((~(lag.ok & np.isfinite(lag.value)), Reason.INPUT_BAD), n=block.n)
         return finalise(lag.value, reason)
