@@ -39,6 +39,7 @@ from spanwatch.monitor.schema import (
     PosSpeed,
     Priority,
     Ratio,
+    Secret,
     Strict,
     TagName,
     Temperature,
@@ -221,6 +222,9 @@ class DaemonSection(Strict):
     """How ``spanwatch run`` runs: history, HTTP endpoint, latency allowance."""
 
     history: str = "sqlite:///spanwatch.db"
+    history_password: Secret | None = Field(
+        default=None, description="the database password as \"env:NAME\" or \"file:/path\", kept out of the "
+                                  "history URL (spanwatch.connectors.secrets)")
     http: str = "127.0.0.1:9108"
     latency: PosDuration = Field(
         default=0.02, description="how far behind the clock frames are computed, on top of the delivery delay "

@@ -29,6 +29,7 @@ import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
 from spanwatch.connectors.live import LiveConnector
+from spanwatch.monitor.daemonlog import SourceWatch, log_start, log_stop, log_transition
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.metrics import DaemonCollector
@@ -72,6 +73,8 @@ class Daemon:
         self.history = History(history_url or d.history)
         self.history.start_run(mode=mode, line_name=line.name, config_file=line.file, config_hash=line.config_hash,
                                source=", ".join(f"{n} ({s.kind})" for n, s in line.config.sources.items()))
+        if mode == "daemon":  # one log line per transition (spanwatch.monitor.daemonlog); the demo prints its own
+            on_transition = _logged(on_transition)
         self.pipe = Pipeline(line, self.history, on_transition=on_transition)
         restored = carry_on_open_alarms(self.history, self.pipe.engine)
         if restored:
@@ -85,6 +88,8 @@ class Daemon:
         self.registry.register(DaemonCollector(self))
         self._http: HttpEndpoint | None = None
         self.http_port: int | None = None
+        self.mode = mode
+        self.stop_reason = "stop requested"
 
     def _publishers(self) -> list:  # type: ignore[type-arg]
         pubs = []
@@ -106,13 +111,22 @@ class Daemon:
         for p in self.publishers:
             p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
+        started = time.monotonic()
+        if self.mode == "daemon":
+            log_start(self)
+        watch = asyncio.create_task(self._watch_sources(), name="source watch")
         gc.freeze()  # long-lived objects of the start-up out of the collector's way: shorter GC pauses
         try:
             while not self.stopping.is_set():
                 self.step()
                 with contextlib.suppress(TimeoutError):
                     await asyncio.wait_for(self.stopping.wait(), timeout=self.tick)
+        except BaseException as exc:
+            self.stop_reason = f"error: {type(exc).__name__}: {exc}" if isinstance(exc, Exception) else \
+                f"{type(exc).__name__}"
+            raise
         finally:
+            watch.cancel()
             for c in self.connectors:
                 await c.stop()
             for t in tasks:
@@ -125,6 +139,8 @@ class Daemon:
             if self._http is not None:
                 await self._http.close()
             self.history.close()
+            if self.mode == "daemon":
+                log_stop(self, self.stop_reason, time.monotonic() - started)
 
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
@@ -167,13 +183,23 @@ class Daemon:
         self.frame_latency = min(self.max_latency, self.latency + max(0.0, self.delay))
         return now - self.frame_latency
 
-    def request_stop(self) -> None:
+    def request_stop(self, reason: str = "stop requested") -> None:
+        if not self.stopping.is_set():
+            self.stop_reason = reason
         self.stopping.set()
 
     def install_signal_handlers(self) -> None:
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, self.request_stop)
+            loop.add_signal_handler(sig, self.request_stop, sig.name)
+
+    async def _watch_sources(self) -> None:
+        """Log source state changes as they happen (spanwatch.monitor.daemonlog.SourceWatch)."""
+        watch = SourceWatch(self.connectors)
+        while True:
+            with contextlib.suppress(Exception):  # the log must never stop the monitor
+                watch.poll()
+            await asyncio.sleep(0.1)
 
     # --- status and HTTP -------------------------------------------------------------------
 
@@ -201,7 +227,6 @@ class Daemon:
         self._http = await serve_http(self.http, {
             "/healthz": self._healthz, "/status": self._healthz, "/metrics": self._metrics})
         self.http_port = self._http.port
-        log.info("HTTP on %s (/healthz, /metrics)", self._http.address)
 
     def _healthz(self) -> tuple[int, bytes, str]:
         st = self.status()
@@ -209,6 +234,16 @@ class Daemon:
 
     def _metrics(self) -> tuple[int, bytes, str]:
         return 200, generate_latest(self.registry), "text/plain; version=0.0.4; charset=utf-8"
+
+
+def _logged(then: Callable[[Transition], None] | None) -> Callable[[Transition], None]:
+    """Log each transition, then pass it on to ``then``."""
+    def on_transition(tr: Transition) -> None:
+        log_transition(tr)
+        if then is not None:
+            then(tr)
+
+    return on_transition
 
 
 def _merged(batches: list[SampleBatch]) -> list[SampleBatch]:
