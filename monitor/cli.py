@@ -570,7 +570,8 @@ def opcua_browse_cmd(
     try:
         rows = asyncio.run(browse(endpoint, node, depth))
     except OpcUaSessionError as exc:  # connection refused, no such node, security
-        fail(f"{redact_url(endpoint)}: {exc}")
+        shown = redact_url(endpoint)
+        fail(str(exc) if shown in str(exc) else f"{shown}: {exc}")
     except Exception as exc:  # anything else asyncua raises: one line all the same
         fail(redact(f"{redact_url(endpoint)}: {type(exc).__name__}: {exc}"))
     if not rows:
