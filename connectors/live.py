@@ -32,11 +32,16 @@ class ConnectorStats:
     overflow: int = 0
     queue_depth: int = 0
     server_timestamps: int = 0  # samples that came without a source timestamp
+    lost: dict[str, int] = field(default_factory=dict)  # how it was seen ("sequence", "time gap") -> messages lost
+    publisher_restarts: int = 0  # sequence numbers that started again from 0 or 1
     last_error: str = ""
 
     def count_malformed(self, where: str, reason: str, n: int = 1) -> None:
         key = f"{where}: {reason}"
         self.malformed[key] = self.malformed.get(key, 0) + n
+
+    def count_lost(self, how: str, n: int) -> None:
+        self.lost[how] = self.lost.get(how, 0) + n
 
     @property
     def malformed_total(self) -> int:

@@ -1,21 +1,37 @@
 """Recordings: CSV in long form, ``time,tag,value,quality``, optionally gzip-compressed.
 
 * ``time``: ISO 8601 with a UTC offset (``2026-03-02T05:00:00.020Z``,
-  ``2026-03-02T06:00:00.02+01:00``) or epoch seconds (``1772427600.02``).
+  ``2026-03-02T06:00:00.02+01:00``) or epoch seconds (``1772427600.02``); read as Python's
+  ``float()`` or ``datetime.fromisoformat`` reads it (surrounding blanks allowed).
 * ``tag``: the tag name as in the line configuration.
-* ``value``: a number in the tag's configured unit; ``nan``/``inf`` are read and
-  counted, and enter the pipeline as bad-quality samples.
+* ``value``: a number in the tag's configured unit, as Python's ``float()`` reads it;
+  ``nan``/``inf`` are read and counted, and enter the pipeline as bad-quality samples.
 * ``quality``: ``good``, ``uncertain`` or ``bad`` (or 0, 1, 2); empty means good.
 
-A header row is required; fields are separated by commas and not quoted (tag names
-cannot contain commas). Rows are read in chunks; a row that cannot be read is
-counted with its line number and skipped, never fatal.
+A header row is required, ``time,tag,value,quality`` or ``time,tag,value``; fields are
+separated by commas and not quoted (tag names cannot contain commas); a line ends at LF
+(a CR before it belongs to the line ending). A row may leave off the quality column.
+
+**Bad input is counted, never fatal, never silently dropped.** The file is read as bytes,
+in blocks; every line is decoded on its own, so one bad byte costs one row. Each row that
+cannot be used is counted under a reason with its true line number (the header is line
+1): ``malformed`` (not UTF-8, wrong number of fields, a time, value or quality that
+cannot be read, an empty tag, a line longer than :data:`MAX_LINE` bytes), ``bad time``
+(NaN, infinite, before 1970 or from 2200 on, or alone more than ``time_jump`` away from
+the rows around it while those are close to each other: a clock glitch),
+``unknown tag: NAME``, and ``non-finite value`` (those rows are still used, as bad
+quality). Damage that ends the reading early (a gzip stream cut short or corrupt, data
+after it, a read error) is counted once, as ``damaged file: ...``, at the first line
+that could not be read in full; every row before it is used. Only a file that has no
+readable header (or cannot be opened, or is named ``.gz`` but is not gzip) raises
+:class:`RecordingError`.
 """
 
 from __future__ import annotations
 
 import gzip
 import io
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -28,14 +44,32 @@ from spanwatch.rules.samples import QUALITY_CODES, SampleBatch
 HEADER = ("time", "tag", "value", "quality")
 _QUALITY_WORDS = {**QUALITY_CODES, "0": 0, "1": 1, "2": 2, "": 0}
 
+MAX_LINE = 1 << 20  # bytes; a row is about 60 bytes, so a longer line is damage, counted and skipped unread
+T_MIN = 0.0  # 1970-01-01T00:00Z: a time before the epoch is no recording of a running line
+T_MAX = 7_258_118_400.0  # 2200-01-01T00:00Z; bounds the span a replay can be asked to compute
+TIME_JUMP = 86_400.0  # s; a single row a day away from both neighbours is a clock glitch (common practice, no source)
+_GZIP_MAGIC = b"\x1f\x8b"  # RFC 1952, section 2.3.1
+_MAX_DEFERRED = 100_000  # rows held back for the time-glitch test at most (a run of garbage after the last good time)
+
+
+class RecordingError(ValueError):
+    """A recording that cannot be read at all: it cannot be opened, has no readable header, or is not gzip."""
+
 
 @dataclass
 class ReadProblems:
-    """What a reader could not use, by reason, with line numbers (the first few of each)."""
+    """What a reader could not use, by reason, with line numbers (the first few of each).
+
+    ``header`` tells whether a header was read, ``rows`` counts the data lines read after
+    it; ``damage`` is the ``damaged file: ...`` reason when the reading ended early, else None.
+    """
 
     counts: dict[str, int] = field(default_factory=dict)
     lines: dict[str, list[int]] = field(default_factory=dict)
     keep: int = 20
+    header: bool = False
+    rows: int = 0
+    damage: str | None = None
 
     def add(self, reason: str, line_numbers: list[int] | np.ndarray) -> None:
         nums = [int(x) for x in line_numbers]
@@ -45,6 +79,11 @@ class ReadProblems:
         kept = self.lines.setdefault(reason, [])
         kept.extend(nums[: max(0, self.keep - len(kept))])
 
+    def damaged(self, what: str, line: int) -> None:
+        """The reading ended at ``line`` because of ``what``: one problem."""
+        self.damage = f"damaged file: {what}"
+        self.add(self.damage, [line])
+
 
 def _open_text(path: Path, mode: str) -> tuple[IO[str], IO[bytes]]:
     """Open a (gzip) text file; also return the raw file, whose position tells the progress."""
@@ -53,60 +92,222 @@ def _open_text(path: Path, mode: str) -> tuple[IO[str], IO[bytes]]:
     return io.TextIOWrapper(inner, encoding="utf-8", newline=""), raw
 
 
-def parse_times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """Parse a column of times; returns (epoch seconds, ok mask). Vectorised on the common forms."""
+# --- bytes: plain or gzip, stopping at damage ----------------------------------------------------------------------
+
+
+class _Bytes:
+    """The bytes of a recording, decompressed when its name ends in ``.gz``; ``damage`` says why they ended early."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        try:
+            self.raw: IO[bytes] = open(path, "rb")  # noqa: SIM115
+        except OSError as exc:
+            raise RecordingError(f"{path}: cannot read the recording ({exc.strerror or exc})") from None
+        self.gzip = path.suffix == ".gz"
+        self.damage: str | None = None
+
+    def close(self) -> None:
+        self.raw.close()
+
+    def tell(self) -> int:
+        try:
+            return self.raw.tell()
+        except OSError:
+            return 0
+
+    def _read(self, size: int) -> bytes:
+        try:
+            return self.raw.read(size)
+        except OSError as exc:
+            self.damage = f"read error ({exc.strerror or exc})"
+            return b""
+
+    def blocks(self, size: int) -> Iterator[bytes]:
+        """Blocks of at most ``size`` bytes (decompressed), until the end or the damage."""
+        if not self.gzip:
+            while block := self._read(size):
+                yield block
+            return
+        yield from self._gunzip(size)
+
+    def _gunzip(self, size: int) -> Iterator[bytes]:
+        """Decompress member after member (RFC 1952 section 2.2), output bounded per call; never raises zlib.error."""
+        pending = self._read(max(size, 2))
+        if not pending:
+            return  # an empty file
+        if pending[:2] != _GZIP_MAGIC:
+            raise RecordingError(f"{self.path}: not gzip-compressed although its name ends in .gz "
+                                 f"(it starts with {pending[:8]!r})")
+        d = zlib.decompressobj(31)  # 16 + 15: a gzip header and trailer (CRC-32 and length are checked)
+        full = False  # the last call filled its output: zlib may hold more without new input
+        while True:
+            if not pending and not full:
+                pending = self._read(size)
+                if not pending:
+                    if self.damage is None:
+                        self.damage = "gzip data truncated"
+                    return
+            try:
+                out = d.decompress(pending, size)
+            except zlib.error as exc:
+                self.damage = f"gzip data corrupt ({str(exc).removeprefix('Error -3 while decompressing data: ')})"
+                return
+            pending, full = d.unconsumed_tail, len(out) == size
+            if out:
+                yield out
+            if d.eof:
+                pending, full = d.unused_data.lstrip(b"\x00"), False  # zero padding after a member is allowed
+                while len(pending) < 2:
+                    more = self._read(size)
+                    if not more:
+                        break
+                    pending = (pending + more).lstrip(b"\x00")
+                if not pending:
+                    return
+                if pending[:2] != _GZIP_MAGIC:
+                    self.damage = "data after the gzip stream"
+                    return
+                d = zlib.decompressobj(31)
+
+
+# --- times -----------------------------------------------------------------------------------------------------------
+
+_DIGITS = [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18]  # YYYY-MM-DDTHH:MM:SS
+
+
+_ISO_SLICE = 32_768  # rows per pass of the vectorised parser: bounds its temporary arrays (a few MB)
+
+
+def _iso_fast(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_iso_slice` over slices of the column."""
+    if len(col) <= _ISO_SLICE:
+        return _iso_slice(col)
+    parts = [_iso_slice(col[i:i + _ISO_SLICE]) for i in range(0, len(col), _ISO_SLICE)]
+    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+
+
+def _iso_slice(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Vectorised ``YYYY-MM-DD[T ]HH:MM:SS[.f{1,6}](Z|+HH:MM|-HH:MM)``; (epoch seconds, ok).
+
+    Rows not of exactly this form are not ok (the caller parses them one by one with
+    Python's own parser). On this form the result equals ``datetime.fromisoformat(s).timestamp()``:
+    the same field ranges are checked, and the time is formed as whole microseconds
+    before one division, as ``timedelta.total_seconds`` does.
+    """
     n = len(col)
-    out = np.full(n, np.nan)
+    t = np.full(n, np.nan)
+    ok_all = np.zeros(n, dtype=bool)
+    lens = np.fromiter(map(len, col), dtype=np.int64, count=n)
+    idx = np.flatnonzero((lens >= 20) & (lens <= 32))  # the shortest and the longest of the form
+    if not idx.size:
+        return t, ok_all
+    sub = col if idx.size == n else [col[i] for i in idx.tolist()]
     try:
-        out[:] = np.array(col, dtype=float)
-        return out, np.isfinite(out)
-    except ValueError:
-        pass
-    # ISO 8601: split off the offset, parse the rest with numpy in one call per offset.
-    offsets: dict[str, list[int]] = {}
-    stems: list[str] = []
-    for i, s in enumerate(col):
-        s = s.strip()
-        if s.endswith("Z"):
-            stem, off = s[:-1], "+00:00"
-        elif len(s) > 6 and s[-6] in "+-" and s[-3] == ":":
-            stem, off = s[:-6], s[-6:]
-        else:
-            stem, off = s, "?"
-        stems.append(stem)
-        offsets.setdefault(off, []).append(i)
-    for off, idx in offsets.items():
-        if off == "?":
-            for i in idx:
-                out[i] = _parse_one(col[i])
-            continue
-        sign = -1.0 if off[0] == "-" else 1.0
-        try:
-            shift = sign * (int(off[1:3]) * 3600 + int(off[4:6]) * 60)
-        except ValueError:
-            continue
-        sub = [stems[i] for i in idx]
-        try:
-            arr = np.array(sub, dtype="datetime64[us]")
-            out[idx] = arr.astype("int64") / 1e6 - shift
-        except ValueError:
-            for i in idx:
-                out[i] = _parse_one(col[i])
-    return out, np.isfinite(out)
+        a = np.array(sub, dtype="S")
+    except UnicodeEncodeError:  # non-ASCII in some rows: those are for the slow path
+        keep = np.array([s.isascii() for s in sub], dtype=bool)
+        idx = idx[keep]
+        if not idx.size:
+            return t, ok_all
+        sub = [col[i] for i in idx.tolist()]
+        a = np.array(sub, dtype="S")
+    m, w = len(sub), a.dtype.itemsize
+    c = a.view(np.uint8).reshape(m, w)
+    length = np.char.str_len(a).astype(np.int64)
+    ok = (length == lens[idx]) & (length >= 20)  # numpy drops trailing NULs: such a row is not of the form
+    d = c.astype(np.int16) - 48
+    dig = (d >= 0) & (d <= 9)
+    ok &= (dig[:, _DIGITS].all(axis=1) & (c[:, 4] == 45) & (c[:, 7] == 45) & ((c[:, 10] == 84) | (c[:, 10] == 32))
+           & (c[:, 13] == 58) & (c[:, 16] == 58))
+    rows = np.arange(m)
+
+    def at(pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        p = np.clip(pos, 0, w - 1)
+        return c[rows, p], d[rows, p].astype(np.int64)
+
+    zulu = at(length - 1)[0] == 90
+    o = length - 6
+    sign_c, colon_c = at(o)[0], at(o + 3)[0]
+    oh1, oh2, om1, om2 = (at(o + k)[1] for k in (1, 2, 4, 5))
+    odig = ((oh1 >= 0) & (oh1 <= 9) & (oh2 >= 0) & (oh2 <= 9) & (om1 >= 0) & (om1 <= 9) & (om2 >= 0) & (om2 <= 9))
+    offset_ok = ((sign_c == 43) | (sign_c == 45)) & (colon_c == 58) & odig
+    stem = np.where(zulu, length - 1, np.where(offset_ok, length - 6, -1))
+    # fraction: a '.' at 19, then 1 to 6 digits up to the offset
+    fpos = np.arange(20, 26)
+    frac_d = np.zeros((m, 6), dtype=np.int64)
+    frac_dig = np.zeros((m, 6), dtype=bool)
+    k = max(0, min(w, 26) - 20)
+    frac_d[:, :k] = d[:, 20:20 + k]
+    frac_dig[:, :k] = dig[:, 20:20 + k]
+    need = fpos[None, :] < stem[:, None]
+    dot = c[:, 19] == 46
+    ok &= (stem == 19) | ((stem >= 21) & (stem <= 26) & dot & (~need | frac_dig).all(axis=1))
+    if not ok.any():
+        return t, ok_all
+    us = (np.where(need, frac_d, 0) * 10 ** (25 - fpos)).sum(axis=1)
+
+    def num(*cols: int) -> np.ndarray:
+        out = np.zeros(m, dtype=np.int64)
+        for j in cols:
+            out = out * 10 + d[:, j]
+        return out
+
+    year, month, day = num(0, 1, 2, 3), num(5, 6), num(8, 9)
+    hour, minute, second = num(11, 12), num(14, 15), num(17, 18)
+    off_h, off_m = oh1 * 10 + oh2, om1 * 10 + om2
+    off = np.where(zulu, 0, np.where(sign_c == 45, -1, 1) * (off_h * 3600 + off_m * 60))
+    ok &= ((year >= 1) & (month >= 1) & (month <= 12) & (day >= 1) & (hour <= 23) & (minute <= 59) & (second <= 59)
+           & (zulu | ((off_h <= 23) & (off_m <= 59))))
+    months = np.where(ok, (year - 1970) * 12 + month - 1, 0).astype("datetime64[M]")
+    day0 = months.astype("datetime64[D]").astype(np.int64)
+    in_month = (months + 1).astype("datetime64[D]").astype(np.int64) - day0
+    ok &= day <= in_month
+    seconds = (day0 + day - 1) * 86_400 + hour * 3600 + minute * 60 + second - off
+    t[idx[ok]] = (seconds[ok] * 1_000_000 + us[ok]) / 1e6
+    ok_all[idx[ok]] = True
+    return t, ok_all
 
 
-def _parse_one(text: str) -> float:
+def _parse_one(text: str) -> tuple[float, bool]:
+    """One time by Python's own parsers: (epoch seconds, parsed)."""
+    text = text.strip()
     try:
-        return float(text)
+        return float(text), True
     except ValueError:
         pass
     try:
-        dt = datetime.fromisoformat(text.strip())
+        dt = datetime.fromisoformat(text)
     except ValueError:
-        return np.nan
-    if dt.tzinfo is None:
-        return np.nan  # a time without an offset is ambiguous: refuse it
-    return dt.timestamp()
+        return np.nan, False
+    if dt.tzinfo is None or dt.utcoffset() is None:
+        return np.nan, False  # a time without an offset is ambiguous: refuse it
+    try:
+        return dt.timestamp(), True
+    except (OverflowError, ValueError, OSError):
+        return np.nan, False
+
+
+def _times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """(epoch seconds, parsed); parsed rows may still be NaN or infinite (``"nan"``, ``"inf"``)."""
+    n = len(col)
+    try:
+        return np.array(col, dtype=float), np.ones(n, dtype=bool)
+    except ValueError:
+        pass
+    t, ok = _iso_fast(col)
+    for i in np.flatnonzero(~ok).tolist():
+        t[i], ok[i] = _parse_one(col[i])
+    return t, ok
+
+
+def parse_times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Parse a column of times; returns (epoch seconds, ok mask). Vectorised on the common forms.
+
+    ok is False for a time that cannot be read, has no UTC offset, or is NaN or infinite.
+    """
+    t, parsed = _times(col)
+    return t, parsed & np.isfinite(t)
 
 
 def _parse_values(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -123,58 +324,63 @@ def _parse_values(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
         return out, ok
 
 
-def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows: int = 200_000,
-                   problems: ReadProblems | None = None, with_position: bool = False
-                   ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
-    """Yield batches of samples from a recording, in file order.
+def _codes(col: list[str]) -> tuple[list[str], np.ndarray]:
+    """Distinct strings in first-seen order and each row's index into them (tags and quality words repeat)."""
+    lookup = {s: i for i, s in enumerate(dict.fromkeys(col))}
+    return list(lookup), np.fromiter(map(lookup.__getitem__, col), dtype=np.int64, count=len(col))
 
-    Rows for tags not in ``known_tags`` are counted under ``unknown tag: NAME`` (once
-    per tag in the examples); malformed rows under ``malformed``; values that are NaN
-    or infinite under ``non-finite value`` (and still yielded, as bad-quality samples).
-    ``ref`` of each sample is its line number in the file (header is line 1).
-    With ``with_position``, yields ``(batch, bytes of the file read so far)``.
+
+# --- rows ------------------------------------------------------------------------------------------------------------
+
+
+@dataclass
+class _Rows:
+    """Parsed rows of the right shape, before they are judged (a time of a later row may still matter)."""
+
+    line: np.ndarray  # int64 line numbers
+    t: np.ndarray  # float64, NaN where not parsed
+    t_ok: np.ndarray  # time parsed
+    value: np.ndarray
+    v_ok: np.ndarray
+    tag: np.ndarray  # int32 index into the known tags; -1 unknown, -2 empty
+    name: np.ndarray  # object: the tag names as written (stripped)
+    quality: np.ndarray  # int8, -1 not a quality word
+
+    @staticmethod
+    def empty() -> _Rows:
+        e = np.zeros(0, dtype=bool)
+        return _Rows(np.zeros(0, np.int64), np.zeros(0), e, np.zeros(0), e, np.zeros(0, np.int32),
+                     np.zeros(0, dtype=object), np.zeros(0, np.int8))
+
+    def __len__(self) -> int:
+        return len(self.line)
+
+    def take(self, sel: np.ndarray) -> _Rows:
+        return _Rows(self.line[sel], self.t[sel], self.t_ok[sel], self.value[sel], self.v_ok[sel], self.tag[sel],
+                     self.name[sel], self.quality[sel])
+
+    def then(self, other: _Rows) -> _Rows:
+        if not len(self):
+            return other
+        return _Rows(*(np.concatenate([getattr(self, f), getattr(other, f)]) for f in
+                       ("line", "t", "t_ok", "value", "v_ok", "tag", "name", "quality")))
+
+
+def _columns(text: str, nums: np.ndarray, width: int) -> tuple[list[list[str]], np.ndarray, np.ndarray]:
+    """Split LF-ended lines into ``width`` columns; returns (columns, line numbers kept, line numbers malformed).
+
+    Fast path: one split of the whole chunk, with a marker field after every line; it is
+    taken only when every marker falls where a line of ``width`` fields puts it, so no row
+    is ever made of parts of two lines. Otherwise per line: a row with the wrong number of
+    fields is malformed (a 3-field row where a quality column exists is fine: quality
+    empty, i.e. good).
     """
-    path = Path(path)
-    problems = problems if problems is not None else ReadProblems()
-    index = {name: i for i, name in enumerate(known_tags)}
-    fh, raw = _open_text(path, "r")
-    with raw, fh:
-        first = fh.readline()
-        if not first:
-            return
-        header = [h.strip().strip('"').lower() for h in first.rstrip("\r\n").split(",")]
-        if header[:3] != list(HEADER[:3]):
-            raise ValueError(f"{path}: line 1: expected the header 'time,tag,value,quality', got {','.join(header)!r}")
-        has_q = len(header) >= 4 and header[3] == "quality"
-        line_no = 1
-        hint = chunk_rows * 48  # bytes: about chunk_rows rows of this format
-        while True:
-            try:
-                lines = fh.readlines(hint)
-            except UnicodeDecodeError:
-                problems.add("malformed", [line_no + 1])
-                break
-            if not lines:
-                break
-            nums = np.arange(line_no + 1, line_no + 1 + len(lines), dtype=np.int64)
-            line_no += len(lines)
-            cols, kept, malformed = _columns(lines, 4 if has_q else 3, nums)
-            batch = _batch(cols, kept, malformed, index, known_tags, problems)
-            yield (batch, raw.tell()) if with_position else batch
-
-
-def _columns(lines: list[str], width: int, nums: np.ndarray) -> tuple[list[list[str]], np.ndarray, np.ndarray]:
-    """Split lines into ``width`` columns; returns (columns, line numbers kept, line numbers malformed).
-
-    Fast path: one split of the whole chunk when every line has ``width`` fields.
-    Otherwise per line: rows with the wrong number of fields are counted as malformed
-    (a 3-field row where a quality column exists is fine: quality empty, i.e. good).
-    """
-    text = "".join(lines).replace("\r\n", "\n")
-    fields = text.replace("\n", ",").split(",")
-    if text.endswith("\n") and len(fields) == width * len(lines) + 1:
-        return [fields[k:-1:width] for k in range(width)], nums, nums[:0]
-    rows = [ln.rstrip("\r\n").split(",") for ln in lines]
+    n = len(nums)
+    text = text.replace("\r\n", "\n")
+    fields = text.replace("\n", ",\n,").split(",")
+    if len(fields) == n * (width + 1) + 1 and fields[width::width + 1].count("\n") == n:
+        return [fields[k:-1:width + 1] for k in range(width)], nums, nums[:0]
+    rows = [ln.split(",") for ln in text.split("\n")[:n]]
     ok = np.array([len(r) == width or (width == 4 and len(r) == 3) for r in rows], dtype=bool)
     rows = [r if len(r) == width else [*r, ""] for r, good in zip(rows, ok, strict=True) if good]
     if not rows:
@@ -182,43 +388,207 @@ def _columns(lines: list[str], width: int, nums: np.ndarray) -> tuple[list[list[
     return [list(c) for c in zip(*rows, strict=True)], nums[ok], nums[~ok]
 
 
-def _batch(cols: list[list[str]], lines: np.ndarray, bad_shape: np.ndarray, index: dict[str, int],
-           known: tuple[str, ...], problems: ReadProblems) -> SampleBatch:
-    malformed = [bad_shape]
-    if not cols[0]:
-        problems.add("malformed", np.sort(np.concatenate(malformed)))
-        return SampleBatch.empty(known)
-    rows_n = len(cols[0])
-    times, t_ok = parse_times(list(cols[0]))
-    vals, v_ok = _parse_values(list(cols[2]))
-    # tags and quality words repeat: look each distinct string up once
-    raw_tags, tag_inv = np.unique(np.asarray(cols[1], dtype=object).astype(str), return_inverse=True)
-    names = np.array([t.strip().strip('"') for t in raw_tags], dtype=object)
-    tag_idx = np.array([index.get(t, -1) for t in names], dtype=np.int32)[tag_inv]
-    empty_tag = np.array([t == "" for t in names], dtype=bool)[tag_inv]
-    tags = names[tag_inv]
+def _parse_rows(cols: list[list[str]], lines: np.ndarray, index: dict[str, int]) -> _Rows:
+    n = len(cols[0])
+    if n == 0:
+        return _Rows.empty()
+    t, t_ok = _times(cols[0])
+    value, v_ok = _parse_values(cols[2])
+    distinct, inv = _codes(cols[1])
+    names = [s.strip().strip('"') for s in distinct]
+    tag = np.array([index.get(s, -2 if s == "" else -1) for s in names], dtype=np.int32)[inv]
+    name = np.array(names, dtype=object)[inv]
     if len(cols) > 3:
-        raw_q, q_inv = np.unique(np.asarray(cols[3], dtype=object).astype(str), return_inverse=True)
-        qual = np.array([_QUALITY_WORDS.get(q.strip().lower(), -1) for q in raw_q], dtype=np.int8)[q_inv]
+        words, q_inv = _codes(cols[3])
+        quality = np.array([_QUALITY_WORDS.get(q.strip().lower(), -1) for q in words], dtype=np.int8)[q_inv]
     else:
-        qual = np.zeros(rows_n, dtype=np.int8)
-    bad = ~t_ok | ~v_ok | (qual < 0) | empty_tag
-    malformed.append(lines[bad])
-    problems.add("malformed", np.sort(np.concatenate(malformed)))  # in file order
-    unknown = (tag_idx < 0) & ~bad
-    if unknown.any():
-        for name in sorted({tags[i] for i in np.flatnonzero(unknown)}):
-            sel = unknown & (tags == name)
-            reason = f"unknown tag: {name}"
-            first = [] if reason in problems.lines else lines[sel][:1]  # one example per file
-            problems.add(reason, first)
-            problems.counts[reason] = problems.counts.get(reason, 0) + int(sel.sum()) - len(first)
-    keep = ~bad & ~unknown
-    nonfinite = keep & ~np.isfinite(vals)
-    if nonfinite.any():
-        problems.add("non-finite value", lines[nonfinite])
-        qual = np.where(nonfinite, 2, qual).astype(np.int8)
-    return SampleBatch(known, tag_idx[keep], times[keep], vals[keep], qual[keep], lines[keep])
+        quality = np.zeros(n, dtype=np.int8)
+    return _Rows(lines, t, t_ok, value, v_ok, tag, name, quality)
+
+
+class _Judge:
+    """Turns parsed rows into samples and counted problems, holding back the rows after the last good time.
+
+    The glitch test needs each time's next good time, which may be in the next chunk: the
+    rows from the chunk's last good time on wait for it (at most ``_MAX_DEFERRED``).
+    """
+
+    def __init__(self, known: tuple[str, ...], problems: ReadProblems, time_jump: float) -> None:
+        self.known = known
+        self.problems = problems
+        self.jump = time_jump
+        self.rows = _Rows.empty()
+        self.malformed = np.zeros(0, np.int64)
+        self.left = np.nan  # the last good time before the rows held
+
+    def feed(self, rows: _Rows, malformed: np.ndarray, final: bool) -> SampleBatch:
+        rows = self.rows.then(rows)
+        malformed = np.concatenate([self.malformed, malformed])
+        good_t = rows.t_ok & np.isfinite(rows.t) & (rows.t >= T_MIN) & (rows.t < T_MAX)
+        ci = np.flatnonzero(good_t)
+        tc = rows.t[ci]
+        left = np.concatenate([[self.left], tc[:-1]])
+        right = np.concatenate([tc[1:], [np.nan]])
+        with np.errstate(invalid="ignore"):
+            glitch = (np.abs(tc - left) > self.jump) & (np.abs(right - tc) > self.jump) & (np.abs(right - left)
+                                                                                          <= self.jump)
+        held = len(rows) - ci[-1] + len(malformed) if ci.size else 0
+        if final or not ci.size or held > _MAX_DEFERRED:
+            cut = np.iinfo(np.int64).max
+            self.left = tc[-1] if ci.size else self.left
+        else:
+            cut = int(rows.line[ci[-1]])
+            self.left = tc[-2] if ci.size > 1 else self.left
+        bad_time = ~good_t
+        bad_time[ci[glitch]] = True
+        now = rows.line < cut
+        self.rows, self.malformed = rows.take(~now), malformed[malformed >= cut]
+        rows, bad_time, malformed = rows.take(now), bad_time[now], malformed[malformed < cut]
+        return self._judge(rows, bad_time, malformed)
+
+    def _judge(self, rows: _Rows, bad_time: np.ndarray, malformed: np.ndarray) -> SampleBatch:
+        problems = self.problems
+        bad = ~rows.t_ok | ~rows.v_ok | (rows.quality < 0) | (rows.tag == -2)
+        problems.add("malformed", np.sort(np.concatenate([malformed, rows.line[bad]])))  # in file order
+        bad_time &= ~bad
+        problems.add("bad time", rows.line[bad_time])
+        unknown = (rows.tag < 0) & ~bad & ~bad_time
+        if unknown.any():
+            by_name: dict[str, list[int]] = {}  # grouped in Python: numpy would drop a trailing NUL of a name
+            for name, no in zip(rows.name[unknown].tolist(), rows.line[unknown].tolist(), strict=True):
+                by_name.setdefault(name, []).append(no)
+            for name in sorted(by_name):
+                reason = f"unknown tag: {name}"
+                first = [] if reason in problems.lines else by_name[name][:1]  # one example per file
+                problems.add(reason, first)
+                problems.counts[reason] = problems.counts.get(reason, 0) + len(by_name[name]) - len(first)
+        keep = ~bad & ~bad_time & ~unknown
+        quality = rows.quality
+        nonfinite = keep & ~np.isfinite(rows.value)
+        if nonfinite.any():
+            problems.add("non-finite value", rows.line[nonfinite])
+            quality = np.where(nonfinite, 2, quality).astype(np.int8)
+        return SampleBatch(self.known, rows.tag[keep], rows.t[keep], rows.value[keep], quality[keep], rows.line[keep])
+
+
+# --- the reader ------------------------------------------------------------------------------------------------------
+
+
+def _header(path: Path, first: bytes) -> int:
+    """The number of columns the header announces (3 or 4); RecordingError otherwise."""
+    try:
+        text = first.decode("utf-8").removeprefix("\ufeff")  # a byte order mark as some spreadsheets write it
+    except UnicodeDecodeError:
+        text = repr(first[:80])
+    header = [h.strip().strip('"').lower() for h in text.rstrip("\r\n").split(",")]
+    if header not in (list(HEADER), list(HEADER[:3])):
+        raise RecordingError(f"{path}: line 1: expected the header 'time,tag,value,quality' (or 'time,tag,value'), "
+                             f"got {','.join(header)[:120]!r}")
+    return len(header)
+
+
+def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows: int = 200_000,
+                   problems: ReadProblems | None = None, with_position: bool = False,
+                   time_jump: float = TIME_JUMP) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
+    """Yield batches of samples from a recording, in file order (see the module docstring for what is counted).
+
+    Rows for tags not in ``known_tags`` are counted under ``unknown tag: NAME`` (one
+    example line per tag); ``ref`` of each sample is its line number in the file (header
+    is line 1). Chunks are about ``chunk_rows`` rows. With ``with_position``, yields
+    ``(batch, bytes of the file read so far)``. Raises :class:`RecordingError` only when
+    the file cannot be opened or has no readable header.
+    """
+    path = Path(path)
+    problems = problems if problems is not None else ReadProblems()
+    index = {name: i for i, name in enumerate(known_tags)}
+    src = _Bytes(path)
+    try:
+        yield from _read(src, path, index, known_tags, max(64, chunk_rows * 48), problems, with_position, time_jump)
+    finally:
+        src.close()
+
+
+def _read(src: _Bytes, path: Path, index: dict[str, int], known: tuple[str, ...], block: int,
+          problems: ReadProblems, with_position: bool, time_jump: float
+          ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
+    blocks = src.blocks(block)
+    buf = b""
+    for b in blocks:  # the header line
+        buf += b
+        if b"\n" in buf or len(buf) > MAX_LINE:
+            break
+    if not buf:
+        if src.damage:
+            raise RecordingError(f"{path}: {src.damage} before the header (line 1)")
+        return
+    end = buf.find(b"\n")
+    if end < 0 and (src.damage or len(buf) > MAX_LINE):
+        raise RecordingError(f"{path}: {src.damage or 'no line end'} within the header (line 1)")
+    first, buf = (buf, b"") if end < 0 else (buf[:end], buf[end + 1:])
+    width = _header(path, first)
+    problems.header = True
+    judge = _Judge(known, problems, time_jump)
+    line_no = 1
+    skipping = False  # within a line longer than MAX_LINE
+    done = False
+    while not done:
+        b = next(blocks, None)
+        if b is None:
+            done = True
+            if src.damage is None and buf and not buf.endswith(b"\n") and not skipping:
+                buf += b"\n"  # the last line has no LF
+        else:
+            buf += b
+        if skipping:
+            end = buf.find(b"\n")
+            if end < 0:
+                buf = b""
+                if not done:
+                    continue
+            else:
+                buf, skipping = buf[end + 1:], False
+        cut = buf.rfind(b"\n")
+        if cut < 0:
+            if len(buf) > MAX_LINE:  # a line too long to be a row: count it, skip to its end unread
+                line_no += 1
+                problems.rows += 1
+                judge.feed(_Rows.empty(), np.array([line_no], dtype=np.int64), final=False)
+                buf, skipping = b"", True
+            if not done:
+                continue
+            part = b""
+        else:
+            part, buf = buf[: cut + 1], buf[cut + 1:]
+        batch = _chunk(part, line_no, width, index, judge, problems, final=done)
+        line_no += part.count(b"\n")
+        if done and src.damage is not None:
+            problems.damaged(src.damage, line_no + 1)
+        if len(batch) or part:
+            yield (batch, src.tell()) if with_position else batch
+
+
+def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: _Judge, problems: ReadProblems,
+           final: bool) -> SampleBatch:
+    """One block of whole lines (each ending in LF) -> the samples that are ready; problems counted."""
+    n = part.count(b"\n")
+    problems.rows += n
+    nums = np.arange(line_no + 1, line_no + 1 + n, dtype=np.int64)
+    try:
+        text = part.decode("utf-8")
+        not_utf8 = nums[:0]
+    except UnicodeDecodeError:  # decode line by line: one bad byte costs one row
+        good: list[str] = []
+        ok = np.ones(n, dtype=bool)
+        for i, piece in enumerate(part.split(b"\n")[:n]):
+            try:
+                good.append(piece.decode("utf-8"))
+            except UnicodeDecodeError:
+                ok[i] = False
+        text = "".join(s + "\n" for s in good)
+        not_utf8, nums = nums[~ok], nums[ok]
+    cols, kept, bad_shape = _columns(text, nums, width)
+    rows = _parse_rows(cols, kept, index)
+    return judge.feed(rows, np.sort(np.concatenate([not_utf8, bad_shape])), final)
 
 
 def write_recording(path: str | Path, batches: Iterator[SampleBatch] | list[SampleBatch], *,

@@ -5,6 +5,14 @@ lands on the same grid). Each frame holds, per tag, the newest sample at or befo
 the frame time (sample and hold), its quality, and its age. Per tag, a sample must
 be newer than the newest one accepted: an older one is *out of order*, an equal one
 a *duplicate*; both are refused and reported, never silently used.
+
+Frames advance in bounded steps whatever the span asked for: :meth:`Aligner.emit`
+returns at most ``max_frames`` frames per call, and a stretch longer than ``max_gap``
+seconds in which no sample at all arrived is a *gap*: it is skipped instead of being
+filled with held values (a recording with a six-hour hole, a process that was
+suspended, a clock that stepped). After a gap the values held from before it are not
+carried over (quality "no sample yet") and ages count from the end of the gap, so the
+checks start afresh rather than read hours-old values as current.
 """
 
 from __future__ import annotations
@@ -21,9 +29,13 @@ REJECT_DUPLICATE = "duplicate timestamp"
 class Aligner:
     """Sample-and-hold alignment of ``names`` onto a frame grid at ``frame_rate``."""
 
-    def __init__(self, names: tuple[str, ...], frame_rate: float) -> None:
+    def __init__(self, names: tuple[str, ...], frame_rate: float, *, max_gap: float = 30.0,
+                 max_frames: int | None = None) -> None:
         self.names = names
         self.rate = frame_rate
+        self.max_gap = max_gap
+        self.max_frames = max_frames if max_frames is not None else max(1, round(10.0 * frame_rate))
+        self.gaps: list[tuple[float, float]] = []  # (last frame before, first frame after) of every gap skipped
         k = len(names)
         self.last_t = np.full(k, -np.inf)  # newest accepted sample per tag (pending included)
         self.held_t = np.full(k, -np.inf)  # newest sample at or before the last emitted frame
@@ -73,17 +85,38 @@ class Aligner:
         self.late += int(late.sum())
         return {REJECT_OUT_OF_ORDER: refused_ooo, REJECT_DUPLICATE: refused_dup, "late": late}
 
+    def _first_pending(self) -> float | None:
+        firsts = [p[0][0][0] for p in self._pend if p and p[0][0].size]
+        return min(firsts) if firsts else None
+
+    def _skip_gap(self, until: float) -> None:
+        """Skip a stretch of more than ``max_gap`` seconds with no sample at all (see the module docstring)."""
+        done = self.emitted_until
+        first = self._first_pending()
+        resume = min(until, first) if first is not None else until
+        if resume - done <= self.max_gap:
+            return
+        self.next_frame = math.ceil(resume * self.rate - 1e-9)
+        self.gaps.append((done, self.next_frame / self.rate))
+        self.held_t[:] = -np.inf
+        self.held_v[:] = np.nan
+        self.held_q[:] = QUALITY_NONE
+        self.grace_until = max(self.grace_until, resume)
+
     def emit(self, until: float) -> tuple[np.ndarray, TagFrames] | None:
-        """``(frame times, frames)`` with time <= ``until`` not emitted yet; None if there are none."""
+        """``(frame times, frames)`` with time <= ``until`` not emitted yet, at most ``max_frames`` of them (call
+        again for the rest); None if there are none. A gap longer than ``max_gap`` is skipped first."""
         if self.next_frame is None:
-            firsts = [p[0][0][0] for p in self._pend if p]
-            if not firsts:
+            first = self._first_pending()
+            if first is None:
                 return None
-            first = min(firsts)
             self.next_frame = math.ceil(first * self.rate - 1e-9)
-        last = math.floor(until * self.rate + 1e-9)
-        if last < self.next_frame:
+        elif math.isfinite(until) and until - self.emitted_until > self.max_gap:
+            self._skip_gap(until)
+        last = math.floor(until * self.rate + 1e-9) if math.isfinite(until) else None
+        if last is None or last < self.next_frame:
             return None
+        last = min(last, self.next_frame + self.max_frames - 1)
         frames = np.arange(self.next_frame, last + 1) / self.rate
         k = len(self.names)
         n = frames.shape[0]

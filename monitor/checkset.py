@@ -48,13 +48,18 @@ def alarm_points(line: Line, checks: list[Check]) -> list[AlarmPoint]:
     if problems:
         raise ConfigError(line.file, *problems[0], more=problems[1:])
     points = []
+    order: dict[str, str] = {}  # key path -> problem, once per table however many objects it covers
     for c in checks:
         d = c.defaults
         sec = cfg_checks.get(c.kind)
         s = _override(d.settings(), sec)
-        if sec is not None:
-            s = _override(s, sec.overrides.get(c.object_id))
+        over = sec.overrides.get(c.object_id) if sec is not None else None
+        s = _override(s, over)
         if not s.enabled:
+            continue
+        problem = limit_order_problem(d.direction, s.warning, s.alarm)
+        if problem is not None:
+            order.setdefault(_limit_key(c.kind, c.object_id, sec, over), problem)
             continue
         for level in LEVELS:
             limit = s.limit(level)
@@ -65,4 +70,34 @@ def alarm_points(line: Line, checks: list[Check]) -> list[AlarmPoint]:
                 deadband=s.deadband, on_delay=s.on_delay, off_delay=s.off_delay,
                 priority=s.level_priority(level), unit=d.unit, cause=s.cause, consequence=s.consequence,
                 action=s.action, response_time=s.response_time))
+    if order:
+        items = list(order.items())
+        raise ConfigError(line.file, *items[0], more=items[1:])
     return points
+
+
+def limit_order_problem(direction: str, warning: float | None, alarm: float) -> str | None:
+    """What is wrong with a warning limit beyond its alarm limit on the abnormal side, or None.
+
+    The warning comes first on the way to the alarm: for direction ``high`` (alarm when the
+    value rises to the limit) warning <= alarm; ``low``: warning >= alarm; ``abs``:
+    |warning| <= |alarm|. Otherwise the alarm would sound before (or without) its warning.
+    """
+    if warning is None:
+        return None
+    ok = {"high": warning <= alarm, "low": warning >= alarm, "abs": abs(warning) <= abs(alarm)}.get(direction, True)
+    if ok:
+        return None
+    side = {"high": "at most", "low": "at least", "abs": "in magnitude at most"}[direction]
+    return (f"expected the warning limit {side} the alarm limit {alarm:g} (direction {direction}: the warning comes "
+            f"first), got warning {warning:g}")
+
+
+def _limit_key(kind: str, object_id: str, sec: AlarmOverride | None, over: AlarmOverride | None) -> str:
+    """The key path of the most specific table that set the warning or the alarm limit."""
+    for table, prefix in ((over, f"checks.{kind}.overrides.{object_id}"), (sec, f"checks.{kind}")):
+        if table is not None:
+            for name in ("warning", "alarm"):
+                if getattr(table, name) is not None:
+                    return f"{prefix}.{name}"
+    return f"checks.{kind}.warning"

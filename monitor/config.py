@@ -15,6 +15,8 @@ and what was expected; the CLI prints it and exits with status 2.
 from __future__ import annotations
 
 import math
+import os
+import stat
 import tomllib
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -45,10 +47,31 @@ from spanwatch.monitor.schema import (
     Temperature,
     Tension,
     UnitName,
+    between,
+    finite_at_least,
 )
 from spanwatch.monitor.sources import MqttSource, OpcUaSource, SimulatedSource, Source, TopicMap, mqtt_settings
 
 __all__ = ["ConfigError", "MqttSource", "OpcUaSource", "SimulatedSource", "Source", "TopicMap", "mqtt_settings"]
+# the schema's generic quantity fields stay importable from here for other config files (scenarios)
+__all__ += ["Acceleration", "Frequency", "Modulus", "NonNegLength", "NonNegSpeed", "PosLength", "PosNumber", "PosSpeed",
+            "Temperature", "Tension"]
+
+
+# --- plausible ranges -----------------------------------------------------------------
+# Every quantity of the line file has a range; a value outside it is a typo or a unit slip (a width of
+# 1e-300 mm, a frame rate of a megahertz) that would switch a check off or allocate gigabytes, and is an
+# error. The ranges are wide: each covers the webs and lines the trade runs, with room to spare. Values in SI.
+
+SPEED_MAX = 60.0  # m/s; the fastest paper machines run about 2000 m/min = 33 m/s (from memory)
+TENSION_MAX = 1e6  # N/m; steel strip at 100 MPa across 10 mm of gauge (common practice, no source)
+DURATION_MAX = 86_400.0  # s; a delay, settling time or stale limit of more than a day is no monitoring
+LineSpeed = Annotated[float, between(U.SPEED, 0.0, SPEED_MAX)]
+WebTension = Annotated[float, between(U.TENSION, 0.0, TENSION_MAX)]
+Delay = Annotated[float, between(U.TIME, 0.0, DURATION_MAX, low_included=True)]
+# a surface roughness (Rq) above a millimetre is no roller face or web (common practice, no source)
+Roughness = Annotated[float, between(U.LENGTH, 0.0, 1e-3, low_included=True)]
+MAX_WINDOW_FRAMES = 100_000  # frames in one window of one signal (800 kB of float64): bounds check memory
 
 
 # --- the line -----------------------------------------------------------------------
@@ -59,37 +82,64 @@ class LineSection(Strict):
 
     name: str
     plant: str = ""
-    max_speed: PosSpeed
+    max_speed: LineSpeed
     speed_tag: TagName
     web_speed_from: Ident | None = Field(
         default=None, description="idler whose encoder gives the web speed; default: the speed reference")
-    frame_rate: Frequency = 50.0
-    stop_speed: NonNegSpeed = U.to_si("1 m/min", U.SPEED)
-    thread_speed: PosSpeed = U.to_si("20 m/min", U.SPEED)
-    accel_threshold: Acceleration = 0.02
-    accel_window: PosDuration = 1.0
-    settle_time: Duration = 5.0
-    min_drive_tension: Tension = U.to_si("0.1 pli", U.TENSION)
-    air_temperature: Temperature = 293.15
+    # at most 1 kHz: drive feedback on a fieldbus is read at about 1 kHz at best, and a faster grid only
+    # allocates frames (1 MHz: gigabytes); at least 1 Hz, or a 2 s check window holds 2 frames (common practice,
+    # no source)
+    frame_rate: Annotated[float, between(U.FREQUENCY, 1.0, 1000.0, low_included=True)] = 50.0
+    stop_speed: Annotated[float, between(U.SPEED, 0.0, SPEED_MAX, low_included=True)] = U.to_si("1 m/min", U.SPEED)
+    thread_speed: LineSpeed = U.to_si("20 m/min", U.SPEED)
+    # a line ramps at well under 1 m/s^2; 100 m/s^2 is a crash, not a ramp (common practice, no source)
+    accel_threshold: Annotated[float, between(U.ACCELERATION, 0.0, 100.0)] = 0.02
+    # the ramp detector's window: a few seconds; ten minutes would hide every ramp (common practice, no source)
+    accel_window: Annotated[float, between(U.TIME, 0.0, 600.0)] = 1.0
+    settle_time: Delay = 5.0
+    min_drive_tension: WebTension = U.to_si("0.1 pli", U.TENSION)
+    # the air around a web: a cold store (-73 degC) to a drying oven (427 degC) (common practice, no source)
+    air_temperature: Annotated[float, between(U.TEMPERATURE, 200.0, 700.0, low_included=True)] = 293.15
     air_film_model: Literal["linear", "none"] = "linear"
     air_speed_convention: Literal["mean", "sum"] = "mean"
     air_traction_floor: Fraction = 0.0
-    roll_change_jump: PosLength = 0.05
+    # a diameter step that marks a roll change: millimetres to metres (common practice, no source)
+    roll_change_jump: Annotated[float, between(U.LENGTH, 0.0, 10.0)] = 0.05
     encoder_ratio_tolerance: Fraction = 1e-4
-    check_window: PosDuration = 2.0
-    roll_settle_time: Duration = 10.0
+    # the checks' averaging window: seconds; more than ten minutes is no longer a running check
+    check_window: Annotated[float, between(U.TIME, 0.0, 600.0)] = 2.0
+    roll_settle_time: Delay = 10.0
+    # a longer stretch without any sample is a gap: frames skip it and the checks start afresh (common practice,
+    # no source: longer than any sample period or stale limit, shorter than a roll change)
+    max_gap: Annotated[float, between(U.TIME, 0.0, 86400.0)] = 30.0
+    # a sample further than this beyond its source's newest time (a recording) or the wall clock (live) is refused
+    future_horizon: Annotated[float, between(U.TIME, 0.0, 86400.0)] = 60.0
+
+    @model_validator(mode="after")
+    def _windows(self) -> LineSection:
+        for name in ("check_window", "accel_window"):
+            frames = getattr(self, name) * self.frame_rate
+            if frames > MAX_WINDOW_FRAMES:
+                raise ValueError(f"expected {name} times frame_rate at most {MAX_WINDOW_FRAMES} frames, got "
+                                 f"{getattr(self, name):g} s x {self.frame_rate:g} Hz = {frames:g}")
+        return self
 
 
 class MaterialSection(Strict):
     """The web: nominal single-ply caliper, width, modulus, roughness and how it packs."""
 
     name: str
-    caliper: PosLength
-    width: PosLength
-    modulus: Modulus
+    # capacitor film is about 2 um thick, board about 1 mm; 0.5 um to 20 mm covers every web (from memory)
+    caliper: Annotated[float, between(U.LENGTH, 0.5e-6, 0.02, low_included=True)]
+    # narrow tape of 1 mm to the widest paper machines, about 11 m (from memory)
+    width: Annotated[float, between(U.LENGTH, 1e-3, 20.0, low_included=True)]
+    # soft elastomer webs (about 1 MPa) to steel (200 GPa); 0.1 MPa to 1 TPa covers every solid (from memory)
+    modulus: Annotated[float, between(U.PRESSURE, 1e5, 1e12, low_included=True)]
     modulus_tolerance: Fraction = 0.15
-    roughness: NonNegLength = U.to_si("0.2 um", U.LENGTH)
-    stack_factor: PosNumber = 1.0
+    roughness: Roughness = U.to_si("0.2 um", U.LENGTH)
+    # a wound stack is a little thicker than its plies (air between wraps), never half or three times
+    # (common practice, no source)
+    stack_factor: Annotated[float, between(U.DIMENSIONLESS, 0.5, 3.0, low_included=True)] = 1.0
     stack_factor_tolerance: Fraction = 0.1
     caliper_drift: Fraction = 0.02
     air_film_factor: Fraction = 1.0
@@ -99,22 +149,33 @@ class RollerSection(Strict):
     """A roller on the web path; idle unless ``driven``."""
 
     id: Ident
-    diameter: PosLength
+    # spreader bars and small idlers (5 mm) to the largest drying cylinders (about 6.5 m) (from memory)
+    diameter: Annotated[float, between(U.LENGTH, 5e-3, 8.0, low_included=True)]
     wrap: Angle
-    cof: PosNumber
-    roughness: NonNegLength = U.to_si("0.4 um", U.LENGTH)
+    # rubber on film is rarely above 1.5; 5 leaves room (common practice, no source)
+    cof: Annotated[float, between(U.DIMENSIONLESS, 0.0, 5.0)]
+    roughness: Roughness = U.to_si("0.4 um", U.LENGTH)
     driven: bool = False
     covering: str = "steel"
     air_film_factor: Fraction = 1.0
     speed_tag: TagName | None = None
-    draw: Ratio = 0.0
+    # speed above the web, as a fraction: a slow-down of 90 % to a machine-direction orienter's stretch of
+    # about 7x (draw 6) (from memory)
+    draw: Annotated[float, between(U.DIMENSIONLESS, -0.9, 10.0, low_included=True)] = 0.0
     safety_factor: Annotated[float, AfterValidator(lambda v: _at_least_one(v))] = 1.5
     runout_check: bool = False
 
 
+def _at_most(v: float, high: float) -> float:
+    if v > high:
+        raise ValueError(f"expected at most {high:g}, got {v!r}")
+    return v
+
+
 def _at_least_one(v: float) -> float:
-    if not (v >= 1.0 and math.isfinite(v)):
-        raise ValueError(f"expected a safety factor of at least 1, got {v!r}")
+    # at least 1 (capacity is divided by it); above 10 the check would never warn (common practice, no source)
+    if not (1.0 <= v <= 10.0 and math.isfinite(v)):
+        raise ValueError(f"expected a safety factor from 1 to 10, got {v!r}")
     return v
 
 
@@ -134,15 +195,17 @@ class WinderSection(Strict):
 
     id: Ident
     kind: Literal["unwind", "rewind"]
-    core_diameter: PosLength
-    max_diameter: PosLength
+    # cores of 5 mm (tape) to 3 m; rolls up to about 4 m (paper reels), 8 m with room (from memory)
+    core_diameter: Annotated[float, between(U.LENGTH, 5e-3, 3.0, low_included=True)]
+    max_diameter: Annotated[float, between(U.LENGTH, 5e-3, 8.0, low_included=True)]
     diameter_tag: TagName | None = None
     rpm_tag: TagName | None = None
     length_tag: TagName | None = None
     core_change_tag: TagName | None = None
     taper: TaperSection | None = None
     runout_check: bool = True
-    calibration_length: PosLength = 300.0
+    # web length over which a length counter is compared: a metre to a thousand kilometres (a whole roll)
+    calibration_length: Annotated[float, between(U.LENGTH, 1.0, 1e6, low_included=True)] = 300.0
 
     @model_validator(mode="after")
     def _diameters(self) -> WinderSection:
@@ -159,9 +222,10 @@ class SpanSection(Strict):
     id: Ident
     from_: Ident = Field(alias="from")
     to: Ident
-    length: PosLength
+    # a millimetre (two rollers touching) to a kilometre (through an oven) (common practice, no source)
+    length: Annotated[float, between(U.LENGTH, 1e-3, 1000.0, low_included=True)]
     tension_tag: TagName | None = None
-    setpoint: Tension | None = None
+    setpoint: WebTension | None = None
 
     @model_validator(mode="after")
     def _setpoint(self) -> SpanSection:
@@ -175,17 +239,21 @@ class TagSection(Strict):
 
     unit: UnitName
     range: tuple[float, float] | None = None
-    sample_period: PosDuration = 0.02
-    stale_after: PosNumber = 5.0
-    frozen_after: PosDuration | None = None
-    frozen_tolerance: float = 0.0
+    # 0.1 ms (10 kHz, faster than any drive feedback a line PC reads) to an hour (a lab value entered by hand);
+    # a picosecond would make every tag stale at once (common practice, no source)
+    sample_period: Annotated[float, between(U.TIME, 1e-4, 3600.0, low_included=True)] = 0.02
+    # in sample periods: at least one (stale before the next sample is due is a false alarm), at most a million
+    stale_after: Annotated[float, finite_at_least(1.0, "a number of sample periods"),
+                           AfterValidator(lambda v: _at_most(v, 1e6))] = 5.0
+    frozen_after: Annotated[float, between(U.TIME, 0.0, DURATION_MAX)] | None = None
+    frozen_tolerance: Annotated[float, finite_at_least(0.0, "a tolerance in the tag's unit")] = 0.0
     accuracy: float | str | None = Field(
         default=None, description="absolute, in the tag's unit, or relative such as \"0.5 %\"")
     source: str | None = Field(default=None, description="the [sources] entry; default: the only source")
     address: str | None = None
 
     @model_validator(mode="after")
-    def _range(self) -> TagSection:
+    def _range(self) -> TagSection:  # NaN fails low < high
         if self.range is not None and not (self.range[0] < self.range[1]):
             raise ValueError(f"expected range [low, high] with low < high, got {list(self.range)!r}")
         return self
@@ -195,11 +263,11 @@ class AlarmOverride(Strict):
     """Per-object changes to a check's alarm settings (any subset of the fields)."""
 
     enabled: bool | None = None
-    warning: Ratio | None = None
+    warning: Ratio | None = None  # finite (a NaN limit never trips); its order against alarm: monitor/checkset.py
     alarm: Ratio | None = None
-    deadband: Ratio | None = None
-    on_delay: Duration | None = None
-    off_delay: Duration | None = None
+    deadband: Annotated[float, between(U.DIMENSIONLESS, 0.0, math.inf, low_included=True)] | None = None
+    on_delay: Delay | None = None
+    off_delay: Delay | None = None
     priority: Priority | None = None
     warning_priority: Priority | None = None
 
@@ -210,7 +278,7 @@ class CheckSection(AlarmOverride):
     cause: str | None = None
     consequence: str | None = None
     action: str | None = None
-    response_time: Duration | None = None
+    response_time: Delay | None = None
     overrides: dict[Ident, AlarmOverride] = Field(default_factory=dict)
 
 
@@ -227,9 +295,15 @@ class DaemonSection(Strict):
                                   "history URL (spanwatch.connectors.secrets)")
     http: str = "127.0.0.1:9108"
     latency: PosDuration = Field(
-        default=0.02, description="how far behind the clock frames are computed, on top of the delivery delay "
-                                  "the daemon observes (which follows e.g. an OPC UA publishing interval)")
-    max_latency: PosDuration = 10.0
+        default=0.1, description="how far behind the newest source time frames are computed: a sample arriving "
+                                 "up to this much out of step with the others is folded into its frame")
+    lost_after: PosDuration = Field(
+        default=5.0, description="a source that delivers nothing for this long is lost: frames go on without it")
+    delay_limit: PosDuration = Field(
+        default=30.0, description="a source whose newest time is further behind the wall clock is delayed")
+    degraded_rate: Fraction = Field(
+        default=0.01, description="share of samples refused, late or lost over the last minute that makes the "
+                                  "status degraded")
     tick: PosDuration = 0.05
     startup_grace: Duration = 10.0
     log_level: Literal["debug", "info", "warning", "error"] = "info"
@@ -294,32 +368,95 @@ def parse_config(data: dict[str, Any], file: str | Path = "<config>") -> LineCon
         raise ConfigError(file, *problems[0], more=problems[1:]) from None
 
 
-def read_toml(path: Path, _depth: int = 0) -> tuple[dict[str, Any], list[Path]]:
+MAX_FILE_BYTES = 1 << 20  # a line file is about 10 kB; a megabyte is no line description (a log, an image, a device)
+MAX_EXTENDS = 4  # levels of extends: a base, a site variant, a source variant and one more
+MAX_NESTING = 32  # tables and arrays within each other; the schema's deepest is 4
+
+
+def _read_file(path: Path) -> bytes:
+    """The bytes of a line file; ValueError (the reason) for what is no regular file of a sensible size.
+
+    Opened without blocking, so that a FIFO cannot hang the reader; checked on the open file (a
+    device such as /dev/zero or /dev/urandom would be read forever); read at most one byte past
+    the limit, so that a file that grows cannot exhaust memory.
+    """
+    flags = os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_CLOEXEC", 0)
+    try:
+        fd = os.open(path, flags)
+    except OSError as exc:
+        raise ValueError(f"cannot read the file ({exc.strerror})") from None
+    mode = os.fstat(fd).st_mode
+    if not stat.S_ISREG(mode):
+        os.close(fd)
+        what = ("a directory" if stat.S_ISDIR(mode) else "a FIFO" if stat.S_ISFIFO(mode)
+                else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) else "a socket")
+        raise ValueError(f"expected a line file (a regular file), got {what}")
+    with os.fdopen(fd, "rb") as fh:
+        try:
+            raw = fh.read(MAX_FILE_BYTES + 1)
+        except OSError as exc:
+            raise ValueError(f"cannot read the file ({exc.strerror})") from None
+    if len(raw) > MAX_FILE_BYTES:
+        raise ValueError(f"expected a line file of at most {MAX_FILE_BYTES // 1024} kB, got a larger file")
+    return raw
+
+
+def _nesting(doc: Any) -> int:
+    """How deep tables and arrays sit within each other (iterative: a deep document must not recurse)."""
+    deepest = 0
+    stack: list[tuple[Any, int]] = [(doc, 1)]
+    while stack:
+        node, depth = stack.pop()
+        deepest = max(deepest, depth)
+        if depth > MAX_NESTING:
+            break
+        children = node.values() if isinstance(node, dict) else node
+        stack.extend((c, depth + 1) for c in children if isinstance(c, dict | list))
+    return deepest
+
+
+def read_toml(path: Path, _chain: tuple[Path, ...] = ()) -> tuple[dict[str, Any], list[Path]]:
     """Read a TOML file, following ``extends = "base.toml"`` (relative to the file).
 
     The file's tables are merged into its base's, key by key (arrays and values replace);
     so a live-source variant of a line lists only its ``[sources]``, ``[daemon]`` and the tag
-    addresses. Returns the merged document and the files it came from, base first.
+    addresses. Returns the merged document and the files it came from, base first. What cannot
+    be a line file (a device, a FIFO, a directory, more than :data:`MAX_FILE_BYTES`, tables
+    nested deeper than :data:`MAX_NESTING`, more than :data:`MAX_EXTENDS` levels of extends, a
+    cycle) is a :class:`ConfigError`; one in a base names the file that extends it.
     """
     try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise ConfigError(path, "", f"cannot read the file ({exc.strerror})") from None
+        raw = _read_file(path)
+    except ValueError as exc:
+        raise ConfigError(path, "", str(exc)) from None
     try:
         data = tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError:
         raise ConfigError(path, "", "expected a UTF-8 text file") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(path, "", f"expected valid TOML: {exc}") from None
+    except RecursionError:
+        raise ConfigError(path, "", f"expected tables and arrays nested at most {MAX_NESTING} deep") from None
+    if _nesting(data) > MAX_NESTING:
+        raise ConfigError(path, "", f"expected tables and arrays nested at most {MAX_NESTING} deep")
     base = data.pop("extends", None)
     if base is None:
         return data, [path]
     if not isinstance(base, str):
         raise ConfigError(path, "extends", f"expected the path of a base line file, got {base!r}")
-    if _depth >= 4:
-        raise ConfigError(path, "extends", "expected at most 4 levels of extends")
     base_path = Path(base) if Path(base).is_absolute() else path.parent / base
-    merged, files = read_toml(base_path, _depth + 1)
+    chain = (*_chain, path.resolve())
+    if base_path.resolve() in chain:
+        cycle = " -> ".join(str(p) for p in (*chain[chain.index(base_path.resolve()):], base_path.resolve()))
+        raise ConfigError(path, "extends", f"expected a base that does not extend this file again (a cycle: {cycle})")
+    if len(chain) > MAX_EXTENDS:
+        raise ConfigError(path, "extends", f"expected at most {MAX_EXTENDS} levels of extends")
+    try:
+        merged, files = read_toml(base_path, chain)
+    except ConfigError as exc:  # named from this file down: "a.toml: extends: b.toml: <what is wrong with b>"
+        if len(exc.problems) > 1:
+            raise
+        raise ConfigError(path, "extends", f"{exc.file}: {exc.key + ': ' if exc.key else ''}{exc.message}") from None
     return _merge(merged, data), [*files, path]
 
 

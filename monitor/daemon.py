@@ -25,7 +25,6 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-import numpy as np
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
 from spanwatch.connectors.live import LiveConnector
@@ -55,19 +54,16 @@ class Daemon:
     """Owns the pipeline, the connectors, the history and the HTTP endpoint of one line."""
 
     def __init__(self, line: Line, *, history_url: str | None = None, http: str | None = None,
-                 clock: Callable[[], float] = time.time, latency: float | None = None, tick: float | None = None,
-                 max_latency: float | None = None,
+                 clock: Callable[[], float] = time.time, elapsed: Callable[[], float] | None = None,
+                 latency: float | None = None, lost_after: float | None = None, tick: float | None = None,
                  connectors: list[LiveConnector] | None = None,
                  on_transition: Callable[[Transition], None] | None = None, mode: str = "daemon") -> None:
         d = line.config.daemon
         self.line = line
-        self.clock = clock
-        latency = d.latency if latency is None else latency
-        self.latency = latency
-        self.max_latency = max(latency, d.max_latency if max_latency is None else max_latency)
-        self.delay = 0.0  # observed delivery delay (95th percentile of recent batches), seconds of the clock
-        self._delays: deque[float] = deque(maxlen=500)
-        self.frame_latency = latency
+        self.clock = clock  # the wall clock: start time, the future horizon, how far a source is behind
+        # the elapsed clock, in the same units: it never steps (time.monotonic, or a paced simulation's clock)
+        self.elapsed = elapsed if elapsed is not None else (time.monotonic if clock is time.time else clock)
+        self.frame_latency = 0.0  # how far behind the wall clock frames are computed, for the status
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
         self.history = History(history_url or d.history)
@@ -76,10 +72,15 @@ class Daemon:
         if mode == "daemon":  # one log line per transition (spanwatch.monitor.daemonlog); the demo prints its own
             on_transition = _logged(on_transition)
         self.pipe = Pipeline(line, self.history, on_transition=on_transition)
+        if latency is not None:
+            self.pipe.clocks.hold = latency
+        if lost_after is not None:
+            self.pipe.clocks.lost_after = lost_after
+        self._counts: deque[tuple[float, int, int]] = deque()  # (elapsed, samples seen, samples refused/late/lost)
         restored = carry_on_open_alarms(self.history, self.pipe.engine)
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
-        self.inbox: list[tuple[float, SampleBatch]] = []  # (clock at arrival, batch)
+        self.inbox: list[tuple[float, float, SampleBatch]] = []  # (elapsed and wall clock at arrival, batch)
         self.connectors = connectors if connectors is not None else build_connectors(line, self.receive)
         self.publishers = self._publishers()
         self.stats = TickStats()
@@ -106,6 +107,7 @@ class Daemon:
     async def run(self) -> None:
         """Run until :meth:`request_stop` (or SIGTERM / SIGINT when installed)."""
         self.pipe.aligner.start_at(self.clock(), grace=self.line.config.daemon.startup_grace)
+        self.pipe.clocks.begin(self.clock(), self.elapsed())
         if self.http:
             await self._start_http()
         for p in self.publishers:
@@ -145,17 +147,26 @@ class Daemon:
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
         if len(batch):
-            self.inbox.append((self.clock(), batch))
+            self.inbox.append((self.elapsed(), self.clock(), batch))
 
     def step(self, *, final: bool = False) -> list[Transition]:
-        """Feed what arrived, compute frames up to now minus the latency allowance, record, publish."""
+        """Feed what arrived, compute the frames its event time allows, record, publish.
+
+        Frames wait for the data of their time (each source's watermark, see
+        :mod:`spanwatch.monitor.watermarks`), not for the wall clock, so a loaded machine or a slow
+        delivery delays the alarms a little but never makes tags stale; a source that delivers
+        nothing for ``lost_after`` stops holding the others back and raises its own alarm.
+        """
         t0 = time.perf_counter()
         arrived, self.inbox[:] = list(self.inbox), []
-        for b in _merged([b for _, b in arrived]):
-            self.pipe.ingest(b)
-        for at, b in arrived:
-            self._delays.append(at - float(b.t.max()))
-        trs = self.pipe.advance(self._until(final))
+        if arrived:
+            elapsed, wall = max(a[0] for a in arrived), max(a[1] for a in arrived)
+            for b in _merged([a[2] for a in arrived]):
+                self.pipe.ingest(b, elapsed=elapsed, wall=wall)
+        until = self.pipe.last_t if final else self.pipe.clocks.bound(self.elapsed())
+        trs = self.pipe.advance(until) if until is not None else []
+        if until is not None:
+            self.frame_latency = max(0.0, self.clock() - until)
         self.stats.ticks += 1
         self.stats.eval_seconds += time.perf_counter() - t0
         self.stats.last_tick_wall = time.time()
@@ -165,23 +176,31 @@ class Daemon:
             active = self.pipe.engine.active()
             for p in self.publishers:
                 p.publish(trs, active)
+        self._note_counts()
         return trs
 
-    def _until(self, final: bool) -> float:
-        """How far frames may be computed.
+    # reasons a sample was not used as it should have been (malformed payloads are counted by the connectors)
+    TROUBLE = ("out of order", "duplicate timestamp", "late", "future time", "malformed", "unknown tag")
 
-        ``clock - (latency + observed delivery delay)``: the delay is how far behind the clock the newest
-        sample of each batch was when it arrived (slow delivery, a source clock behind ours), the
-        95th percentile over the last 500 batches, so ordinary delivery does not read as stale tags; capped
-        at ``max_latency`` so a source that has really stopped still goes stale within that time.
-        """
-        now = self.clock()
-        if final:
-            return self.pipe.last_t if self.pipe.last_t is not None else now
-        if self._delays:
-            self.delay = float(np.percentile(self._delays, 95))
-        self.frame_latency = min(self.max_latency, self.latency + max(0.0, self.delay))
-        return now - self.frame_latency
+    def _trouble(self) -> int:
+        refused = sum(self.pipe.inputs.total(r) for r in self.TROUBLE)
+        lost = sum(c.stats.malformed_total + c.stats.overflow + sum(getattr(c.stats, "lost", {}).values())
+                   for c in self.connectors)
+        return refused + lost
+
+    def _note_counts(self) -> None:
+        now = self.elapsed()
+        seen = self.pipe.samples + self._trouble()
+        self._counts.append((now, seen, self._trouble()))
+        while len(self._counts) > 2 and now - self._counts[1][0] > 60.0:
+            self._counts.popleft()
+
+    def trouble_rate(self) -> float:
+        """Share of the samples of the last minute that were refused, late or lost (0 when none arrived)."""
+        if len(self._counts) < 2:
+            return 0.0
+        (_, seen0, bad0), (_, seen1, bad1) = self._counts[0], self._counts[-1]
+        return (bad1 - bad0) / (seen1 - seen0) if seen1 > seen0 else 0.0
 
     def request_stop(self, reason: str = "stop requested") -> None:
         if not self.stopping.is_set():
@@ -205,11 +224,29 @@ class Daemon:
 
     def status(self) -> dict[str, object]:
         now = time.time()
+        d = self.line.config.daemon
         fresh = now - self.stats.last_tick_wall < max(5.0, 20 * self.tick)
         up = [c for c in self.connectors if c.state == "connected"]
-        healthy = fresh and (bool(up) or not self.connectors)
+        elapsed, wall = self.elapsed(), self.clock()
+        sources = {}
+        for name in self.line.config.sources:
+            state, delay = self.pipe.clocks.state(name, elapsed, wall, d.delay_limit)
+            sources[name] = {"state": state, "behind_s": None if delay is None else round(delay, 3)}
+        rate = self.trouble_rate()
+        reasons = []
+        if not fresh:
+            reasons.append("the pipeline has not run for a while")
+        if self.connectors and not up:
+            reasons.append("no source connected")
+        reasons += [f"source {n} {v['state']}" for n, v in sources.items() if v["state"] in ("lost", "delayed")]
+        if rate > d.degraded_rate:
+            by = {r: self.pipe.inputs.total(r) for r in self.TROUBLE if self.pipe.inputs.total(r)}
+            reasons.append(f"{rate:.1%} of the samples of the last minute refused, late or lost ({by})")
         return {
-            "status": "ok" if healthy else "degraded",
+            "status": "degraded" if reasons else "ok",
+            "reasons": reasons,
+            "sources": sources,
+            "trouble_rate": round(rate, 4),
             "line": self.line.name,
             "line_state": None if self.pipe.line_state is None else int(self.pipe.line_state),
             "frames": self.pipe.frames,
@@ -218,7 +255,8 @@ class Daemon:
             "active_alarms": [p.key for p in self.pipe.engine.active()],
             "connectors": {c.name: {"kind": c.kind, "state": c.state, "samples_in": c.stats.samples_in,
                                     "reconnects": c.stats.reconnects, "malformed": c.stats.malformed_total,
-                                    "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error}
+                                    "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error,
+                                    "lost": dict(c.stats.lost), "publisher_restarts": c.stats.publisher_restarts}
                            for c in self.connectors},
             "input_issues": {f"{r['tag']}: {r['reason']}": r["count"] for r in self.pipe.inputs.rows()},
         }

@@ -118,7 +118,7 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
 
     publishing = max(s.publishing_interval for s in live_line.config.sources.values())  # type: ignore[union-attr]
     daemon = Daemon(live_line, history_url=sqlite_url(str(db)), http="", clock=server.clock,
-                    latency=(publishing + 0.05) * speedup, max_latency=5.0 * speedup, on_transition=show, mode="demo")
+                    latency=(publishing + 0.05) * speedup, lost_after=5.0 * speedup, on_transition=show, mode="demo")
     _banner(console, line.name, line.config.line.plant, name, total, speedup, db, _faults(sim),
             f"behind an OPC UA server at {server.endpoint}")
     wall0 = time.perf_counter()

@@ -10,6 +10,7 @@ path of the offending entry.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -280,12 +281,15 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                 length_accuracy=tags[sec.length_tag].accuracy if sec.length_tag else none,
                 runout_check=sec.runout_check)
     computed = {f"diameter/{w.id}" for w in winders.values() if not w.has_diameter_sensor and w.has_rpm}
+    only = next(iter(cfg.sources)) if len(cfg.sources) == 1 else None
+    source_of = {n: (t.source or only) for n, t in cfg.tags.items()}
     return LineModel(
         name=lw.name, settings=settings, material=material, path=path, rollers=rollers, winders=winders,
         zones=zones, tags={n: Tag(name=n, low=t.low, high=t.high, sample_period=t.sample_period,
                                   stale_after=t.stale_after, frozen_after=t.frozen_after,
-                                  frozen_tolerance=t.frozen_tolerance) for n, t in tags.items()},
-        signals=frozenset({s.name for s in signals} | computed))
+                                  frozen_tolerance=t.frozen_tolerance, source=source_of.get(n))
+              for n, t in tags.items()},
+        signals=frozenset({s.name for s in signals} | computed), sources=tuple(cfg.sources))
 
 
 class _Errors:
@@ -352,17 +356,32 @@ def _web_path(cfg: LineConfig, elements: dict[str, Element], err: _Errors) -> tu
     return tuple(path)
 
 
-def _accuracy(raw: object, key: str, scale: float, err: _Errors) -> tuple[float, float]:
+def _accuracy(raw: object, key: str, scale: float, span: float, err: _Errors) -> tuple[float, float]:
+    """(absolute SI, relative) from a number in the tag's unit or a percentage.
+
+    NaN, infinite and negative values are errors (a NaN band never holds a residual, so the
+    check would never fire; a negative one is a sign slip); so is a relative accuracy above
+    100 % or an absolute one wider than the tag's whole range (``span``, in the tag's unit).
+    """
     if raw is None:
         return (0.0, 0.0)
     try:
         if isinstance(raw, str) and raw.strip().endswith("%"):
-            return (0.0, U.to_si(raw, U.DIMENSIONLESS))
-        return (abs(float(raw)) * scale, 0.0)  # type: ignore[arg-type]
+            rel = U.to_si(raw, U.DIMENSIONLESS)
+            if not 0.0 <= rel <= 1.0:
+                err.add(key, f"expected a relative accuracy from 0 to 100 %, got {raw!r}")
+            return (0.0, rel)
+        value = float(raw)  # type: ignore[arg-type]
     except (ValueError, TypeError):
         err.add(key, f"expected an accuracy in the tag's unit (a number) or a percentage such as \"0.5 %\", "
                      f"got {raw!r}")
         return (0.0, 0.0)
+    if not (math.isfinite(value) and value >= 0.0):
+        err.add(key, f"expected an accuracy of at least 0 in the tag's unit (finite), got {raw!r}")
+        return (0.0, 0.0)
+    if value > span:
+        err.add(key, f"expected an accuracy within the tag's range (at most {span:g} in its unit), got {raw!r}")
+    return (value * abs(scale), 0.0)
 
 
 def _tags(cfg: LineConfig, err: _Errors) -> dict[str, TagInfo]:
@@ -372,7 +391,8 @@ def _tags(cfg: LineConfig, err: _Errors) -> dict[str, TagInfo]:
         assert kind is not None  # the schema checked it
         scale, offset = U.converter(t.unit, kind) if kind is not U.DIMENSIONLESS else (1.0, 0.0)
         low, high = (t.range if t.range is not None else (-np.inf, np.inf))
-        acc = _accuracy(t.accuracy, f'tags."{name}".accuracy', scale, err)
+        span = (high - low) if math.isfinite(high - low) else math.inf
+        acc = _accuracy(t.accuracy, f'tags."{name}".accuracy', scale, span, err)
         out[name] = TagInfo(
             name=name, unit=t.unit, kind=kind, scale=scale, offset=offset,
             low=low * scale + offset, high=high * scale + offset,

@@ -26,6 +26,10 @@ class DaemonCollector:
                                   labels=["source"])
         overflow = CounterMetricFamily("spanwatch_queue_overflow", "Queue overflow events", labels=["source"])
         malformed = CounterMetricFamily("spanwatch_malformed_messages", "Malformed messages", labels=["source"])
+        lost = CounterMetricFamily("spanwatch_samples_lost", "Messages lost before they arrived (dropped by a "
+                                   "broker), by how it was seen: sequence or time gap", labels=["source", "how"])
+        restarts = CounterMetricFamily("spanwatch_publisher_restarts", "Sequence numbers that started again",
+                                       labels=["source"])
         for c in d.connectors:
             samples.add_metric([c.name], c.stats.samples_in)
             up.add_metric([c.name], 1.0 if c.state == "connected" else 0.0)
@@ -33,7 +37,10 @@ class DaemonCollector:
             depth.add_metric([c.name], c.stats.queue_depth)
             overflow.add_metric([c.name], c.stats.overflow)
             malformed.add_metric([c.name], c.stats.malformed_total)
-        yield from (samples, up, reconnects, depth, overflow, malformed)
+            for how, n in dict(c.stats.lost).items():
+                lost.add_metric([c.name, how], n)
+            restarts.add_metric([c.name], c.stats.publisher_restarts)
+        yield from (samples, up, reconnects, depth, overflow, malformed, lost, restarts)
         evals = SummaryMetricFamily("spanwatch_check_evaluation_seconds", "Time per tick spent in the pipeline",
                                     count_value=d.stats.ticks, sum_value=d.stats.eval_seconds)
         yield evals

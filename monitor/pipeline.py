@@ -11,6 +11,8 @@ block of frames; Python loops run per block, per check and per alarm transition.
 
 from __future__ import annotations
 
+import logging
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -22,10 +24,15 @@ from spanwatch.monitor.context import ContextRecorder
 from spanwatch.monitor.inputs import InputStats
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.signals import SignalDeriver
+from spanwatch.monitor.watermarks import Watermarks
 from spanwatch.rules.alarms import AlarmEngine, Transition
-from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason
+from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason, Signal
 from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
 from spanwatch.rules.samples import SampleBatch
+from spanwatch.rules.values import iso
+from spanwatch.rules.windows import forward_fill_index
+
+log = logging.getLogger("spanwatch.pipeline")
 
 
 @dataclass
@@ -55,16 +62,23 @@ class Pipeline:
                  on_transition: Callable[[Transition], None] | None = None, context: bool = True,
                  replay_lag: float | None = None) -> None:
         self.line = line
-        lw = line.config.line
+        lw, d = line.config.line, line.config.daemon
         self.names = tuple(line.tags)
         self.frame_rate = lw.frame_rate
-        self.aligner = Aligner(self.names, lw.frame_rate)
+        self.aligner = Aligner(self.names, lw.frame_rate, max_gap=lw.max_gap)
         self.deriver = SignalDeriver(line, self.names)
-        self.tracker = LineStateTracker(stop_speed=lw.stop_speed, thread_speed=lw.thread_speed,
-                                        accel_threshold=lw.accel_threshold, accel_window=lw.accel_window,
-                                        settle_time=lw.settle_time, frame_rate=lw.frame_rate)
-        self.rolls = {w.id: RollChangeDetector(jump=lw.roll_change_jump, settle_time=lw.roll_settle_time)
-                      for w in line.winders}
+        self._new_trackers()
+        # event time: one watermark per live source ("" for the tags of a recording)
+        model_tags = line.model.tags
+        self.source_names = tuple(dict.fromkeys(model_tags[n].source or "" for n in self.names))
+        self.source_col = np.array([self.source_names.index(model_tags[n].source or "") for n in self.names])
+        self.clocks = Watermarks(self.source_names, hold=d.latency, lost_after=d.lost_after,
+                                 future_horizon=lw.future_horizon)
+        self.gaps = 0
+        self._last_silent: dict[str, float] = {}
+        self._periods = np.array([line.tags[n].sample_period for n in self.names])
+        self._source_cols = [(name, np.flatnonzero(self.source_col == self.source_names.index(name)))
+                             for name in line.model.sources if name in self.source_names]
         self.checks = build_checks(line)
         self.points = alarm_points(line, self.checks)
         self.engine = AlarmEngine(self.points)
@@ -87,6 +101,14 @@ class Pipeline:
         self.line_state: int | None = None
         self.transitions = 0
 
+    def _new_trackers(self) -> None:
+        lw = self.line.config.line
+        self.tracker = LineStateTracker(stop_speed=lw.stop_speed, thread_speed=lw.thread_speed,
+                                        accel_threshold=lw.accel_threshold, accel_window=lw.accel_window,
+                                        settle_time=lw.settle_time, frame_rate=lw.frame_rate)
+        self.rolls = {w.id: RollChangeDetector(jump=lw.roll_change_jump, settle_time=lw.roll_settle_time)
+                      for w in self.line.winders}
+
     # --- input ---------------------------------------------------------------------------
 
     def _map(self, tags: tuple[str, ...]) -> np.ndarray:
@@ -97,8 +119,13 @@ class Pipeline:
             self._maps[tags] = m
         return m
 
-    def ingest(self, batch: SampleBatch) -> None:
-        """Take a batch of raw samples: map tags, convert to SI, count bad input, queue for alignment."""
+    def ingest(self, batch: SampleBatch, *, elapsed: float | None = None, wall: float | None = None) -> None:
+        """Take a batch of raw samples: map tags, convert to SI, count bad input, queue for alignment.
+
+        ``elapsed`` is the elapsed clock at arrival (live; it never steps), ``wall`` the wall clock; a
+        replay gives neither. Each source's watermark moves with what is accepted (see
+        :mod:`spanwatch.monitor.watermarks`); samples too far in the future are refused.
+        """
         if len(batch) == 0:
             return
         col = self._map(batch.tags)[batch.tag]
@@ -112,13 +139,26 @@ class Pipeline:
                 self.inputs.add(name, "unknown tag", refs, count=int(sel.sum()))
             keep = ~unknown
             col, batch = col[keep], _take(batch, keep)
-        t, q, ref = batch.t, batch.quality, batch.ref
+        t, q, ref = batch.t.astype(float, copy=True), batch.quality, batch.ref
         v = batch.value * self.scale[col] + self.offset[col]
         bad_t = ~np.isfinite(t)
         if bad_t.any():
             for c in np.unique(col[bad_t]):
                 self.inputs.add(self.names[c], "malformed", ref[bad_t & (col == c)])
             keep = ~bad_t
+            col, t, v, q, ref = col[keep], t[keep], v[keep], q[keep], ref[keep]
+        src = self.source_col[col]
+        future = np.zeros(t.size, dtype=bool)
+        when = time.monotonic() if elapsed is None else elapsed
+        for s in np.unique(src):
+            sel = src == s
+            ts = t[sel]
+            future[sel] = self.clocks.accept(self.source_names[int(s)], ts, when, wall)
+            t[sel] = ts  # shifted when the source's clock stepped back
+        if future.any():
+            for c in np.unique(col[future]):
+                self.inputs.add(self.names[c], "future time", ref[future & (col == c)])
+            keep = ~future
             col, t, v, q, ref = col[keep], t[keep], v[keep], q[keep], ref[keep]
         nonfinite = ~np.isfinite(v)
         if nonfinite.any():
@@ -137,21 +177,46 @@ class Pipeline:
                 if reason != "late":
                     accepted &= ~mask
         self.samples += int(accepted.sum())
-        if t.size:
-            lo, hi = float(np.min(t)), float(np.max(t))
+        if accepted.any():
+            lo, hi = float(np.min(t[accepted])), float(np.max(t[accepted]))
             self.first_t = lo if self.first_t is None else min(self.first_t, lo)
             self.last_t = hi if self.last_t is None else max(self.last_t, hi)
 
     # --- processing ----------------------------------------------------------------------
 
     def next_block(self, until: float) -> Block | None:
-        """The frames up to ``until`` (epoch s) as a block the checks read: aligned tags, SI signals, line state
-        and roll changes; None when no frame is due."""
+        """The next frames up to ``until`` (epoch s; at most the aligner's ``max_frames``) as a block the checks
+        read: aligned tags, SI signals, each source's lag, line state and roll changes; None when no frame is due.
+
+        After a gap (the aligner skipped a stretch without any sample) every check, the line-state tracker and
+        the roll-change detectors start afresh.
+        """
+        gaps = len(self.aligner.gaps)
         out = self.aligner.emit(until)
         if out is None:
             return None
+        if len(self.aligner.gaps) != gaps:
+            self.gaps += 1
+            before, after = self.aligner.gaps[-1]
+            log.warning("no data from %s to %s (%.0f s): the gap is skipped and the checks start afresh",
+                        iso(before), iso(after), after - before)
+            for c in self.checks:
+                c.reset()
+            self._new_trackers()
         t, frames = out
         signals = self.deriver.derive(frames)
+        for name, cols in self._source_cols:
+            # how long the source has been silent at each frame beyond what its fastest tag's period allows
+            with np.errstate(invalid="ignore"):
+                lag = np.maximum(0.0, np.min(frames.age[:, cols] - self._periods[cols], axis=1))
+            signals[f"source_lag/{name}"] = Signal(lag, np.isfinite(lag))
+            # seconds since the source was last silent: a tag is not judged stale on a silence that was its source's
+            silent = lag > 0
+            idx = forward_fill_index(silent)
+            last = np.where(idx >= 0, t[np.maximum(idx, 0)], self._last_silent.get(name, -np.inf))
+            if t.size:
+                self._last_silent[name] = float(last[-1])
+            signals[f"source_quiet/{name}"] = Signal(t - last, np.ones(t.size, dtype=bool))
         block = Block(t=t, signals=signals, line_state=np.zeros(t.size, np.int8), tags=frames)
         apply_line_state(block, self.tracker)
         for wid, det in self.rolls.items():
@@ -160,10 +225,13 @@ class Pipeline:
         return block
 
     def advance(self, until: float) -> list[Transition]:
-        """Compute every frame up to ``until`` (epoch s); return the alarm transitions they caused."""
-        block = self.next_block(until)
-        if block is None:
-            return []
+        """Compute every frame up to ``until`` (epoch s), block by block; return the alarm transitions they caused."""
+        out: list[Transition] = []
+        while (block := self.next_block(until)) is not None:
+            out += self._evaluate(block)
+        return out
+
+    def _evaluate(self, block: Block) -> list[Transition]:
         t, frames, signals = block.t, block.tags, block.signals
         results: dict[tuple[str, str], CheckResult] = {}
         for c in self.checks:

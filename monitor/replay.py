@@ -40,15 +40,19 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
     problems = ReadProblems()
     total = recording.stat().st_size
     raised: dict[str, int] = {}
+    used = 0
     start = time.perf_counter()
     try:
         for batch, pos in read_recording(recording, pipe.names, chunk_rows=chunk_rows, problems=problems,
                                          with_position=True):
+            used += len(batch)
             for tr in pipe.feed(batch):
                 if tr.event == "raise":
                     raised[tr.point.kind] = raised.get(tr.point.kind, 0) + 1
             if progress is not None:
                 progress(pos, total)
+        if not used:
+            raise ValueError(f"{recording}: no samples to replay: {_nothing_read(total, problems)}")
         for tr in pipe.finish_frames():
             if tr.event == "raise":
                 raised[tr.point.kind] = raised.get(tr.point.kind, 0) + 1
@@ -65,3 +69,14 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
     return ReplaySummary(samples=pipe.samples, frames=pipe.frames, seconds_of_data=span, wall_seconds=wall,
                          raised=raised, input_rows=pipe.inputs.rows(),
                          run_id=history.run_id if history is not None else None)
+
+
+def _nothing_read(size: int, problems: ReadProblems) -> str:
+    """Why a recording gave no sample, in one line."""
+    if size == 0 or not problems.header:
+        return "the file is empty"
+    if problems.rows == 0:
+        return (f"{problems.damage} before the first row" if problems.damage
+                else "the file has only the header")
+    why = ", ".join(f"{reason} {n}" for reason, n in problems.counts.items())
+    return f"none of its {problems.rows} row{'s' if problems.rows != 1 else ''} could be used ({why})"

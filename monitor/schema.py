@@ -45,6 +45,8 @@ def _quantity(kind: U.Kind, *, minimum: float | None = None, exclusive: bool = T
               maximum: float | None = None) -> Callable[[Any], float]:
     def parse(value: Any) -> float:
         si = U.to_si(value, kind)
+        if not math.isfinite(si):  # a bare NaN or inf (TOML has both): every comparison with a limit would be false
+            raise ValueError(f"expected a finite {kind.name}, got {value!r}")
         if minimum is not None and (si <= minimum if exclusive else si < minimum):
             word = "greater than" if exclusive else "at least"
             raise ValueError(f"expected {kind.name} {word} {minimum:g} (SI), got {value!r}")
@@ -59,6 +61,40 @@ def _positive_number(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value <= 0:
         raise ValueError(f"expected a positive number, got {value!r}")
     return float(value)
+
+
+def between(kind: U.Kind, low: float, high: float, *, low_included: bool = False) -> BeforeValidator:
+    """A quantity of ``kind`` within a plausible range, in SI: above ``low`` (or from it) and at most ``high``.
+
+    Used as ``Annotated[float, between(U.LENGTH, 1e-3, 20.0)]``; each field states why its range
+    is plausible. A value outside is an error naming the range, so that an absurd value (a width
+    of 1e-300 mm, a frame rate of a megahertz) never reaches a check or an allocation.
+    """
+    unit = " Hz" if kind is U.FREQUENCY else f" {kind.si_unit}" if kind.si_unit else ""
+    if math.isinf(high):
+        span = f"{'at least' if low_included else 'above'} {low:g}{unit}"
+    else:
+        span = f"{'from' if low_included else 'above'} {low:g} {'to' if low_included else 'and at most'} {high:g}{unit}"
+    parse = _quantity(kind)
+
+    def check(value: Any) -> float:
+        si = parse(value)
+        if (si < low if low_included else si <= low) or si > high:
+            raise ValueError(f"expected {kind.name} {span}, got {value!r}")
+        return si
+
+    return BeforeValidator(check)
+
+
+def finite_at_least(low: float, what: str = "a number") -> AfterValidator:
+    """A plain number that is finite and at least ``low`` (NaN and inf would switch a comparison off)."""
+
+    def check(value: float) -> float:
+        if not (math.isfinite(value) and value >= low):
+            raise ValueError(f"expected {what} of at least {low:g} (finite), got {value!r}")
+        return value
+
+    return AfterValidator(check)
 
 
 PosLength = Annotated[float, BeforeValidator(_quantity(U.LENGTH, minimum=0.0))]

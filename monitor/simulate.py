@@ -68,9 +68,10 @@ def tag_topic(prefix: str, tag: str) -> str:
 async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str = "quillmere", speedup: float = 1.0,
                        tick: float = 0.1, qos: int = 1, duration: float | None = None,
                        console: Console | None = None) -> int:
-    """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality"}``, paced.
+    """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality", "seq"}``, paced.
 
-    The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``.
+    The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``. ``seq``
+    counts the messages of each topic from 1, so a subscriber can count what a broker dropped.
     Returns the number of messages published.
     """
     import asyncio
@@ -91,6 +92,7 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     sim.t0 = time.time()
     end = min(duration, sim.sc.scenario.duration) if duration else sim.sc.scenario.duration
     topics = [tag_topic(prefix, t) for t in sim.tag_names]
+    seq = [0] * len(topics)
     sent = 0
     last = None
     wall0 = time.perf_counter()
@@ -98,7 +100,8 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
         while sim.t < end - 1e-9:
             b = sim.advance(min(tick * speedup, end - sim.t))
             for k, t, v in zip(b.tag.tolist(), b.t.tolist(), b.value.tolist(), strict=True):
-                payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good"})
+                seq[k] += 1
+                payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good", "seq": seq[k]})
                 last = client.publish(topics[k], payload, qos=qos)
                 sent += 1
             lag = wall0 + sim.t / speedup - time.perf_counter()

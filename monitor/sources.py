@@ -125,6 +125,9 @@ class MqttSource(Strict):
     value_path: str = "value"
     time_path: str | None = "time"
     quality_path: str | None = "quality"
+    seq_path: str | None = Field(
+        default=None, description="where a JSON payload carries its publisher's sequence number for the topic, e.g. "
+                                  "\"seq\": lost messages are counted from its jumps")
     time_unit: Literal["s", "ms", "iso"] = "s"
     max_payload: int = Field(default=65536, ge=16)
     queue_size: int = Field(default=100_000, ge=100)
@@ -154,6 +157,13 @@ class MqttSource(Strict):
                     raise ValueError(f"expected {key} outside the topics this source reads: {topic!r} matches "
                                      f"{where} {pattern!r}, so spanwatch would read its own alarms back; publish "
                                      f"them under another prefix (e.g. \"spanwatch/...\") or narrow {where}")
+        return self
+
+    @model_validator(mode="after")
+    def _seq_path(self) -> MqttSource:
+        if self.seq_path is not None and self.payload != "json":
+            raise ValueError("expected seq_path only with payload = \"json\" (a number payload has no sequence "
+                             "number)")
         return self
 
 
@@ -210,8 +220,11 @@ def _mqtt(name: str, spec: MqttSource, line: Line, sink: Sink) -> LiveConnector:
     from spanwatch.connectors.mqtt import MqttConnector
     from spanwatch.monitor.config import mqtt_settings
 
-    tags = {n: t.address for n, t in line.tags_of_source(name).items()}
-    return MqttConnector(name, mqtt_settings(spec), tags, sink)
+    mine = line.tags_of_source(name)
+    tags = {n: t.address for n, t in mine.items()}
+    # time gaps count as lost messages only for tags whose sample period the config states
+    periods = {n: t.sample_period for n, t in mine.items() if "sample_period" in t.model_fields_set}
+    return MqttConnector(name, mqtt_settings(spec), tags, sink, periods=periods)
 
 
 def _simulated(name: str, spec: SimulatedSource, line: Line, sink: Sink) -> LiveConnector:

@@ -82,6 +82,7 @@ class _State:
     active: bool = False
     peak: float = float("nan")  # largest severity of the episode
     peak_value: float = float("nan")  # the check value (with its sign) at that severity
+    restored: bool = False  # carried on from a previous run and not yet evaluated on fresh data
 
 
 class AlarmEngine:
@@ -98,12 +99,18 @@ class AlarmEngine:
         return [p for p in self.points if self.state[p.key].active]
 
     def restore(self, key: str, since: float) -> bool:
-        """Mark an alarm active as left by a previous run (its condition is taken to hold since ``since``)."""
+        """Mark an alarm active as left by a previous run (its condition is taken to hold since ``since``).
+
+        A carried-on alarm stays active until its check has been evaluated on fresh data and found clear:
+        frames where the check is invalid hold it (as always), and so do frames gated by the line state
+        until the check has had one valid frame (a restart's line state is not yet known).
+        """
         st = self.state.get(key)
         if st is None:
             return False
         st.active = st.cond = True
         st.since = since
+        st.restored = True
         return True
 
     def evaluate(self, t: np.ndarray, results: dict[tuple[str, str], CheckResult],
@@ -135,6 +142,11 @@ class AlarmEngine:
             sets = valid & (x >= limit)
             if not st.active and not st.cond and not sets.any():
                 return []  # quiet: nothing pending, nothing to raise
+            if st.restored:  # carried on from a previous run: only a valid evaluation may clear it
+                first = int(np.argmax(valid)) if valid.any() else n
+                gated = gated.copy()
+                gated[:first] = False
+                st.restored = first == n
             resets = (valid & (x < limit - p.deadband)) | gated
         code = np.where(sets, 1, np.where(resets, 0, -1))
         idx = forward_fill_index(code >= 0)

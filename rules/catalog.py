@@ -13,6 +13,7 @@ from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
 from spanwatch.rules.runout import RollerRunoutCheck, RunoutCheck
 from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
+from spanwatch.rules.sourcehealth import SourceLostCheck
 from spanwatch.rules.span import DrawCheck
 from spanwatch.rules.traction import NoDriveCheck, TractionCheck
 from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
@@ -32,6 +33,7 @@ CHECK_CLASSES: tuple[CheckKind, ...] = (
     TagQualityCheck,
     TagRangeCheck,
     TagFrozenCheck,
+    SourceLostCheck,
 )
 
 CHECK_KINDS: dict[str, CheckKind] = {}

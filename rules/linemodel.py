@@ -106,6 +106,7 @@ class Tag:
     stale_after: float  # s
     frozen_after: float | None  # s
     frozen_tolerance: float  # SI
+    source: str | None = None  # the live source that delivers it (None: a recording)
 
 
 @dataclass(frozen=True)
@@ -121,6 +122,7 @@ class LineModel:
     zones: tuple[Zone, ...]
     tags: dict[str, Tag]
     signals: frozenset[str]  # derived signal names available (``tension/<zone>``, ``speed/<roller>`` ...)
+    sources: tuple[str, ...] = ()  # live sources (none for a recording)
 
     def zone_before(self, element_id: str) -> Zone | None:
         return next((z for z in self.zones if z.downstream == element_id), None)

@@ -62,10 +62,21 @@ def out_of_range(value: np.ndarray, low: float, high: float) -> np.ndarray:
 class _TagCheck:
     rests_on: ClassVar[str] = "the configured range, sample period and stale limit describe the sensor"
 
-    def __init__(self, object_id: str) -> None:
+    def __init__(self, object_id: str, *, source: str | None = None) -> None:
         self.object_id = object_id
+        self.source = source  # while its source is lost, the source's own alarm speaks for the tag
         self.inputs: tuple[str, ...] = ()
         self._col: int | None = None
+
+    def _source_lost(self, block: Block, within: float = 0.0) -> np.ndarray:
+        """True on frames where the tag's source was silent (its own alarm speaks for it) within ``within`` s."""
+        if self.source is None:
+            return np.zeros(block.n, dtype=bool)
+        quiet = block.signals.get(f"source_quiet/{self.source}")
+        if quiet is None:
+            return np.zeros(block.n, dtype=bool)
+        with np.errstate(invalid="ignore"):
+            return quiet.value <= within
 
     def reset(self) -> None:
         """Nothing is carried from one block to the next."""
@@ -83,8 +94,8 @@ class TagRangeCheck(_TagCheck):
     kind: ClassVar[str] = "tag_range"
     defaults: ClassVar[AlarmDefaults] = RANGE_DEFAULTS
 
-    def __init__(self, object_id: str, *, low: float, high: float) -> None:
-        super().__init__(object_id)
+    def __init__(self, object_id: str, *, low: float, high: float, source: str | None = None) -> None:
+        super().__init__(object_id, source=source)
         self.low, self.high = low, high
 
     @classmethod
@@ -92,12 +103,12 @@ class TagRangeCheck(_TagCheck):
         """One per tag with a range."""
         for t in line.tags.values():
             if t.low > float("-inf") or t.high < float("inf"):
-                yield cls(t.name, low=t.low, high=t.high)
+                yield cls(t.name, low=t.low, high=t.high, source=t.source)
 
     def update(self, block: Block) -> CheckResult:
         v, q, _ = self._cols(block)
         flag = out_of_range(v, self.low, self.high) & np.isfinite(v)
-        reason = combine_reasons((q == QUALITY_NONE, Reason.INPUT_BAD), n=block.n)
+        reason = combine_reasons((self._source_lost(block) | (q == QUALITY_NONE), Reason.INPUT_BAD), n=block.n)
         return finalise(flag.astype(float), reason)
 
 
@@ -111,35 +122,45 @@ class TagQualityCheck(_TagCheck):
     def for_line(cls, line: LineModel) -> Iterator[TagQualityCheck]:
         """One per tag."""
         for t in line.tags.values():
-            yield cls(t.name)
+            yield cls(t.name, source=t.source)
 
     def update(self, block: Block) -> CheckResult:
         v, q, _ = self._cols(block)
         flag = (q != QUALITY_GOOD) | ~np.isfinite(v)
-        reason = combine_reasons((q == QUALITY_NONE, Reason.INPUT_BAD), n=block.n)
+        reason = combine_reasons((self._source_lost(block) | (q == QUALITY_NONE), Reason.INPUT_BAD), n=block.n)
         return finalise(flag.astype(float), reason)
 
 
 class TagStaleCheck(_TagCheck):
-    """No new sample for more than ``stale_after`` seconds (never-seen tags are stale)."""
+    """No new sample for more than ``stale_after`` seconds of event time (never-seen tags are stale).
+
+    The age is measured in event time (frames wait for their source's data), so a slow or loaded
+    machine does not make tags stale. Frames beyond the newest data of the tag's source are not
+    judged (the source's own condition says it is lost), nor are frames of the start-up grace or
+    of the start after a gap (age still negative: warming up).
+    """
 
     kind: ClassVar[str] = "tag_stale"
     defaults: ClassVar[AlarmDefaults] = STALE_DEFAULTS
 
-    def __init__(self, object_id: str, *, stale_after: float) -> None:
-        super().__init__(object_id)
+    def __init__(self, object_id: str, *, stale_after: float, source: str | None = None) -> None:
+        super().__init__(object_id, source=source)
         self.stale_after = stale_after
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[TagStaleCheck]:
         """One per tag."""
         for t in line.tags.values():
-            yield cls(t.name, stale_after=t.stale_after)
+            yield cls(t.name, stale_after=t.stale_after, source=t.source)
 
     def update(self, block: Block) -> CheckResult:
         _, _, age = self._cols(block)
         flag = ~(age <= self.stale_after)
-        return finalise(flag.astype(float), np.zeros(block.n, dtype=np.int8), age=age)
+        with np.errstate(invalid="ignore"):
+            warming = age < 0
+        lost = self._source_lost(block, within=self.stale_after)  # no sample for a while: the source's silence?
+        reason = combine_reasons((lost, Reason.INPUT_BAD), (warming, Reason.WARMING_UP), n=block.n)
+        return finalise(flag.astype(float), reason, age=age)
 
 
 class TagFrozenCheck(_TagCheck):
@@ -152,8 +173,8 @@ class TagFrozenCheck(_TagCheck):
     kind: ClassVar[str] = "tag_frozen"
     defaults: ClassVar[AlarmDefaults] = FROZEN_DEFAULTS
 
-    def __init__(self, object_id: str, *, frozen_after: float, tolerance: float) -> None:
-        super().__init__(object_id)
+    def __init__(self, object_id: str, *, frozen_after: float, tolerance: float, source: str | None = None) -> None:
+        super().__init__(object_id, source=source)
         self.frozen_after, self.tol = frozen_after, tolerance
         self.reset()
 
@@ -162,7 +183,7 @@ class TagFrozenCheck(_TagCheck):
         """One per tag with a frozen limit."""
         for t in line.tags.values():
             if t.frozen_after is not None:
-                yield cls(t.name, frozen_after=t.frozen_after, tolerance=t.frozen_tolerance)
+                yield cls(t.name, frozen_after=t.frozen_after, tolerance=t.frozen_tolerance, source=t.source)
 
     def reset(self) -> None:
         """Forget the last value and when it last changed."""
@@ -186,7 +207,7 @@ class TagFrozenCheck(_TagCheck):
             self._last_change_t = float(t_change[-1])
         reason = combine_reasons(
             (~moving, Reason.LINE_STATE),
-            (q == QUALITY_NONE, Reason.INPUT_BAD),
+            (self._source_lost(block, within=self.frozen_after) | (q == QUALITY_NONE), Reason.INPUT_BAD),
             n=block.n,
         )
         return finalise(flag.astype(float), reason, unchanged_for=still)

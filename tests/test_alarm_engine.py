@@ -406,3 +406,36 @@ def test_block_size_invariance_series_has_transitions(direction):
     assert [tr.event for tr in trs].count("raise") >= 2
     assert [tr.event for tr in trs].count("clear") >= 1
     assert _as_tuples(trs) == _as_tuples(run(p, values, reasons, line_state, blocks=[7, 13, 1, 50]))
+
+
+# --- carried on after a restart ------------------------------------------------------------------------------------
+
+
+def _restored_run(values, reasons) -> list[Transition]:
+    p = point(limit=1.0)
+    eng = AlarmEngine([p])
+    assert eng.restore(p.key, since=float(times(1, start=-100)[0]))
+    n = len(values)
+    res = result(values, reasons)
+    return eng.evaluate(times(n), {(p.kind, p.object_id): res}, np.full(n, RUNNING, dtype=np.int8))
+
+
+def test_carried_on_alarm_is_not_cleared_by_the_restart_line_state_gate():
+    # After a restart the line state is not known yet and the check is gated; that is no evaluation, so the alarm
+    # the previous run left active stays active (ISA-18.2 / IEC 62682: an alarm returns to normal when its
+    # condition is found clear, from memory). It clears only where the check is valid and below its limit.
+    gated, ok = int(Reason.LINE_STATE), int(Reason.OK)
+    trs = _restored_run([0, 0, 0, 2.0, 2.0, 0.2, 0.2], [gated, gated, gated, ok, ok, ok, ok])
+    assert [(tr.event, round(tr.t * RATE) - T0_FRAME) for tr in trs] == [("clear", 5)]
+
+
+def test_carried_on_alarm_found_clear_on_its_first_valid_frame_clears_there():
+    gated, ok = int(Reason.LINE_STATE), int(Reason.OK)
+    trs = _restored_run([0, 0, 0.2, 0.2], [gated, gated, ok, ok])
+    assert [(tr.event, round(tr.t * RATE) - T0_FRAME) for tr in trs] == [("clear", 2)]
+
+
+def test_after_its_first_valid_frame_a_carried_on_alarm_is_gated_as_any_other():
+    gated, ok = int(Reason.LINE_STATE), int(Reason.OK)
+    trs = _restored_run([2.0, 0, 0], [ok, gated, gated])
+    assert [(tr.event, round(tr.t * RATE) - T0_FRAME) for tr in trs] == [("clear", 1)]

@@ -4,6 +4,7 @@ names the file and the key path; ``spanwatch check-config`` prints each driven r
 from __future__ import annotations
 
 import math
+import os
 import re
 import subprocess
 import sys
@@ -157,16 +158,148 @@ BROKEN = {
 }
 
 
+# Values that would silently switch a check off (NaN compares false with every limit; a negative accuracy
+# would be taken as its absolute value; a warning beyond its alarm never warns first), and absurd magnitudes
+# (a width of 1e-300 mm, a frame rate that allocates gigabytes). Each quantity field has a plausible range,
+# stated with its reason in monitor/config.py.
+S2_ACC = 'accuracy = 4.0                     # N, load-cell pair after calibration'
+UNWIND_FROZEN = 'frozen_after = "60 s"\nfrozen_tolerance = 0.0'
+TRACTION = 'warning = 0.8                      # share of the safe capacity (capacity / safety factor)\nalarm = 1.0'
+S2 = 'tags."q2.s2.tension"'
+
+
+def _set(old, new):
+    return lambda t: replace_once(t, old, new)
+
+
+BAD_VALUES = {
+    "accuracy_nan": (_set(S2_ACC, "accuracy = nan"), [f"{S2}.accuracy"]),
+    "accuracy_negative": (_set(S2_ACC, "accuracy = -4.0"), [f"{S2}.accuracy"]),
+    "accuracy_infinite": (_set(S2_ACC, "accuracy = inf"), [f"{S2}.accuracy"]),
+    "accuracy_negative_percent": (_set('accuracy = "0.1 %"', 'accuracy = "-0.1 %"'),
+                                  ['tags."q2.line.speed_ref".accuracy']),
+    "accuracy_nan_percent": (_set('accuracy = "0.1 %"', 'accuracy = "nan %"'), ['tags."q2.line.speed_ref".accuracy']),
+    "frozen_tolerance_nan": (_set(UNWIND_FROZEN, 'frozen_after = "60 s"\nfrozen_tolerance = nan'),
+                             ['tags."q2.unwind.diameter".frozen_tolerance']),
+    "frozen_tolerance_negative": (_set(UNWIND_FROZEN, 'frozen_after = "60 s"\nfrozen_tolerance = -1.0'),
+                                  ['tags."q2.unwind.diameter".frozen_tolerance']),
+    "width_1e-300_mm": (_set('width = "1300 mm"', 'width = "1e-300 mm"'), ["material.width"]),
+    "width_a_kilometre": (_set('width = "1300 mm"', 'width = "1 km"'), ["material.width"]),
+    "caliper_a_metre": (_set('caliper = "1.2 mil"', 'caliper = "1 m"'), ["material.caliper"]),
+    "modulus_1e-300_pa": (_set('modulus = "2.2 GPa"', 'modulus = "1e-300 Pa"'), ["material.modulus"]),
+    "roller_diameter_a_micrometre": (_set('id = "pull_1"\ndiameter = "200 mm"', 'id = "pull_1"\ndiameter = "1 um"'),
+                                     ["rollers[2].diameter"]),
+    "cof_a_million": (_set(PULL_1_WRAP, 'wrap = "180 deg"\ncof = 1e6'), ["rollers[2].cof"]),
+    "span_length_1e300_m": (_set('length = "2.5 m"', 'length = "1e300 m"'), ["spans[4].length"]),
+    "setpoint_nan": (_set('setpoint = "1.0 pli"', 'setpoint = "nan pli"'), ["spans[4].setpoint"]),
+    "frame_rate_a_megahertz": (_set('frame_rate = "50 Hz"', 'frame_rate = "1 MHz"'), ["line.frame_rate"]),
+    "frame_rate_a_millihertz": (_set('frame_rate = "50 Hz"', 'frame_rate = "0.001 Hz"'), ["line.frame_rate"]),
+    "sample_period_a_picosecond": (_set('sample_period = "100 ms"', 'sample_period = "1 ps"'),
+                                   ['tags."q2.rewind.core_change".sample_period']),
+    "sample_period_a_century": (_set('sample_period = "100 ms"', 'sample_period = "100 year"'),
+                                ['tags."q2.rewind.core_change".sample_period']),
+    "stale_after_below_one_period": (_set("stale_after = 20", "stale_after = 0.1"),
+                                     ['tags."q2.rewind.core_change".stale_after']),
+    "air_temperature_absurd": (_set('air_temperature = "22 degC"', 'air_temperature = "1e6 K"'),
+                               ["line.air_temperature"]),
+    "draw_nan": (_set('draw = "0.1064 %"', 'draw = nan'), ["rollers[5].draw"]),
+    "fraction_nan": (_set("air_traction_floor = 0.0", "air_traction_floor = nan"), ["line.air_traction_floor"]),
+    "stack_factor_huge": (_set("stack_factor = 1.04", "stack_factor = 1e6"), ["material.stack_factor"]),
+    "warning_nan": (_set(TRACTION, "warning = nan\nalarm = 1.0"), ["checks.traction.warning"]),
+    "alarm_infinite": (_set(TRACTION, "warning = 0.8\nalarm = inf"), ["checks.traction.alarm"]),
+    "deadband_negative": (lambda t: t + "\n[checks.slip]\ndeadband = -0.01\n", ["checks.slip.deadband"]),
+    "on_delay_a_century": (_set('on_delay = "1 s"', 'on_delay = "100 year"'), ["checks.traction.on_delay"]),
+    # direction high (traction): the warning must not be above the alarm
+    "warning_above_alarm_high": (_set(TRACTION, "warning = 1.2\nalarm = 1.0"), ["checks.traction.warning"]),
+    # an override that puts the warning past the kind's alarm, for one object
+    "override_warning_above_alarm": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.75",
+                                          "[checks.traction.overrides.pull_2]\nwarning = 1.5"),
+                                     ["checks.traction.overrides.pull_2.warning"]),
+    # an override of the alarm alone that falls below the kind's warning
+    "override_alarm_below_warning": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.75",
+                                          "[checks.traction.overrides.pull_2]\nalarm = 0.7"),
+                                     ["checks.traction.overrides.pull_2.alarm"]),
+    # direction abs (slip): |warning| must not exceed |alarm|
+    "warning_beyond_alarm_abs": (lambda t: t + "\n[checks.slip]\nwarning = -0.05\nalarm = 0.02\n",
+                                 ["checks.slip.warning"]),
+}
+BROKEN.update(BAD_VALUES)
+
+
+# `extends` of things that are not line files: each must give the one-line error, not hang, RecursionError or
+# MemoryError. The edit gets the folder of the file, to make what it names there.
+def _extends(target):
+    def edit(text, folder):
+        return f'extends = "{target(folder) if callable(target) else target}"\n'
+    return edit
+
+
+def _fifo(folder):
+    os.mkfifo(folder / "fifo.toml")
+    return folder / "fifo.toml"
+
+
+def _huge(folder):
+    path = folder / "huge.toml"
+    with open(path, "wb") as fh:  # 64 MB of comment: a file no line description needs
+        fh.truncate(64 << 20)
+    return path
+
+
+def _chain(n, cyclic=False):
+    def make(folder):
+        for i in range(n):
+            nxt = (0 if cyclic else None) if i == n - 1 else i + 1
+            body = f'extends = "chain{nxt}.toml"\n' if nxt is not None else EXAMPLE.read_text(encoding="utf-8")
+            (folder / f"chain{i}.toml").write_text(body, encoding="utf-8")
+        return folder / "chain0.toml"
+    return make
+
+
+def _deep_tables(folder):
+    path = folder / "deep.toml"
+    path.write_text(EXAMPLE.read_text(encoding="utf-8") + "\nx = " + "[" * 5000 + "]" * 5000 + "\n", encoding="utf-8")
+    return path
+
+
+def _deep_keys(folder):
+    path = folder / "deepkeys.toml"
+    path.write_text(EXAMPLE.read_text(encoding="utf-8") + "\n[" + ".".join(["k"] * 5000) + "]\nv = 1\n",
+                    encoding="utf-8")
+    return path
+
+
+EXAMPLE = REPO / "config" / "quillmere-q2.toml"
+BROKEN_FILES = {
+    "extends_dev_zero": (_extends("/dev/zero"), ["extends", "/dev/zero"]),
+    "extends_dev_urandom": (_extends("/dev/urandom"), ["extends", "/dev/urandom"]),
+    "extends_directory": (_extends(lambda folder: folder), ["extends"]),
+    "extends_fifo": (_extends(_fifo), ["extends", "fifo.toml"]),
+    "extends_huge_file": (_extends(_huge), ["extends", "huge.toml"]),
+    "extends_cycle": (_extends(_chain(3, cyclic=True)), ["extends", "cycle"]),
+    "extends_too_deep": (_extends(_chain(12)), ["extends"]),
+    "deeply_nested_arrays": (lambda text, folder: text + "\nx = " + "[" * 5000 + "]" * 5000 + "\n", ["nested"]),
+    "deeply_nested_keys": (lambda text, folder: text + "\n[" + ".".join(["k"] * 5000) + "]\nv = 1\n", ["nested"]),
+    "extends_deeply_nested": (_extends(_deep_tables), ["deep.toml", "nested"]),
+    "extends_deeply_nested_keys": (_extends(_deep_keys), ["deepkeys.toml", "nested"]),
+}
+
+
 @pytest.fixture
 def example_text(example_config_path):
     return example_config_path.read_text(encoding="utf-8")
 
 
-@pytest.mark.parametrize("case", sorted(BROKEN))
+@pytest.mark.parametrize("case", sorted(BROKEN) + sorted(BROKEN_FILES))
 def test_broken_config_exits_2_naming_file_and_key(case, example_text, tmp_path):
-    edit, keys = BROKEN[case]
     path = tmp_path / f"{case}.toml"
-    path.write_text(edit(example_text), encoding="utf-8")
+    if case in BROKEN_FILES:
+        edit, keys = BROKEN_FILES[case]
+        text = edit(example_text, tmp_path)
+    else:
+        edit, keys = BROKEN[case]
+        text = edit(example_text)
+    path.write_text(text, encoding="utf-8")
     result = run_cli("check-config", path)
     message = flat(result.stderr)
     assert result.exit_code == 2, f"exit {result.exit_code}; stdout: {result.stdout[:300]!r}"
@@ -226,3 +359,33 @@ def test_config_error_carries_key_paths(example_text, tmp_path):
 ])
 def test_key_path(loc, expected):
     assert key_path(loc) == expected
+
+
+# The warning comes before its alarm on the way into the abnormal region (ANSI/ISA-18.2-2016: a pre-alarm
+# warns earlier than the alarm it precedes; from memory). No check kind of the catalog has direction "low" yet,
+# so the rule is checked here for all three directions on the function the alarm-point resolution uses.
+@pytest.mark.parametrize(("direction", "warning", "alarm", "ok"), [
+    ("high", 0.8, 1.0, True), ("high", 1.0, 1.0, True), ("high", 1.2, 1.0, False), ("high", -5.0, -2.0, True),
+    ("low", 0.3, 0.2, True), ("low", 0.2, 0.2, True), ("low", 0.1, 0.2, False), ("low", -1.0, -2.0, True),
+    ("abs", 0.01, 0.02, True), ("abs", -0.02, 0.02, True), ("abs", -0.05, 0.02, False), ("abs", 0.05, -0.02, False),
+    ("high", None, 1.0, True),
+])
+def test_warning_must_come_before_its_alarm(direction, warning, alarm, ok):
+    from spanwatch.monitor.checkset import limit_order_problem
+
+    problem = limit_order_problem(direction, warning, alarm)
+    assert (problem is None) == ok
+    if not ok:
+        assert problem.startswith("expected the warning limit") and f"{warning:g}" in problem
+
+
+def test_all_problems_of_the_limits_are_reported_once_per_table(example_text, tmp_path):
+    # the kind-level pair is wrong for both pull rolls: one problem at checks.traction.warning, not two
+    text = replace_once(example_text, TRACTION, "warning = 1.2\nalarm = 1.0")
+    text = replace_once(text, "[checks.traction.overrides.pull_2]\nwarning = 0.75", "")
+    path = tmp_path / "twice.toml"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError) as info:
+        line = load_line(path)
+        alarm_points(line, build_checks(line))
+    assert [k for k, _ in info.value.problems] == ["checks.traction.warning"]

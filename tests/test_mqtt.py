@@ -22,6 +22,7 @@ import uuid
 from collections.abc import Awaitable, Callable, Iterator
 from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta, timezone
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -44,6 +45,7 @@ from spanwatch.monitor.config import MqttSource, mqtt_settings
 from spanwatch.rules.alarms import AlarmPoint, Transition
 from spanwatch.rules.samples import SampleBatch
 
+ROOT = Path(__file__).resolve().parents[1]
 T0 = calendar.timegm((2026, 3, 2, 5, 0, 0)) + 0.25  # 2026-03-02T05:00:00.250Z, computed without datetime
 
 
@@ -971,3 +973,258 @@ def test_samples_arrive_in_batches_on_the_event_loop_thread(mqtt_broker):
     assert sink_threads == set(loop_thread)
     assert len(sizes) < 2000 and max(sizes) > 1
     assert np.sum(sizes) == 2000
+
+
+# --- broker-side loss --------------------------------------------------------------------------------
+# mosquitto keeps at most max_queued_messages QoS 1 messages for a session whose client is away and drops the rest
+# without telling anyone ("Outgoing messages are being dropped for client ..." in its own log only); the
+# publisher got its PUBACK for every one. The connector cannot see what never reaches it, but the payload can
+# tell: a per-topic sequence number that jumps by k means k - 1 messages lost; without one, a gap of more than
+# 1.5 sample periods between consecutive source times of a periodic tag means messages lost (suspected).
+
+
+class CutProxy:
+    """A TCP relay between the connector and the broker that the test can cut and restore: a real network fault.
+
+    :meth:`cut` aborts every relayed connection (both sides) and stops listening, so the connector's
+    reconnections are refused until :meth:`restore` listens again on the same port.
+    """
+
+    def __init__(self, broker: MosquittoBroker) -> None:
+        self.broker = broker
+        self.host = broker.host
+        self.port = 0
+        self.server: asyncio.AbstractServer | None = None
+        self.links: list[tuple[asyncio.StreamWriter, asyncio.StreamWriter]] = []
+
+    async def open(self) -> CutProxy:
+        self.server = await asyncio.start_server(self._serve, self.host, self.port)
+        self.port = self.server.sockets[0].getsockname()[1]
+        return self
+
+    async def _serve(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        try:
+            up_r, up_w = await asyncio.open_connection(self.broker.host, self.broker.port)
+        except OSError:
+            writer.transport.abort()
+            return
+        self.links.append((writer, up_w))
+
+        async def pump(src: asyncio.StreamReader, dst: asyncio.StreamWriter) -> None:
+            try:
+                while data := await src.read(65536):
+                    dst.write(data)
+                    await dst.drain()
+            except (ConnectionError, OSError):
+                pass
+            finally:
+                dst.transport.abort()
+
+        await asyncio.gather(pump(reader, up_w), pump(up_r, writer))
+
+    async def cut(self) -> None:
+        assert self.server is not None
+        self.server.close()
+        for down, up in self.links:
+            down.transport.abort()
+            up.transport.abort()
+        self.links.clear()
+
+    async def restore(self) -> None:
+        await self.open()
+
+    async def close(self) -> None:
+        await self.cut()
+
+
+def _json(seq: int | None, t: float, value: float) -> str:
+    doc: dict[str, Any] = {"value": value, "time": t}
+    if seq is not None:
+        doc["seq"] = seq
+    return json.dumps(doc)
+
+
+def _broker_side_loss_run(broker: MosquittoBroker, *, with_seq: bool) -> tuple[MqttConnector, int]:
+    """5 messages, the link cut, 200 published while the connector is away (the broker keeps 10), the link back,
+    5 more. Returns the connector and how many of the 205 after the first 5 never arrived."""
+    topic, period = "quillmere/q2/s5/tension", 0.02
+    client_id = f"spanwatch-loss-{uuid.uuid4().hex[:8]}"
+    spec = source(broker, client_id=client_id, payload="json", seq_path="seq" if with_seq else None,
+                  clean_start=False, session_expiry=3600.0, reconnect_min=0.2, reconnect_max=0.5)
+    got = Collector()
+    messages = [(topic, _json(k if with_seq else None, T0 + k * period, float(k))) for k in range(1, 211)]
+
+    async def main() -> MqttConnector:
+        proxy = await CutProxy(broker).open()
+        conn = MqttConnector("broker", dataclasses.replace(spec, port=proxy.port), {"q2.s5.tension": topic}, got,
+                             periods={"q2.s5.tension": period})
+        task = await start(conn)
+        try:
+            with publisher(broker) as pub:
+                assert pub.publish(messages[:5]) == 5
+                await until(lambda: len(got) == 5, 10, "the first 5 samples")
+                await proxy.cut()
+                await until(lambda: conn.state == "reconnecting", 10, "the connector to see the cut")
+                await until(lambda: f"{client_id} closed its connection" in broker.log_tail(200)
+                            or f"error on client {client_id}" in broker.log_tail(200), 10,
+                            "the broker to see the client gone")
+                assert await asyncio.to_thread(pub.publish, messages[5:205]) == 200  # every one acknowledged
+                await proxy.restore()
+                await until(lambda: conn.state == "connected", 15, "the connector to come back")
+                assert await asyncio.to_thread(pub.publish, messages[205:]) == 5
+                await until(lambda: 210.0 in got.values(), 10, "the last message")
+        finally:
+            await finish(conn, task)
+            await proxy.close()
+        return conn
+
+    conn = run(main())
+    arrived = {int(v) for v in got.values()}
+    return conn, 205 - len(arrived & set(range(6, 211)))
+
+
+def test_broker_side_loss_is_counted_from_sequence_numbers(mqtt_broker_factory):
+    broker = mqtt_broker_factory(extra=["max_queued_messages 10"])
+    conn, missing = _broker_side_loss_run(broker, with_seq=True)
+    assert "Outgoing messages are being dropped" in broker.log_tail(200), "the broker did drop messages"
+    assert missing >= 150  # 200 published while away, at most 10 queued (+ the in-flight window)
+    assert conn.stats.lost == {"sequence": missing}  # exactly the messages that never arrived
+    assert conn.stats.publisher_restarts == 0
+
+
+def test_broker_side_loss_without_sequence_numbers_is_counted_from_time_gaps(mqtt_broker_factory):
+    broker = mqtt_broker_factory(extra=["max_queued_messages 10"])
+    conn, missing = _broker_side_loss_run(broker, with_seq=False)
+    assert missing >= 150
+    assert conn.stats.lost == {"time gap": missing}
+
+
+def test_sequence_numbers_count_jumps_restarts_and_duplicates(mqtt_broker):
+    """Per topic: a jump of k is k - 1 lost; back to 0 or 1 is a publisher restart, not loss; a repeat (QoS 1
+    redelivers at least once) or a slightly older number is neither; another topic has its own count."""
+    a, b = "quillmere/q2/s5/tension", "quillmere/q2/s8/tension"
+    seqs_a = [1, 2, 3, 7, 8, 8, 6, 9, 1, 2, 5, 0, 1, 2]  # lost 3 (4..6), 2 (3, 4) after the restart; 2 restarts
+    seqs_b = [100, 101, 105]  # its own count: 3 lost (102..104)
+    got = Collector()
+
+    async def main() -> MqttConnector:
+        conn = MqttConnector("broker", source(mqtt_broker, payload="json", seq_path="meta.seq", time_path=None),
+                             {"q2.s5.tension": a, "q2.s8.tension": b}, got)
+        task = await start(conn)
+        with publisher(mqtt_broker) as pub:
+            pub.publish([(a, json.dumps({"value": float(i), "meta": {"seq": s}})) for i, s in enumerate(seqs_a)])
+            pub.publish([(b, json.dumps({"value": -1.0, "meta": {"seq": s}})) for s in seqs_b])
+            pub.publish([(a, json.dumps({"value": 99.0, "meta": {"seq": "x"}}))])  # not a sequence number
+        await until(lambda: len(got) == len(seqs_a) + len(seqs_b) + 1, 10, "every message")
+        await finish(conn, task)
+        return conn
+
+    conn = run(main())
+    assert conn.stats.lost == {"sequence": 3 + 2 + 3}
+    assert conn.stats.publisher_restarts == 2
+    assert conn.stats.malformed == {f"{a}: bad sequence number": 1}  # counted, the sample still delivered
+
+
+def test_the_config_reads_seq_path_and_refuses_it_on_number_payloads():
+    spec = MqttSource(kind="mqtt", payload="json", seq_path="meta.seq")
+    assert mqtt_settings(spec).seq_path == "meta.seq"
+    assert MqttSource(kind="mqtt").seq_path is None
+    with pytest.raises(ValueError, match="seq_path"):
+        MqttSource(kind="mqtt", payload="number", seq_path="seq")
+
+
+def test_the_simulator_publishes_a_sequence_number_per_topic(mqtt_broker):
+    from spanwatch.monitor.line import load_line
+    from spanwatch.monitor.simline import SimulatedLine, load_scenario
+    from spanwatch.monitor.simulate import publish_mqtt
+    from spanwatch.monitor.simulate import tag_topic as topic_of
+
+    sub = Subscriber(mqtt_broker, ["quillmere/#"])
+    try:
+        sc, base = load_scenario(ROOT / "config" / "scenarios" / "steady.toml")
+        sim = SimulatedLine(load_line(base), sc)
+        sent = run(publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=20.0, duration=1.0))
+        sub.wait(lambda m: len(m) == sent, f"{sent} messages")
+    finally:
+        sub.close()
+    by_topic: dict[str, list[int]] = {}
+    for topic, doc, _ in sub.messages:
+        by_topic.setdefault(topic, []).append(doc["seq"])
+    assert set(by_topic) == {topic_of("quillmere", t) for t in sim.tag_names}
+    for seqs in by_topic.values():
+        assert seqs == list(range(1, len(seqs) + 1))
+
+
+def test_the_daemon_shows_lost_messages_in_healthz_and_metrics(mqtt_broker, tmp_path):
+    from spanwatch.connectors.history import sqlite_url
+    from spanwatch.monitor.daemon import Daemon
+    from spanwatch.monitor.line import load_line
+
+    cfg = tmp_path / "line.toml"
+    cfg.write_text(f"""extends = "{ROOT / 'config' / 'quillmere-q2-mqtt.toml'}"
+
+[sources.broker]
+port = {mqtt_broker.port}
+client_id = "spanwatch-test-{uuid.uuid4().hex[:8]}"
+seq_path = "seq"
+alarm_topic = "spanwatch-test/alarm"
+active_topic = "spanwatch-test/active"
+
+[daemon]
+history = "{sqlite_url(str(tmp_path / 'h.db'))}"
+http = "127.0.0.1:0"
+""", encoding="utf-8")
+    line = load_line(cfg)
+    topic = "quillmere/q2/s5/tension"
+
+    async def get(port: int, path: str) -> tuple[int, str]:
+        reader, writer = await asyncio.open_connection("127.0.0.1", port)
+        writer.write(f"GET {path} HTTP/1.1\r\nHost: x\r\n\r\n".encode())
+        await writer.drain()
+        raw = await reader.read()
+        writer.close()
+        head, _, body = raw.decode().partition("\r\n\r\n")
+        return int(head.split()[1]), body
+
+    async def main() -> tuple[dict, str]:
+        daemon = Daemon(line)
+        task = asyncio.create_task(daemon.run())
+        try:
+            conn = daemon.connectors[0]
+            await until(lambda: conn.state == "connected" and daemon.http_port, 15, "the daemon to connect")
+            now = time.time()
+            with publisher(mqtt_broker) as pub:
+                pub.publish([(topic, _json(s, now + 0.02 * s, 500.0)) for s in (1, 2, 3, 8, 9)])  # 4..7 lost
+            await until(lambda: conn.stats.samples_in == 5, 10, "5 samples")
+            _, health = await get(daemon.http_port, "/healthz")
+            _, metrics = await get(daemon.http_port, "/metrics")
+        finally:
+            daemon.request_stop()
+            await task
+        return json.loads(health), metrics
+
+    health, metrics = run(main())
+    broker = health["connectors"]["broker"]
+    assert broker["lost"] == {"sequence": 4}
+    assert broker["publisher_restarts"] == 0
+    assert 'spanwatch_samples_lost_total{how="sequence",source="broker"} 4.0' in metrics
+
+
+def test_time_gaps_ignore_repeats_and_start_again_after_a_clock_glitch(mqtt_broker):
+    """A repeated time (QoS 1 redelivery) is no gap; one sample a year ahead is no loss and does not blind the
+    detector to the gaps after it; a gap of two periods is one sample lost."""
+    topic, p = "quillmere/q2/s5/tension", 0.02
+    times = [T0, T0 + p, T0 + p, T0 + 365 * 86_400.0, T0 + 2 * p, T0 + 3 * p, T0 + 5 * p]
+    got = Collector()
+
+    async def main() -> MqttConnector:
+        conn = MqttConnector("broker", source(mqtt_broker, payload="json"), {"q2.s5.tension": topic}, got,
+                             periods={"q2.s5.tension": p})
+        task = await start(conn)
+        with publisher(mqtt_broker) as pub:
+            pub.publish([(topic, _json(None, t, 1.0)) for t in times])
+        await until(lambda: len(got) == len(times), 10, "every message")
+        await finish(conn, task)
+        return conn
+
+    assert run(main()).stats.lost == {"time gap": 1}

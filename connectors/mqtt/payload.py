@@ -11,6 +11,12 @@ or infinite value is delivered as a bad-quality sample *and* counted. Reasons:
 ``not a JSON object``, ``missing value``, ``wrong value type``, ``non-finite value``,
 ``missing time``, ``wrong time type``, ``bad time``, ``time without offset``,
 ``non-finite time``, ``bad quality`` (and, from the connector, ``unknown topic``).
+
+**Sequence numbers.** With ``seq_path``, a JSON payload may carry its publisher's sequence
+number for the topic (an integer from 0); :attr:`PayloadDecoder.seq` holds that of the
+message decoded last (None: absent), and :attr:`PayloadDecoder.seq_bad` tells that one was
+there but is no such integer (the sample is still good; the connector counts ``bad
+sequence number``).
 """
 
 from __future__ import annotations
@@ -74,6 +80,9 @@ class PayloadDecoder:
         self.value_path = tuple(spec.value_path.split("."))
         self.time_path = tuple(spec.time_path.split(".")) if spec.time_path else None
         self.quality_path = tuple(spec.quality_path.split(".")) if spec.quality_path else None
+        self.seq_path = tuple(spec.seq_path.split(".")) if spec.seq_path else None
+        self.seq: int | None = None
+        self.seq_bad = False
         self.time_unit = spec.time_unit
         self.ms = spec.time_unit == "ms"
 
@@ -98,6 +107,10 @@ class PayloadDecoder:
             raise MalformedPayload("not JSON") from None
         if type(doc) is not dict:
             raise MalformedPayload("not a JSON object")
+        if self.seq_path is not None:
+            s = _get(doc, self.seq_path)
+            self.seq_bad = s is not _MISSING and not (type(s) is int and 0 <= s < 1 << 63)
+            self.seq = s if s is not _MISSING and not self.seq_bad else None
         raw = _get(doc, self.value_path)
         if raw is _MISSING:
             raise MalformedPayload("missing value")

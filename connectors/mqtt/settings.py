@@ -43,7 +43,9 @@ class MqttSettings:
     Times are seconds. ``password`` is a secret reference (``env:NAME``, ``file:/path``, or
     inline), resolved at every connection and never logged. ``subscribe`` empty means: the
     tags' exact topics and the ``topic_map`` filters. ``time_path`` / ``quality_path`` None:
-    the arrival time / good quality. ``alarm_topic`` / ``active_topic`` None: not published.
+    the arrival time / good quality. ``seq_path``: where a JSON payload carries its publisher's
+    sequence number for the topic (None: none), by which lost messages are counted.
+    ``alarm_topic`` / ``active_topic`` None: not published.
     """
 
     host: str = "127.0.0.1"
@@ -66,6 +68,7 @@ class MqttSettings:
     value_path: str = "value"
     time_path: str | None = "time"
     quality_path: str | None = "quality"
+    seq_path: str | None = None
     time_unit: str = "s"  # "s", "ms" (since the epoch) or "iso" (ISO 8601 with a UTC offset)
     max_payload: int = 65536
     queue_size: int = 100_000
@@ -79,5 +82,7 @@ class MqttSettings:
         for name, allowed in CHOICES.items():
             if getattr(self, name) not in allowed:
                 raise ValueError(f"expected {name} one of {', '.join(map(repr, allowed))}, got {getattr(self, name)!r}")
+        if self.seq_path is not None and self.payload != "json":
+            raise ValueError("expected seq_path only with payload \"json\" (a number payload has no sequence number)")
         object.__setattr__(self, "subscribe", tuple(self.subscribe))  # a list given by the caller becomes a tuple
         object.__setattr__(self, "topic_map", tuple(self.topic_map))

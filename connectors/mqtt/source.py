@@ -30,6 +30,18 @@ sample *and* counted. Counters are kept per topic for the first ``MAX_MALFORMED_
 topic / reason pairs, then under ``(other topics)``. ``ref`` is the connector's sequence
 number of the message (malformed ones take a number too).
 
+**Messages lost before they arrive.** A broker drops QoS 1 messages it cannot keep (mosquitto:
+``max_queued_messages`` for a session whose client is away, ``max_inflight_messages``) and the
+publisher never hears of it; so, where the payload allows, the connector counts what never came,
+in ``stats.lost`` by how it was seen, logged at most once every 10 s. *Sequence numbers*
+(``seq_path``): per topic, a jump of k is k - 1 messages lost; a number back at 0 or 1, or more
+than :data:`REORDER_WINDOW` below the last, is a publisher restart (``stats.publisher_restarts``),
+not loss; a repeat or a slightly older number (QoS 1 redelivers at least once) is neither. *Time
+gaps*, for tags given a sample period and not carrying sequence numbers, with source times from the
+payload: a gap of more than ``gap_factor`` sample periods between consecutive source times counts
+round(gap / period) - 1 messages as lost (suspected: a publisher that paused looks the same); a gap
+beyond ``gap_horizon`` is an outage or a clock step, not counted.
+
 **Secrets.** The password is resolved (``env:NAME``, ``file:/path``) at each connection
 and redacted from every error text; it never reaches a log line or ``stats``.
 """
@@ -67,13 +79,16 @@ from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.rules.samples import SampleBatch
 
 MAX_MALFORMED_KEYS = 1000  # distinct "<topic>: <reason>" counters; later topics are counted as "(other topics)"
+MAX_SEQ_TOPICS = 100_000  # topics whose last sequence number is kept
+REORDER_WINDOW = 1000  # a sequence number this far below the last is a redelivery; further, a publisher restart
 
 
 class MqttConnector(LiveConnector):
     """Live samples from an MQTT broker (see the module docstring for the design).
 
     ``tags`` maps each tag name the source delivers to its exact topic, or to None when a
-    topic rule of ``settings.topic_map`` names it. Start with
+    topic rule of ``settings.topic_map`` names it; ``periods`` gives the sample period (s) of
+    the tags whose time gaps count as lost messages. Start with
     ``asyncio.create_task(connector.run())``; stop with ``await connector.stop()``, which
     disconnects (the broker keeps the session), joins the network thread and hands every
     sample still queued to ``sink`` before it returns.
@@ -83,7 +98,8 @@ class MqttConnector(LiveConnector):
 
     def __init__(self, name: str, settings: MqttSettings, tags: dict[str, str | None],
                  sink: Callable[[SampleBatch], None], *, batch_interval: float = 0.005,
-                 max_batch: int = 20_000) -> None:
+                 max_batch: int = 20_000, periods: dict[str, float] | None = None, gap_factor: float = 1.5,
+                 gap_horizon: float = 3600.0) -> None:
         super().__init__(name, sink, reconnect_min=settings.reconnect_min, reconnect_max=settings.reconnect_max)
         self.settings = settings
         self.tags = tuple(tags)
@@ -101,6 +117,14 @@ class MqttConnector(LiveConnector):
         self.granted: dict[str, str] = {}  # filter -> SUBACK reason of the latest connection
         self._ratelog = RateLimitedLog(log)
         self._seq = 0
+        # loss detection (network thread): last sequence number per topic, last source time per tag
+        self._check_seq = self.decoder.seq_path is not None
+        self._last_seq: dict[str, int] = {}
+        self._seq_tag = [False] * len(self.tags)  # the tag's messages carry sequence numbers: no time-gap guess
+        self._period = [float((periods or {}).get(n, 0.0)) for n in self.tags]
+        self._last_t = [-math.inf] * len(self.tags)
+        self._check_gaps = self.decoder.json and self.decoder.time_path is not None and any(self._period)
+        self.gap_factor, self.gap_horizon = gap_factor, gap_horizon
         self._loop: asyncio.AbstractEventLoop | None = None
         self._wake: asyncio.Event | None = None
         self._client: mqtt.Client | None = None
@@ -306,6 +330,10 @@ class MqttConnector(LiveConnector):
                 self.stats.server_timestamps += 1
             if problem is not None:
                 self._bad(topic, problem)
+            if self._check_seq:
+                self._sequence(topic, idx)
+            if self._check_gaps:
+                self._time_gap(topic, idx, t)
             q = self.queue
             q.put((idx, t, value, quality, ref))
             self.stats.queue_depth = len(q)
@@ -315,6 +343,54 @@ class MqttConnector(LiveConnector):
             self._bad(repr(msg._topic)[:80], "topic not UTF-8")
         except Exception as exc:
             self._bad(topic, f"unexpected {type(exc).__name__}")
+
+    def _sequence(self, topic: str, idx: int) -> None:
+        """Compare the message's sequence number with the topic's last (see the module docstring)."""
+        dec = self.decoder
+        seq = dec.seq
+        if seq is None:
+            if dec.seq_bad:
+                self._bad(topic, "bad sequence number")
+            return
+        self._seq_tag[idx] = True
+        last = self._last_seq.get(topic)
+        if last is None:
+            if len(self._last_seq) < MAX_SEQ_TOPICS:
+                self._last_seq[topic] = seq
+        elif seq > last:
+            if seq > last + 1:
+                self._count_lost("sequence", seq - last - 1, topic)
+            self._last_seq[topic] = seq
+        elif seq < last and (seq <= 1 or last - seq > REORDER_WINDOW):
+            self._last_seq[topic] = seq
+            self.stats.publisher_restarts += 1
+            if self._ratelog.tally("publisher restart"):
+                log.warning("mqtt %s: the sequence numbers on topic %r started again at %d (after %d): a publisher "
+                            "restart", self.name, topic, seq, last)
+
+    def _time_gap(self, topic: str, idx: int, t: float) -> None:
+        """Count the samples missing between this source time and the tag's last, for a periodic tag."""
+        last = self._last_t[idx]
+        if t <= last:  # a repeat or an older sample: no gap; far older: the clock stepped back (or the last was
+            if last - t > self.gap_horizon:  # a glitch ahead): start again from here
+                self._last_t[idx] = t
+            return
+        self._last_t[idx] = t
+        period = self._period[idx]
+        gap = t - last
+        if period > 0.0 and gap > self.gap_factor * period and gap <= self.gap_horizon and not self._seq_tag[idx]:
+            self._count_lost("time gap", round(gap / period) - 1, topic)
+
+    def _count_lost(self, how: str, n: int, topic: str) -> None:
+        if n <= 0:
+            return
+        self.stats.count_lost(how, n)
+        since = self._ratelog.tally(f"lost: {how}", n)
+        if since:
+            why = "sequence numbers skipped" if how == "sequence" else "gaps in the source times"
+            log.warning("mqtt %s: %d message(s) lost before they arrived (%s), latest on topic %r; see the broker's "
+                        "queue limits (mosquitto: max_queued_messages, max_inflight_messages)", self.name, since,
+                        why, topic)
 
     def _bad(self, topic: str, reason: str) -> None:
         malformed = self.stats.malformed
