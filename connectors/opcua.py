@@ -76,7 +76,7 @@ from cryptography import x509
 from cryptography.x509.oid import NameOID
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.connectors.ratelog import RateLimitedLog
-from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
+from spanwatch.connectors.secrets import SecretError, redact, redact_url, resolve_secret
 from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.opcua")
@@ -154,15 +154,6 @@ def quality_of(status: int) -> int:
 def status_overflow(status: int) -> bool:
     """True when a DataValue's StatusCode carries the Overflow info bit (values were dropped before it)."""
     return (int(status) & _INFOTYPE_MASK) == _INFOTYPE_DATAVALUE and bool(int(status) & _OVERFLOW_BIT)
-
-
-def safe_endpoint(endpoint: str) -> str:
-    """The endpoint URL without any ``user:password@`` part, for messages."""
-    head, sep, rest = endpoint.partition("://")
-    if not sep:
-        return endpoint
-    netloc, slash, path = rest.partition("/")
-    return f"{head}://{netloc.rpartition('@')[2]}{slash}{path}"
 
 
 class _TagSubscription(Subscription):
@@ -245,7 +236,7 @@ class _ClientSetup:
                     else ua.MessageSecurityMode.SignAndEncrypt)
             if spec.server_certificate is None:
                 log.info("%s: no server_certificate configured: the server's certificate is taken from its "
-                         "endpoint description without verification", safe_endpoint(spec.endpoint))
+                         "endpoint description without verification", redact_url(spec.endpoint))
             await client.set_security(SecurityPolicyBasic256Sha256, certificate=spec.certificate,
                                       private_key=spec.private_key, server_certificate=spec.server_certificate,
                                       mode=mode)
@@ -260,7 +251,7 @@ class _ClientSetup:
     def describe(self, exc: BaseException, phase: str) -> str:
         """One line for people: what failed, with the OPC UA status name, never the password."""
         spec = self.spec
-        ep = safe_endpoint(spec.endpoint)
+        ep = redact_url(spec.endpoint)
         if isinstance(exc, OpcUaSessionError):
             text = str(exc)
         elif isinstance(exc, ua.UaStatusCodeError):
@@ -380,7 +371,7 @@ class OpcUaConnector(LiveConnector):
             self.connected_since = time.time()
             self.state = "connected"
             log.info("%s: connected to %s, %d of %d tag(s) subscribed in %.2f s", self.name,
-                     safe_endpoint(spec.endpoint), len(self.subscribed), len(self.tag_names), self.connect_seconds)
+                     redact_url(spec.endpoint), len(self.subscribed), len(self.tag_names), self.connect_seconds)
             await self._supervise(client, sub, keepalive, setup)
         finally:
             self._flush()
@@ -650,6 +641,12 @@ async def browse(endpoint: str, node: str | None = None, depth: int = 3,
     (whether spanwatch can use it as a tag).
     """
     spec = replace(settings, endpoint=endpoint) if settings is not None else OpcUaSettings(endpoint)
+    if node:
+        try:
+            ua.NodeId.from_string(node)
+        except Exception:
+            raise OpcUaSessionError(f"expected a node id such as ns=2;s=Q2.S5.Tension, i=85 or nsu=URI;s=NAME, "
+                                    f"got {node!r}") from None
     try:
         password = resolve_secret(spec.password)
     except SecretError as exc:
@@ -662,6 +659,14 @@ async def browse(endpoint: str, node: str | None = None, depth: int = 3,
         await client.connect()
         phase = "browse"
         start = client.get_node(node) if node else client.nodes.objects
+        if node:
+            try:
+                await start.read_node_class()
+            except ua.UaStatusCodeError as exc:
+                if exc.code == ua.StatusCodes.BadNodeIdUnknown:
+                    raise OpcUaSessionError(f"node {node} does not exist on {redact_url(endpoint)}; browse without a "
+                                            "start node to list the server's variables") from None
+                raise
         return await _walk(client, start, depth)
     except Exception as exc:
         raise OpcUaSessionError(setup.describe(exc, phase)) from None

@@ -7,10 +7,11 @@ Exit codes: 0 success, 1 the command ran but found a problem it was asked to fin
 from __future__ import annotations
 
 import contextlib
+import errno
 import sys
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, NoReturn
 
 import typer
 from rich.console import Console
@@ -56,10 +57,30 @@ def _root(
 
 
 def fail_config(exc: ConfigError) -> None:
-    """Print a configuration error and exit with status 2."""
-    err_console.print("configuration error", style="bold red")
-    err_console.print(str(exc), highlight=False, markup=False)
+    """Print a configuration error (one line per problem) and exit with status 2."""
+    lines = str(exc).splitlines() or [""]
+    err_console.print(f"configuration error: {lines[0]}", style="bold red", highlight=False, markup=False,
+                      soft_wrap=True)
+    for more in lines[1:]:
+        err_console.print(more, highlight=False, markup=False, soft_wrap=True)
     raise typer.Exit(code=2)
+
+
+def fail(message: str) -> NoReturn:
+    """Print one line (what went wrong and what to do) on stderr and exit with status 2."""
+    err_console.print(message, highlight=False, markup=False, soft_wrap=True)
+    raise typer.Exit(code=2)
+
+
+def _one_of(value: str | None, choices: Sequence[str], option: str) -> None:
+    """Exit 2 unless ``value`` is None or one of ``choices``; the message lists them and the nearest one."""
+    if value is None or value in choices:
+        return
+    import difflib
+
+    near = difflib.get_close_matches(value, choices, n=1, cutoff=0.6)
+    fail(f"{option}: expected one of {', '.join(choices)}, got {value!r}" + (f" (did you mean {near[0]}?)"
+                                                                              if near else ""))
 
 
 def open_line(path: Path) -> Line:
@@ -147,6 +168,12 @@ def check_config(
             where = SOURCE_KINDS[spec.kind].where(spec)
             st.add_row(name, spec.kind, where, str(len(line.tags_of_source(name))))
         console.print(st)
+        from spanwatch.connectors.secrets import redact_url, shown_secret
+
+        d = cfg.daemon
+        console.print(f"spanwatch run: history {redact_url(d.history)}"
+                      + (f" (password {shown_secret(d.history_password)})" if d.history_password else "")
+                      + f", HTTP {d.http or 'off'}", highlight=False, markup=False, soft_wrap=True)
 
     checks = build_checks(line)
     points = alarm_points(line, checks)
@@ -162,6 +189,8 @@ def check_config(
         shown = ", ".join(objs) if len(objs) <= 4 else f"{len(objs)} tags"
         kt.add_row(kind, shown, rests[kind])
     console.print(kt)
+    for w in line.warnings:  # what the config exposes (spanwatch.monitor.exposure); spanwatch run logs them too
+        console.print(f"WARNING: {w}", style="bold yellow", highlight=False, markup=False, soft_wrap=True)
     console.print(f"[dim]{SAFETY_NOTE}[/]")
 
 
@@ -189,36 +218,55 @@ def simulate_cmd(
         line = load_line(cfg)
     except ConfigError as exc:
         fail_config(exc)
-    if time_format not in ("iso", "epoch"):
-        err_console.print(f"--time-format: expected 'iso' or 'epoch', got {time_format!r}")
-        raise typer.Exit(2)
+    _one_of(time_format, ("iso", "epoch"), "--time-format")
     if sum(x is not None for x in (out, serve_opcua, publish_mqtt)) != 1:
-        err_console.print("expected exactly one of --out, --serve-opcua or --publish-mqtt")
-        raise typer.Exit(2)
+        fail("expected exactly one of --out, --serve-opcua or --publish-mqtt")
+    if not 0 < speedup < float("inf"):
+        fail(f"--speedup: expected a positive number, got {speedup}")
     sim = SimulatedLine(line, sc)
     if publish_mqtt is not None:
         import asyncio
 
+        from spanwatch.monitor.simulate import SimulateError
         from spanwatch.monitor.simulate import publish_mqtt as publish
 
         host, _, port = publish_mqtt.rpartition(":")
-        if not port.isdigit():
-            err_console.print(f"--publish-mqtt: expected HOST:PORT, got {publish_mqtt!r}")
-            raise typer.Exit(2)
-        asyncio.run(publish(sim, host or "127.0.0.1", int(port), prefix=topic_prefix, speedup=speedup,
-                            console=console))
+        if not port.isdigit() or not 1 <= int(port) <= 65535:
+            fail(f"--publish-mqtt: expected HOST:PORT such as 127.0.0.1:1883, got {publish_mqtt!r}")
+        try:
+            asyncio.run(publish(sim, host or "127.0.0.1", int(port), prefix=topic_prefix, speedup=speedup,
+                                console=console))
+        except SimulateError as exc:
+            fail(str(exc))
         return
     if serve_opcua is not None:
         import asyncio
 
-        from spanwatch.monitor.simulate import serve_forever
+        from spanwatch.monitor.simulate import SimulateError, serve_forever
+        from spanwatch.monitor.sources import opc_endpoint
 
+        try:
+            opc_endpoint(serve_opcua)
+        except ValueError as exc:
+            fail(f"--serve-opcua: {exc}")
+        import logging
+
+        logging.getLogger("asyncua").setLevel(logging.CRITICAL)  # a traceback for a port in use; the line below says it
         console.print(f"serving {line.name} at {serve_opcua} ({speedup:g}x); Ctrl-C stops", highlight=False)
-        with contextlib.suppress(KeyboardInterrupt):
-            asyncio.run(serve_forever(sim, serve_opcua, speedup=speedup))
+        try:
+            with contextlib.suppress(KeyboardInterrupt):
+                asyncio.run(serve_forever(sim, serve_opcua, speedup=speedup))
+        except SimulateError as exc:
+            fail(str(exc))
         return
     assert out is not None
-    rows, truth_path = simulate_to_file(sim, out, time_format=time_format, progress=progress, console=err_console)
+    if not out.parent.is_dir():
+        fail(f"--out: the folder {out.parent} does not exist: create it, or write the recording elsewhere")
+    try:
+        rows, truth_path = simulate_to_file(sim, out, time_format=time_format, progress=progress,
+                                            console=err_console)
+    except OSError as exc:
+        fail(f"--out: cannot write {exc.filename or out}: {exc.strerror or exc}")
     console.print(f"wrote {rows} samples ({sc.scenario.duration / 60:.1f} simulated minutes) to {out}; "
                   f"ground truth in {truth_path}", highlight=False)
 
@@ -229,23 +277,25 @@ def _db_url(db: str) -> str:
 
 @contextlib.contextmanager
 def history_errors(db: str, timeout: float | None = None) -> Iterator[None]:
-    """Any failure of the history ``db`` inside (opening, reading, writing, its lock): one line, exit 2.
+    """Any failure of the history ``db`` inside (opening, reading, writing, its lock): one line, exit 2, with every
+    password in it hidden.
 
     The line names the database (password hidden) and says what is wrong: no such file, unreadable,
     read-only, locked by another process beyond the timeout, corrupt or not a database, another program's
     database, a schema revision this version does not know, another daemon writing the line.
     """
     from spanwatch.connectors.history.errors import HistoryError, classify
+    from spanwatch.connectors.secrets import redact_urls_in
     from sqlalchemy.exc import SQLAlchemyError
 
     try:
         yield
     except HistoryError as exc:
-        err_console.print(str(exc), highlight=False, markup=False, soft_wrap=True)
+        err_console.print(redact_urls_in(str(exc)), highlight=False, markup=False, soft_wrap=True)
         raise typer.Exit(2) from None
     except SQLAlchemyError as exc:
-        err_console.print(str(classify(exc, _db_url(db), timeout=timeout)), highlight=False, markup=False,
-                          soft_wrap=True)
+        err_console.print(redact_urls_in(str(classify(exc, _db_url(db), timeout=timeout))), highlight=False,
+                          markup=False, soft_wrap=True)
         raise typer.Exit(2) from None
 
 
@@ -260,11 +310,60 @@ def open_history_reader(db: str, timeout: float) -> Engine:
 DB_TIMEOUT = "Seconds to wait for a database another process holds locked, then give up (exit 2)."
 
 
+DB_PASSWORD_HELP = ("The database password as env:NAME or file:/path (not in --db, where ps shows it to every user); "
+                    "default: [daemon] history_password.")
+
+
+def _history_url(db: str | None, db_password: str | None, line: Line | None = None, *,
+                 reading: bool = False) -> tuple[str, str]:
+    """The history to open: (URL to connect with, its password resolved; the URL to show, password hidden).
+
+    ``db`` (``--db``) or else the config's ``[daemon] history``; the password from ``db_password``
+    (``--db-password``) or else ``[daemon] history_password``. Exits 2 with one line on an unknown database
+    kind, an unresolvable password reference, or (writing) a SQLite file whose folder does not exist.
+    """
+    from spanwatch.connectors.secrets import SecretError, is_reference, redact_url, url_password, url_with_password
+
+    if db is not None or line is None:
+        url, where, fix = _db_url(db or "spanwatch.db"), "--db", "give another with --db"
+    else:
+        url, where, fix = line.config.daemon.history, f"{line.file}: daemon.history", "set [daemon] history or --db"
+    shown = redact_url(db if db is not None else url)
+    ref, ref_where = db_password, "--db-password"
+    if ref is None and line is not None and db is None:
+        ref, ref_where = line.config.daemon.history_password, f"{line.file}: daemon.history_password"
+    if db_password is not None and not is_reference(db_password):
+        fail("--db-password: expected env:NAME or file:/path, got a password (on the command line every user of "
+             "this machine sees it in ps)")
+    if db is not None and url_password(url):
+        err_console.print("warning: --db holds a password, which every user of this machine sees in ps; give it "
+                          "with --db-password env:NAME", style="yellow", highlight=False, markup=False, soft_wrap=True)
+    from sqlalchemy.engine import make_url
+
+    try:
+        parsed = make_url(url)
+        parsed.get_dialect()
+    except Exception:
+        fail(f"{where}: expected a SQLite file path or an SQLAlchemy URL such as sqlite:///q2.db or "
+             f"postgresql+psycopg://user@host/db, got {shown!r}")
+    try:
+        full = url_with_password(url, ref)
+    except SecretError as exc:
+        fail(f"{ref_where}: {exc}")
+    file = parsed.database if parsed.get_backend_name() == "sqlite" else None
+    if not reading and file and file != ":memory:" and not file.startswith("file:"):
+        folder = Path(file).parent
+        if not folder.is_dir():
+            fail(f"{where}: the folder {folder} of the history {shown} does not exist: create it, or {fix}")
+    return full, shown
+
+
 @app.command("replay")
 def replay_cmd(
     recording: Annotated[Path, typer.Argument(help="Recording (CSV long form: time,tag,value,quality; .gz ok).")],
     config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration (TOML).")],
     db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
+    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
     progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
     db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 30.0,
 ) -> None:
@@ -274,22 +373,25 @@ def replay_cmd(
 
     line = open_line(config)
     if not recording.exists():
-        err_console.print(f"{recording}: no such recording")
-        raise typer.Exit(2)
+        fail(f"{recording}: no such recording")
+    if recording.is_dir():
+        fail(f"{recording}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok)")
+    url, shown = _history_url(db, db_password)
     bar = Progress(TextColumn("replay"), BarColumn(), TransferSpeedColumn(), TimeRemainingColumn(),
                    console=err_console, disable=not progress)
     with bar:
         task = bar.add_task("replay", total=recording.stat().st_size)
         try:
-            with history_errors(db, db_timeout):
-                summary = replay(line, recording, _db_url(db), timeout=db_timeout,
+            with history_errors(url, db_timeout):
+                summary = replay(line, recording, url, timeout=db_timeout,
                                  progress=lambda pos, tot: bar.update(task, completed=pos))
         except ValueError as exc:
             err_console.print(str(exc), highlight=False)
             raise typer.Exit(2) from None
     console.print(f"replayed {summary.samples} samples, {summary.frames} frames, "
                   f"{summary.seconds_of_data / 60:.1f} min of data in {summary.wall_seconds:.2f} s "
-                  f"({summary.speedup:.0f}x real time); run {summary.run_id} in {db}", highlight=False)
+                  f"({summary.speedup:.0f}x real time); run {summary.run_id} in {shown}", highlight=False,
+                  markup=False)
     if summary.raised:
         console.print("alarms raised: " + ", ".join(f"{k} {n}" for k, n in sorted(summary.raised.items())))
     else:
@@ -303,6 +405,7 @@ def replay_cmd(
 @app.command("alarms")
 def alarms_cmd(
     db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
+    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
     run: Annotated[int | None, typer.Option(help="Only this run (default: all runs).")] = None,
     check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
     obj: Annotated[str | None, typer.Option("--object", help="Only this roller, zone, winder or tag.")] = None,
@@ -321,11 +424,14 @@ def alarms_cmd(
 
     from rich.table import Table
     from spanwatch.connectors.history import query_episodes
+    from spanwatch.connectors.history.models import Level, Priority
     from spanwatch.monitor.present import fmt_value
+    from spanwatch.rules.catalog import CHECK_KINDS
 
-    if fmt not in ("table", "csv", "json"):
-        err_console.print(f"--format: expected table, csv or json, got {fmt!r}")
-        raise typer.Exit(2)
+    _one_of(fmt, ("table", "csv", "json"), "--format")
+    _one_of(check, sorted(CHECK_KINDS), "--check")
+    _one_of(priority, [p.value for p in Priority], "--priority")
+    _one_of(level, [v.value for v in Level], "--level")
 
     def when(text: str | None, opt: str) -> float | None:
         if text is None:
@@ -341,8 +447,9 @@ def alarms_cmd(
         return dt.timestamp()
 
     since_t, until_t = when(since, "--since"), when(until, "--until")
-    engine = open_history_reader(db, db_timeout)
-    with history_errors(db, db_timeout):
+    url, _shown = _history_url(db, db_password, reading=True)
+    engine = open_history_reader(url, db_timeout)
+    with history_errors(url, db_timeout):
         rows = query_episodes(engine, run_id=run, kind=check, object_id=obj, priority=priority, level=level,
                               since=since_t, until=until_t, active_only=active)
     engine.dispose()
@@ -389,12 +496,11 @@ def demo_cmd(
         except U.UnitError as exc:
             err_console.print(f"--duration: {exc}")
             raise typer.Exit(2) from None
-    if speedup <= 0:
-        err_console.print(f"--speedup: expected a positive number, got {speedup}")
-        raise typer.Exit(2)
-    if transport not in ("opcua", "direct"):
-        err_console.print(f"--transport: expected opcua or direct, got {transport!r}")
-        raise typer.Exit(2)
+    if not 0 < speedup < float("inf"):
+        fail(f"--speedup: expected a positive number, got {speedup}")
+    _one_of(transport, ("opcua", "direct"), "--transport")
+    if db is not None and not db.parent.is_dir():
+        fail(f"--db: the folder {db.parent} does not exist: create it, or give another path")
     try:
         with history_errors(str(db) if db is not None else "the demo's history"):
             run_demo(console, scenario=scenario, speedup=speedup, duration=dur, db=db, pace=pace, transport=transport)
@@ -406,6 +512,7 @@ def demo_cmd(
 def run_cmd(
     config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration with [sources] (TOML).")],
     db: Annotated[str | None, typer.Option(help="History (SQLite path or SQLAlchemy URL); default: [daemon].")] = None,
+    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
     http: Annotated[str | None, typer.Option(help="HOST:PORT for /healthz and /metrics; default: [daemon].")] = None,
     log_level: Annotated[str | None, typer.Option(help="debug, info, warning or error.")] = None,
 ) -> None:
@@ -415,23 +522,69 @@ def run_cmd(
 
     from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.daemon import run_daemon
+    from spanwatch.monitor.httpd import parse_address
 
     line = open_line(config)
     if not line.config.sources:
         fail_config(ConfigError(config, "sources", "expected at least one [sources.NAME] table (kind = \"opcua\", "
                                                    "\"mqtt\" or \"simulated\") for spanwatch run"))
+    _one_of(log_level, ("debug", "info", "warning", "error"), "--log-level")
+    address = line.config.daemon.http if http is None else http
+    if address:
+        try:
+            host, port = parse_address(address)
+        except ValueError as exc:
+            if http is None:
+                fail_config(ConfigError(line.file, "daemon.http", str(exc)))
+            fail(f"--http: {exc}")
+        _can_listen(host, port, address)
+    url, _shown = _history_url(db, db_password, line)
     level = (log_level or line.config.daemon.log_level).upper()
     logging.basicConfig(level=getattr(logging, level, logging.INFO),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     if level != "DEBUG":  # asyncua logs a traceback for every lost connection; the connector reports it once
         logging.getLogger("asyncua").setLevel(logging.CRITICAL)
+        logging.getLogger("alembic").setLevel(logging.WARNING)  # "Context impl SQLiteImpl." at every start
     logging.getLogger("spanwatch").info("spanwatch %s monitoring %s; %s", __version__, line.name, SAFETY_NOTE)
     try:
-        with history_errors(db or line.config.daemon.history, line.config.daemon.history_timeout):
-            asyncio.run(run_daemon(line, history_url=_db_url(db) if db else None, http=http))
+        with history_errors(url, line.config.daemon.history_timeout):
+            asyncio.run(run_daemon(line, history_url=url, http=http))
     except OSError as exc:
-        err_console.print(f"cannot start: {exc}", highlight=False, markup=False)
-        raise typer.Exit(1) from None
+        if exc.errno in _LISTEN_PROBLEMS:  # the port was taken between the check above and the start
+            fail(f"cannot listen on {address}: {_LISTEN_PROBLEMS[exc.errno]}")
+        from spanwatch.connectors.secrets import redact_urls_in
+
+        fail(f"cannot start: {redact_urls_in(str(exc))}")
+
+
+_LISTEN_PROBLEMS = {
+    errno.EADDRINUSE: "the port is in use (another spanwatch run, or another program): stop it, or choose another "
+                      "port with --http HOST:PORT or [daemon] http",
+    errno.EADDRNOTAVAIL: "not an address of this machine: use 127.0.0.1:PORT or one of its own addresses with "
+                         "--http or [daemon] http",
+    errno.EACCES: "no permission (ports below 1024 need privileges): choose a port above 1024 with --http or "
+                  "[daemon] http",
+}
+
+
+def _can_listen(host: str, port: int, address: str) -> None:
+    """Exit 2 with one line, before anything starts, when the HTTP endpoint could not listen on ``host:port``."""
+    import socket
+
+    if port == 0:
+        return
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except OSError:
+        fail(f"cannot listen on {address}: the host name {host} does not resolve; use an address such as "
+             "127.0.0.1 with --http or [daemon] http")
+    for family, kind, proto, _name, where in infos[:1]:
+        with socket.socket(family, kind, proto) as s:
+            s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as asyncio's server does
+            try:
+                s.bind(where)
+            except OSError as exc:
+                fail(f"cannot listen on {address}: {_LISTEN_PROBLEMS.get(exc.errno or 0, exc.strerror or str(exc))}")
 
 
 @app.command("opcua-browse")
@@ -443,15 +596,31 @@ def opcua_browse_cmd(
 ) -> None:
     """List the variables under a node of an OPC UA server, to fill in the tag map."""
     import asyncio
+    import logging
 
     from rich.table import Table
-    from spanwatch.connectors.opcua import browse
+    from spanwatch.connectors.opcua import OpcUaSessionError, browse
+    from spanwatch.connectors.secrets import redact, redact_url
+    from spanwatch.monitor.sources import opc_endpoint
 
+    _one_of(fmt, ("table", "toml"), "--format")
+    if depth < 1:
+        fail(f"--depth: expected at least 1 level, got {depth}")
+    try:
+        opc_endpoint(endpoint)
+    except ValueError as exc:
+        fail(f"ENDPOINT: {exc}")
+    logging.getLogger("asyncua").setLevel(logging.CRITICAL)  # its own warnings repeat what the one line says
     try:
         rows = asyncio.run(browse(endpoint, node, depth))
-    except Exception as exc:  # connection refused, bad endpoint, security
-        err_console.print(f"{endpoint}: {type(exc).__name__}: {exc}", highlight=False, markup=False)
-        raise typer.Exit(1) from None
+    except OpcUaSessionError as exc:  # connection refused, no such node, security
+        shown = redact_url(endpoint)
+        fail(str(exc) if shown in str(exc) else f"{shown}: {exc}")
+    except Exception as exc:  # anything else asyncua raises: one line all the same
+        fail(redact(f"{redact_url(endpoint)}: {type(exc).__name__}: {exc}"))
+    if not rows:
+        fail(f"{redact_url(endpoint)}: no variables within {depth} level(s) under {node or 'Objects'}; "
+             f"try a larger --depth{' or another --node' if node else ''}")
     if fmt == "toml":
         for r in rows:
             typer.echo(f'[tags."{r["path"]}"]\nunit = ""  # fill in\nsource = "plc"\naddress = "{r["node_id"]}"\n')

@@ -42,6 +42,7 @@ from spanwatch.monitor.schema import (
     PosSpeed,
     Priority,
     Ratio,
+    Secret,
     Strict,
     TagName,
     Temperature,
@@ -329,6 +330,9 @@ class DaemonSection(Strict):
     lock_timeout: PosDuration = Field(
         default=60.0, description="a writer lock whose heartbeat is older than this belongs to a daemon that "
                                   "died, and is taken over (SQLite; PostgreSQL releases it with the connection)")
+    history_password: Secret | None = Field(
+        default=None, description="the database password as \"env:NAME\" or \"file:/path\", kept out of the "
+                                  "history URL (spanwatch.connectors.secrets)")
     http: str = "127.0.0.1:9108"
     latency: PosDuration = Field(
         default=0.1, description="how far behind the newest source time frames are computed: a sample arriving "

@@ -34,6 +34,7 @@ from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
 from spanwatch.connectors.history.writer import open_writer
 from spanwatch.connectors.live import LiveConnector
+from spanwatch.monitor.daemonlog import SourceWatch, log_start, log_stop, log_transition
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.metrics import DaemonCollector
@@ -72,7 +73,11 @@ class Daemon:
         self.tick = d.tick if tick is None else tick
         self.http = d.http if http is None else http
         # the history: schema, writer lock of the line, spool (and what a killed run left in it), before any run
-        self.writer = open_writer(history_url or d.history, line_name=line.name, spool_folder=d.spool or None,
+        if history_url is None:  # the config's history, its password from [daemon] history_password (env:/file:)
+            from spanwatch.connectors.secrets import url_with_password
+
+            history_url = url_with_password(d.history, d.history_password)
+        self.writer = open_writer(history_url, line_name=line.name, spool_folder=d.spool or None,
                                   default_spool_folder=Path(line.file).resolve().parent / ".spanwatch-spool",
                                   spool_max=d.spool_max, timeout=d.history_timeout, lock_timeout=d.lock_timeout)
         self.history = self.writer.history
@@ -84,6 +89,8 @@ class Daemon:
             if dead:
                 log.info("run(s) %s of this line ended without closing (killed): marked interrupted",
                          ", ".join(map(str, dead)))
+            if mode == "daemon":  # one log line per transition (spanwatch.monitor.daemonlog); the demo prints its own
+                on_transition = _logged(on_transition)
             self.pipe = Pipeline(line, self.writer, on_transition=on_transition)
             if latency is not None:
                 self.pipe.clocks.hold = latency
@@ -106,6 +113,8 @@ class Daemon:
         self.registry.register(DaemonCollector(self))
         self._http: HttpEndpoint | None = None
         self.http_port: int | None = None
+        self.mode = mode
+        self.stop_reason = "stop requested"
 
     def _publishers(self) -> list:  # type: ignore[type-arg]
         pubs = []
@@ -149,13 +158,22 @@ class Daemon:
         for p in self.publishers:
             p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
+        started = time.monotonic()
+        if self.mode == "daemon":
+            log_start(self)
+        watch = asyncio.create_task(self._watch_sources(), name="source watch")
         gc.freeze()  # long-lived objects of the start-up out of the collector's way: shorter GC pauses
         try:
             while not self.stopping.is_set():
                 self.step()
                 with contextlib.suppress(TimeoutError):
                     await asyncio.wait_for(self.stopping.wait(), timeout=self.tick)
+        except BaseException as exc:
+            self.stop_reason = f"error: {type(exc).__name__}: {exc}" if isinstance(exc, Exception) else \
+                f"{type(exc).__name__}"
+            raise
         finally:
+            watch.cancel()
             for c in self.connectors:
                 await c.stop()
             for t in tasks:
@@ -168,6 +186,8 @@ class Daemon:
             if self._http is not None:
                 await self._http.close()
             await asyncio.to_thread(self.writer.close)  # writes what is queued (or spools it); off the event loop
+            if self.mode == "daemon":
+                log_stop(self, self.stop_reason, time.monotonic() - started)
 
     def receive(self, batch: SampleBatch) -> None:
         """The connectors' sink (event-loop thread): keep the batch with its arrival time for the next tick."""
@@ -227,13 +247,23 @@ class Daemon:
         (_, seen0, bad0), (_, seen1, bad1) = self._counts[0], self._counts[-1]
         return (bad1 - bad0) / (seen1 - seen0) if seen1 > seen0 else 0.0
 
-    def request_stop(self) -> None:
+    def request_stop(self, reason: str = "stop requested") -> None:
+        if not self.stopping.is_set():
+            self.stop_reason = reason
         self.stopping.set()
 
     def install_signal_handlers(self) -> None:
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, self.request_stop)
+            loop.add_signal_handler(sig, self.request_stop, sig.name)
+
+    async def _watch_sources(self) -> None:
+        """Log source state changes as they happen (spanwatch.monitor.daemonlog.SourceWatch)."""
+        watch = SourceWatch(self.connectors)
+        while True:
+            with contextlib.suppress(Exception):  # the log must never stop the monitor
+                watch.poll()
+            await asyncio.sleep(0.1)
 
     # --- status and HTTP -------------------------------------------------------------------
 
@@ -284,7 +314,6 @@ class Daemon:
         self._http = await serve_http(self.http, {
             "/healthz": self._healthz, "/status": self._healthz, "/metrics": self._metrics})
         self.http_port = self._http.port
-        log.info("HTTP on %s (/healthz, /metrics)", self._http.address)
 
     def _healthz(self) -> tuple[int, bytes, str]:
         st = self.status()
@@ -292,6 +321,16 @@ class Daemon:
 
     def _metrics(self) -> tuple[int, bytes, str]:
         return 200, generate_latest(self.registry), "text/plain; version=0.0.4; charset=utf-8"
+
+
+def _logged(then: Callable[[Transition], None] | None) -> Callable[[Transition], None]:
+    """Log each transition, then pass it on to ``then``."""
+    def on_transition(tr: Transition) -> None:
+        log_transition(tr)
+        if then is not None:
+            then(tr)
+
+    return on_transition
 
 
 def _merged(batches: list[SampleBatch]) -> list[SampleBatch]:

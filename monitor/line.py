@@ -10,7 +10,6 @@ path of the offending entry.
 
 from __future__ import annotations
 
-import hashlib
 import math
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -23,7 +22,6 @@ from spanwatch.monitor.config import (
     RollerSection,
     TagSection,
     WinderSection,
-    config_files,
     load_config,
 )
 from spanwatch.rules.airfilm import air_viscosity, combined_roughness, effective_cof
@@ -94,6 +92,7 @@ class Line:
     tags: dict[str, TagInfo]
     signals: tuple[SignalSpec, ...]
     model: LineModel  # the line as the checks see it (core types, SI)
+    warnings: tuple[str, ...] = ()  # what the config exposes (inline secrets, no encryption): monitor/exposure.py
 
     @property
     def name(self) -> str:
@@ -204,13 +203,17 @@ _TAG_KINDS = {
 
 
 def load_line(path: str | Path) -> Line:
-    """Read, validate and derive a line from a TOML file (raises ConfigError)."""
+    """Read, validate and derive a line from a TOML file (raises ConfigError).
+
+    The line's ``config_hash`` is that of the parsed config with its secrets removed, and its
+    ``warnings`` say what the config exposes (:mod:`spanwatch.monitor.exposure`).
+    """
+    from spanwatch.monitor.exposure import config_hash, exposure_warnings
+
     path = Path(path)
     cfg = load_config(path)
-    digest = hashlib.sha256()
-    for f in config_files(path):
-        digest.update(f.read_bytes())
-    return build_line(cfg, str(path), digest.hexdigest()[:16])
+    line = build_line(cfg, str(path), config_hash(cfg))
+    return replace(line, warnings=tuple(exposure_warnings(cfg)))
 
 
 def build_line(cfg: LineConfig, file: str = "<config>", config_hash: str = "") -> Line:

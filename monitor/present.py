@@ -47,6 +47,15 @@ def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
     return text, style
 
 
+def transition_log_line(tr: Transition) -> str:
+    """A transition as one log line: :func:`transition_line` without its column padding.
+
+    Source time, RAISE or clear, priority, check and object, level, the value (raise) or peak (clear)
+    in its unit, the limit and the line state.
+    """
+    return " ".join(transition_line(tr)[0].split())
+
+
 def _clock(t: float) -> str:
     from datetime import UTC, datetime
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import json
 from collections.abc import Iterator
 from pathlib import Path
@@ -11,6 +12,22 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from spanwatch.connectors.recording import write_recording
 from spanwatch.monitor.simline import SimulatedLine
 from spanwatch.rules.samples import SampleBatch
+
+
+class SimulateError(RuntimeError):
+    """A live simulation that cannot start: one line for people that says what failed and what to do."""
+
+
+def _listen_problem(exc: OSError, host: str, port: int) -> str:
+    """Why a server could not listen on ``host:port``, in words."""
+    if exc.errno == errno.EADDRINUSE:
+        return (f"{host}:{port} is already in use (another server, or an earlier spanwatch simulate still "
+                "running): stop it or choose another port")
+    if exc.errno == errno.EADDRNOTAVAIL:
+        return f"{host} is not an address of this machine: use 127.0.0.1 or one of its own addresses"
+    if exc.errno == errno.EACCES:
+        return f"no permission to listen on port {port} (ports below 1024 need privileges): choose one above 1024"
+    return f"cannot listen on {host}:{port}: {exc.strerror or exc}"
 
 
 def truth_path_for(out: Path) -> Path:
@@ -66,7 +83,12 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"spanwatch-sim-{int(time.time())}",
                          protocol=mqtt.MQTTv5)
     client.max_queued_messages_set(0)
-    client.connect(host, port)
+    try:
+        client.connect(host, port)
+    except (OSError, ValueError) as exc:
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc) or type(exc).__name__
+        raise SimulateError(f"cannot reach the MQTT broker at {host}:{port}: {why}; is it running, and is "
+                            "HOST:PORT right?") from None
     client.loop_start()
     end = min(duration, sim.sc.scenario.duration) if duration else sim.sc.scenario.duration
     # sample times never run ahead of the wall clock (a subscriber refuses times from the future): at a speed-up
@@ -104,12 +126,19 @@ async def serve_forever(sim: SimulatedLine, endpoint: str, *, speedup: float = 1
     Sample times start at the wall clock now, so at ``speedup = 1`` a daemon reading the server
     sees real times. Node ids are ``ns=2;s=<tag name>`` (see config/quillmere-q2-opcua.toml).
     """
+    import contextlib
     import time
     from urllib.parse import urlparse
 
     from spanwatch.monitor.simserve import SimLineServer
 
     url = urlparse(endpoint)
-    server = SimLineServer(sim, host=url.hostname or "127.0.0.1", port=url.port or 4840, speedup=speedup,
-                           start_time=time.time())
+    host, port = url.hostname or "127.0.0.1", url.port or 4840
+    server = SimLineServer(sim, host=host, port=port, speedup=speedup, start_time=time.time())
+    try:
+        await server.start()
+    except OSError as exc:
+        with contextlib.suppress(Exception):
+            await server.stop()
+        raise SimulateError(f"cannot serve at {endpoint}: {_listen_problem(exc, host, port)}") from None
     await server.run(sim.sc.scenario.duration - sim.t)

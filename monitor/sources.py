@@ -20,7 +20,7 @@ from operator import or_
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, Literal
 
-from pydantic import Field, model_validator
+from pydantic import AfterValidator, Field, model_validator
 from spanwatch.monitor.schema import Duration, PosDuration, PosNumber, Secret, Strict
 from spanwatch.rules.samples import SampleBatch
 
@@ -37,11 +37,29 @@ Sink = Callable[[SampleBatch], None]
 # --- the config table of each kind ------------------------------------------------------------
 
 
+def opc_endpoint(value: str) -> str:
+    """An OPC UA endpoint URL ``opc.tcp://HOST[:PORT][/path]``; ValueError (without any password) otherwise."""
+    from urllib.parse import urlsplit
+
+    from spanwatch.connectors.secrets import redact_url
+
+    ok = value.startswith("opc.tcp://")
+    try:
+        url = urlsplit(value)
+        ok = ok and bool(url.hostname) and (url.port is None or url.port > 0)
+    except ValueError:  # a port that is not a number or beyond 65535
+        ok = False
+    if not ok:
+        raise ValueError(f"expected an endpoint such as \"opc.tcp://10.0.0.5:4840\" (opc.tcp://HOST[:PORT][/path]), "
+                         f"got {redact_url(value)!r}")
+    return value
+
+
 class OpcUaSource(Strict):
     """An OPC UA server; tags with ``source = NAME`` give their node id in ``address``."""
 
     kind: Literal["opcua"]
-    endpoint: str = Field(pattern=r"^opc\.tcp://")
+    endpoint: Annotated[str, AfterValidator(lambda v: opc_endpoint(v))]
     security_policy: Literal["None", "Basic256Sha256"] = "None"
     security_mode: Literal["None", "Sign", "SignAndEncrypt"] = "None"
     certificate: str | None = None
@@ -120,6 +138,28 @@ class MqttSource(Strict):
     reconnect_max: PosDuration = 30.0
 
     @model_validator(mode="after")
+    def _own_topics(self) -> MqttSource:
+        """The alarm topics are topic names outside what this source reads: spanwatch would read its own
+        alarms back (counted as unknown topics, or worse, as a tag a topic_map pattern makes of them)."""
+        from spanwatch.connectors.mqtt.topics import check_filter, check_subscription, match_filter
+
+        for key in ("alarm_topic", "active_topic"):
+            topic = getattr(self, key)
+            if topic is None:
+                continue
+            if not topic or "+" in topic or "#" in topic or "\x00" in topic:
+                raise ValueError(f"expected {key} to be a topic name (no + or # wildcards), got {topic!r}")
+            readers = [(f"subscribe[{i}]", f, check_subscription(f)) for i, f in enumerate(self.subscribe)]
+            readers += [(f"topic_map[{i}].pattern", r.pattern, check_filter(r.pattern))
+                        for i, r in enumerate(self.topic_map)]
+            for where, pattern, levels in readers:
+                if match_filter(levels, topic) is not None:
+                    raise ValueError(f"expected {key} outside the topics this source reads: {topic!r} matches "
+                                     f"{where} {pattern!r}, so spanwatch would read its own alarms back; publish "
+                                     f"them under another prefix (e.g. \"spanwatch/...\") or narrow {where}")
+        return self
+
+    @model_validator(mode="after")
     def _seq_path(self) -> MqttSource:
         if self.seq_path is not None and self.payload != "json":
             raise ValueError("expected seq_path only with payload = \"json\" (a number payload has no sequence "
@@ -196,9 +236,16 @@ def _simulated(name: str, spec: SimulatedSource, line: Line, sink: Sink) -> Live
     return SimulatedConnector(name, line, scenario, sink, speedup=spec.speedup)
 
 
+def _shown_url(url: str) -> str:
+    from spanwatch.connectors.secrets import redact_url
+
+    return redact_url(url)
+
+
 SOURCE_KINDS: dict[str, SourceKind] = {
     k.kind: k for k in (
-        SourceKind("opcua", OpcUaSource, _opcua, lambda s: f"{s.endpoint} ({s.security_policy}/{s.security_mode})"),
+        SourceKind("opcua", OpcUaSource, _opcua,
+                   lambda s: f"{_shown_url(s.endpoint)} ({s.security_policy}/{s.security_mode})"),
         SourceKind("mqtt", MqttSource, _mqtt, lambda s: f"{s.host}:{s.port} qos {s.qos}{' tls' if s.tls else ''}"),
         SourceKind("simulated", SimulatedSource, _simulated, lambda s: f"scenario {s.scenario}"),
     )

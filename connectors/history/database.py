@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import os
 import sqlite3
 from typing import Any
 from urllib.parse import quote
@@ -16,7 +18,8 @@ def make_engine(url: str, *, timeout: float = SQLITE_BUSY_TIMEOUT_S, read_only: 
     """An engine for ``url``; a statement waits at most ``timeout`` seconds for a lock another process holds.
 
     SQLite files get WAL journaling (a reader never blocks the writer, a committed transaction survives
-    a crash; not a database that holds other tables and no history, which is left as it is),
+    a crash; not a database that holds other tables and no history, which is left as it is; a file spanwatch
+    creates is created with mode 0600),
     ``synchronous=NORMAL``, foreign keys enforced and ``timeout`` as the busy timeout. PostgreSQL
     gets ``pool_pre_ping`` (a connection the server dropped is replaced instead of failing a write),
     ``connect_timeout``, TCP keepalives, and ``lock_timeout`` and ``statement_timeout`` of ``timeout``
@@ -48,6 +51,7 @@ def make_engine(url: str, *, timeout: float = SQLITE_BUSY_TIMEOUT_S, read_only: 
                 return conn
 
             return create_engine(url, creator=connect)
+        _create_private(url)
         engine = create_engine(url, connect_args={"timeout": timeout})
 
         @event.listens_for(engine, "connect")
@@ -82,6 +86,19 @@ def make_engine(url: str, *, timeout: float = SQLITE_BUSY_TIMEOUT_S, read_only: 
         conn.commit()  # SET inside the driver's implicit transaction would be undone by the pool's rollback
 
     return engine
+
+
+def _create_private(url: str) -> None:
+    """Create a SQLite file that does not exist yet with mode 0600 (owner only; SQLite gives its -wal and -shm
+    files the mode of the database file), so the alarm history is not readable by every user of the machine.
+
+    A missing folder is left to SQLite's own error; an existing file keeps its mode.
+    """
+    database = make_url(url).database
+    if not database or database == ":memory:" or database.startswith("file:"):
+        return
+    with contextlib.suppress(FileExistsError, FileNotFoundError, NotADirectoryError, PermissionError):
+        os.close(os.open(database, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
 
 
 def sqlite_url(path: str) -> str:
