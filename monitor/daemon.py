@@ -102,6 +102,7 @@ class Daemon:
             raise
         self._counts: deque[tuple[float, int, int]] = deque()  # (elapsed, samples seen, samples refused/late/lost)
         self._wall0 = self._elapsed0 = 0.0
+        self._last_step: float | None = None
         if restored:
             log.info("carrying on %d alarm(s) left active by the previous run", restored)
         self.inbox: list[tuple[float, float, SampleBatch]] = []  # (elapsed and wall clock at arrival, batch)
@@ -203,6 +204,11 @@ class Daemon:
         nothing for ``lost_after`` stops holding the others back and raises its own alarm.
         """
         t0 = time.perf_counter()
+        now = self.elapsed()
+        stalled = now - self._last_step - 1.0 if self._last_step is not None else 0.0
+        if stalled > 0:  # we did not run for a while (suspended, no CPU): not the sources' silence
+            self.pipe.clocks.excuse(stalled)
+        self._last_step = now
         arrived, self.inbox[:] = list(self.inbox), []
         if arrived:
             elapsed, wall = max(a[0] for a in arrived), max(a[1] for a in arrived)

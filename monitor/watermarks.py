@@ -118,6 +118,14 @@ class Watermarks:
                 sc.advanced = elapsed
         return future
 
+    def excuse(self, seconds: float) -> None:
+        """The monitor itself did not run for ``seconds`` (suspended, starved of CPU): that is no silence of the
+        sources, so their last arrival moves on by as much (what arrived meanwhile is still queued for us)."""
+        for sc in self.sources.values():
+            if sc.started:
+                sc.arrived += seconds
+                sc.advanced += seconds
+
     def alive(self, sc: SourceClock, elapsed: float) -> bool:
         return sc.started and elapsed - sc.arrived <= self.lost_after
 
