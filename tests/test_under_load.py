@@ -239,3 +239,43 @@ def test_a_suspended_daemon_catches_up_from_the_broker_queue(tmp_path, mqtt_brok
     assert answered < 10.0
     assert health["frames"] >= 0.9 * 44 * 50  # every frame of the 45 s, the paused stretch included
     assert _timeline(tmp_path / "paused.db") == [], err[-3000:]
+
+
+FLOOD = """
+import sys, paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
+c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="flood")
+c.max_queued_messages_set(0)
+c.connect(sys.argv[1], int(sys.argv[2]))
+c.loop_start()
+for i in range(int(sys.argv[3])):
+    c.publish(f"quillmere/q2/noise/n{i % 100}", "1.0", qos=0)
+c.loop_stop()
+c.disconnect()
+"""
+
+
+def test_a_flood_on_unknown_topics_makes_no_tag_stale_and_shows_as_degraded(tmp_path, mqtt_broker):
+    # Before: 200,000 messages on unknown topics made every tag stale while /healthz said "ok".
+    scenario = _scenario(tmp_path, "30 s", "")
+    port = _free_port()
+    daemon = _start_daemon(_daemon_config(tmp_path, "flooded", mqtt_broker, port))
+    try:
+        _wait_connected(port, daemon)
+        pub = subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
+                                f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "1"],
+                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        time.sleep(8.0)
+        flood = subprocess.run([sys.executable, "-c", FLOOD, mqtt_broker.host, str(mqtt_broker.port), "200000"],
+                               capture_output=True, text=True, timeout=300)
+        assert flood.returncode == 0, flood.stderr
+        time.sleep(2.0)
+        during = _health(port, timeout=30)
+        _, pub_err = pub.communicate(timeout=300)
+        assert pub.returncode == 0, pub_err
+        time.sleep(1.0)
+    finally:
+        err = _stop(daemon)
+    assert during["status"] == "degraded", during
+    assert any("refused, late or lost" in r for r in during["reasons"]), during["reasons"]
+    assert _timeline(tmp_path / "flooded.db") == [], err[-3000:]
