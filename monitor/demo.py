@@ -23,7 +23,7 @@ from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.examples import ExampleError, example_path
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.pipeline import Pipeline
-from spanwatch.monitor.present import fmt_value, transition_line
+from spanwatch.monitor.present import fmt_value, mmss, transition_line
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
@@ -136,7 +136,7 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
         await server.stop()
     wall = time.perf_counter() - wall0
     episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=daemon.history.run_id)
-    _summary(console, episodes, daemon.pipe, sim.t, wall)
+    _summary(console, episodes, daemon.pipe, sim.t, wall, sim.t0)
     return DemoResult(str(db), show.raised, episodes, sim.t, wall)
 
 
@@ -170,7 +170,7 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
         history.close()
     wall = time.perf_counter() - wall0
     episodes = query_episodes(History(sqlite_url(str(db))).engine, run_id=history.run_id)
-    _summary(console, episodes, pipe, sim.t, wall)
+    _summary(console, episodes, pipe, sim.t, wall, sim.t0)
     return DemoResult(str(db), show.raised, episodes, sim.t, wall)
 
 
@@ -189,27 +189,34 @@ class _Printer:
 
 
 def _status(console: Console, pipe: Pipeline, t: float, daemon: Daemon | None = None) -> None:
-    parts = [f"+{int(t) // 60:02d}:{int(t) % 60:02d}", state_name(pipe.line_state or 0)]
+    parts = [f"+{int(t) // 60:02d}:{int(t) % 60:02d} {state_name(pipe.line_state or 0)}"]
     if daemon is not None:
-        for c in daemon.connectors:
-            parts.append(f"{c.kind} {c.state}")
-    for (kind, obj), (_, value, reason) in pipe.latest.items():
-        if kind == "traction":
-            parts.append(f"traction {obj} {value:.2f}" if reason == 0 else f"traction {obj} -")
-    active = pipe.engine.active()
-    parts.append(f"active alarms {len(active)}")
-    console.print("  status: " + " | ".join(parts), style="dim", highlight=False)
+        parts += [f"{c.kind} {c.state}" for c in daemon.connectors if c.state != "connected"]
+    shares = [f"{obj} {value:.2f}" if reason == 0 else f"{obj} -"
+              for (kind, obj), (_, value, reason) in pipe.latest.items() if kind == "traction"]
+    if shares:
+        parts.append("traction " + " ".join(shares))
+    parts.append(f"{len(pipe.engine.active())} active")
+    console.print("  " + " | ".join(parts), style="dim", highlight=False)
 
 
-def _summary(console: Console, episodes: list[dict[str, object]], pipe: Pipeline, sim_t: float, wall: float) -> None:
+def _summary(console: Console, episodes: list[dict[str, object]], pipe: Pipeline, sim_t: float, wall: float,
+             t0: float) -> None:
+    """The alarms of the run as a table that fits 80 columns: when (since the start), how long, priority,
+    which alarm, and its worst value (the peak of a cleared one, the value at the raise of one still active)."""
     table = Table(title=f"Alarms raised ({len(episodes)})", title_justify="left")
-    for col in ("raised", "cleared", "priority", "check", "object", "level", "value", "peak"):
-        table.add_column(col)
+    table.add_column("raised", no_wrap=True)
+    table.add_column("lasted", no_wrap=True)
+    table.add_column("priority", no_wrap=True)
+    table.add_column("alarm")
+    table.add_column("worst value")
     for e in episodes:
         unit = str(e["unit"])
-        table.add_row(str(e["raised"])[11:23], str(e["cleared"])[11:23] or "active", str(e["priority"]),
-                      str(e["check"]), str(e["object"]), str(e["level"]),
-                      fmt_value(e["value"], unit), fmt_value(e["peak"], unit))  # type: ignore[arg-type]
+        raised, cleared = float(e["raised_t"]), e["cleared_t"]  # type: ignore[arg-type]
+        worst = e["peak"] if cleared is not None else e["value"]
+        table.add_row(f"+{mmss(raised - t0)}", "active" if cleared is None else mmss(float(cleared) - raised),
+                      str(e["priority"]), f"{e['check']} {e['object']} {e['level']}",
+                      fmt_value(worst, unit))  # type: ignore[arg-type]
     console.print(table)
     bad = pipe.inputs.rows()
     if bad:

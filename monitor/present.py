@@ -33,8 +33,21 @@ def fmt_limit(limit: float, unit: str, direction: str) -> str:
 
 
 def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
-    """One line describing a transition and the rich style to print it with."""
+    """One line describing a transition and the rich style to print it with.
+
+    With ``t0`` (the demo), a short line that fits an 80-column terminal: the time since ``t0``, RAISE or
+    clear, check, object, level, the value (raise) or peak (clear) and the limit; the priority is its colour.
+    Without, the full line: source time, priority and line state too.
+    """
     p = tr.point
+    if t0 is not None:
+        verb = "RAISE" if tr.event == "raise" else "clear"
+        value = fmt_value(tr.value if tr.event == "raise" else tr.peak, p.unit)
+        limit = fmt_limit(p.limit, p.unit, p.direction)
+        text = (f"+{_mmss(tr.t - t0)} {verb} {p.kind} {p.object_id} {p.level}: "
+                f"{'' if tr.event == 'raise' else 'peak '}{value}{f' ({limit})' if limit else ''}")
+        style = PRIORITY_STYLE.get(p.priority, "") if tr.event == "raise" else "dim"
+        return text, style
     clock = _clock(tr.t)
     rel = f" (+{_mmss(tr.t - t0)})" if t0 is not None else ""
     verb = "RAISE" if tr.event == "raise" else "clear"
@@ -54,6 +67,11 @@ def transition_log_line(tr: Transition) -> str:
     in its unit, the limit and the line state.
     """
     return " ".join(transition_line(tr)[0].split())
+
+
+def mmss(seconds: float) -> str:
+    """Seconds as ``mm:ss`` (hours roll into the minutes)."""
+    return _mmss(seconds)
 
 
 def _clock(t: float) -> str:
