@@ -259,9 +259,9 @@ http = "127.0.0.1:0"
         server = _serve(endpoint, scenario)
         d.wait_for(lambda log: "source plc (opcua): reconnected after " in log, 120, "the reconnection")
     finally:
+        log = d.stop()  # the daemon first: a server gone before it stops would be a second, real, loss
         server.terminate()
         server.wait(timeout=30)
-        log = d.stop()
     order = [log.index(s) for s in ("source plc (opcua): connected", "source plc (opcua): connection lost: ",
                                     "source plc (opcua): reconnected after ")]
     assert order == sorted(order)
