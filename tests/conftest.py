@@ -69,3 +69,31 @@ def mqtt_broker_factory(tmp_path: Path):
 
 
 # --- end of MQTT broker fixtures -------------------------------------------------------------
+
+
+# --- PostgreSQL fixtures (tests/pgtest.py) ----------------------------------------------------------------
+
+
+@pytest.fixture(scope="session")
+def postgres_available() -> None:
+    """Fail under CI=true, skip elsewhere, when PostgreSQL cannot be reached."""
+    from pgtest import require_postgres
+
+    require_postgres()
+
+
+@pytest.fixture
+def pg_schema(postgres_available):
+    """A fresh, empty schema on the shared PostgreSQL server (dropped afterwards): its name."""
+    from pgtest import fresh_schema
+
+    with fresh_schema() as schema:
+        yield schema
+
+
+@pytest.fixture
+def pg_url(pg_schema) -> str:
+    """A URL whose connections work in a fresh, empty schema."""
+    from pgtest import schema_url
+
+    return schema_url(pg_schema)

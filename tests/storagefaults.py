@@ -27,15 +27,14 @@ import threading
 import time
 import urllib.error
 import urllib.request
-import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
+from pgtest import PG_CONNINFO, schema_url
+
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config" / "quillmere-q2.toml"
-PG_BASE = "postgresql+psycopg://postgres@127.0.0.1:{port}/test"
-PG_CONNINFO = "host=127.0.0.1 port=5432 dbname=test user=postgres connect_timeout=3"
 ENV = {**os.environ, "PYTHONUNBUFFERED": "1"}
 
 
@@ -203,36 +202,8 @@ class Proxy:
             self.proc.wait()
 
 
-def postgres_reachable() -> str | None:
-    try:
-        import psycopg
-
-        with psycopg.connect(PG_CONNINFO) as conn:
-            conn.execute("select 1")
-        return None
-    except Exception as exc:  # any failure to connect
-        return str(exc)
-
-
-@contextlib.contextmanager
-def pg_schema() -> Iterator[str]:
-    """A fresh PostgreSQL schema on the shared server (dropped afterwards); yields its name."""
-    problem = postgres_reachable()
-    need(f"PostgreSQL not reachable on 127.0.0.1:5432: {problem}", problem is None)
-    import psycopg
-
-    schema = f"spanwatch_test_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-        conn.execute(f'create schema "{schema}"')
-    try:
-        yield schema
-    finally:
-        with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-            conn.execute(f'drop schema if exists "{schema}" cascade')
-
-
 def pg_url(schema: str, port: int = 5432) -> str:
-    return PG_BASE.format(port=port) + f"?options=-csearch_path%3D{schema}"
+    return schema_url(schema, port=port)
 
 
 def pg_rows(schema: str, sql: str) -> list[tuple]:

@@ -20,16 +20,13 @@ import time
 import urllib.error
 import urllib.request
 import uuid
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
-
-import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
 BASE = ROOT / "config" / "quillmere-q2.toml"
 OPCUA = ROOT / "config" / "quillmere-q2-opcua.toml"
-PG_CONNINFO = "host=127.0.0.1 port=5432 dbname=test user=postgres connect_timeout=3"
 PASSWORD = "Tr0ub4dor-and-3"
 
 
@@ -83,28 +80,6 @@ def healthz(port: int) -> dict | None:
         return json.loads(exc.read())
     except OSError:
         return None
-
-
-@pytest.fixture
-def pg_schema() -> Iterator[str]:
-    try:
-        import psycopg
-
-        with psycopg.connect(PG_CONNINFO) as conn:
-            conn.execute("select 1")
-    except Exception as exc:  # any failure to connect: driver missing, refused, auth
-        msg = f"PostgreSQL not reachable on 127.0.0.1:5432: {exc}"
-        if os.environ.get("CI") == "true":
-            pytest.fail(msg + " (CI=true: a test that needs a service must not skip)")
-        pytest.skip(msg)
-    schema = f"spanwatch_test_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-        conn.execute(f'create schema "{schema}"')
-    try:
-        yield schema
-    finally:
-        with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-            conn.execute(f'drop schema if exists "{schema}" cascade')
 
 
 SCENARIO = """

@@ -15,7 +15,6 @@ import sqlite3
 import subprocess
 import sys
 import textwrap
-import uuid
 from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
@@ -44,43 +43,11 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 REPO = Path(__file__).resolve().parents[1]
-PG_BASE = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
-PG_CONNINFO = "host=127.0.0.1 port=5432 dbname=test user=postgres connect_timeout=3"
 T0 = 1_772_427_600.0
 RUNNING = int(LineState.RUNNING)
 
 
 # --- backends ------------------------------------------------------------------------------------------------------
-
-
-@pytest.fixture(scope="session")
-def postgres_available() -> None:
-    """Fail under CI=true, skip elsewhere, when PostgreSQL cannot be reached."""
-    try:
-        import psycopg
-
-        with psycopg.connect(PG_CONNINFO) as conn:
-            conn.execute("select 1")
-    except Exception as exc:  # any failure to connect: driver missing, refused, auth
-        msg = f"PostgreSQL not reachable on 127.0.0.1:5432: {exc}"
-        if os.environ.get("CI") == "true":
-            pytest.fail(msg + " (CI=true: a test that needs a service must not skip)")
-        pytest.skip(msg)
-
-
-@pytest.fixture
-def pg_url(postgres_available) -> Iterator[str]:
-    """A URL whose connections work in a fresh, empty schema; the schema is dropped afterwards."""
-    import psycopg
-
-    schema = f"spanwatch_test_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-        conn.execute(f'create schema "{schema}"')
-    try:
-        yield f"{PG_BASE}?options=-csearch_path%3D{schema}"
-    finally:
-        with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-            conn.execute(f'drop schema if exists "{schema}" cascade')
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])

@@ -11,7 +11,6 @@ import stat
 import subprocess
 import sys
 import uuid
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -25,7 +24,6 @@ ROOT = Path(__file__).resolve().parent.parent
 BASE = ROOT / "config" / "quillmere-q2.toml"
 OPCUA = ROOT / "config" / "quillmere-q2-opcua.toml"
 MQTT = ROOT / "config" / "quillmere-q2-mqtt.toml"
-PG_CONNINFO = "host=127.0.0.1 port=5432 dbname=test user=postgres connect_timeout=3"
 PASSWORD = "Tr0ub4dor-and-3"  # a made-up password every check looks for in the output
 
 
@@ -38,35 +36,6 @@ def variant(tmp: Path, text: str, base: Path = OPCUA, name: str = "line.toml") -
     p = tmp / name
     p.write_text(f'extends = "{base}"\n{text}', encoding="utf-8")
     return p
-
-
-@pytest.fixture(scope="session")
-def postgres_available() -> None:
-    """Fail under CI=true, skip elsewhere, when PostgreSQL cannot be reached."""
-    try:
-        import psycopg
-
-        with psycopg.connect(PG_CONNINFO) as conn:
-            conn.execute("select 1")
-    except Exception as exc:  # any failure to connect: driver missing, refused, auth
-        msg = f"PostgreSQL not reachable on 127.0.0.1:5432: {exc}"
-        if os.environ.get("CI") == "true":
-            pytest.fail(msg + " (CI=true: a test that needs a service must not skip)")
-        pytest.skip(msg)
-
-
-@pytest.fixture
-def pg_schema(postgres_available) -> Iterator[str]:
-    import psycopg
-
-    schema = f"spanwatch_test_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-        conn.execute(f'create schema "{schema}"')
-    try:
-        yield schema
-    finally:
-        with psycopg.connect(PG_CONNINFO, autocommit=True) as conn:
-            conn.execute(f'drop schema if exists "{schema}" cascade')
 
 
 # --- the redaction helper ----------------------------------------------------------------------------------------

@@ -18,6 +18,7 @@ import stat
 import time
 from pathlib import Path
 
+from pgtest import fresh_schema
 from spanwatch.connectors.history import sqlite_url
 from storagefaults import (
     DaemonProcess,
@@ -29,7 +30,6 @@ from storagefaults import (
     free_port,
     line_config,
     pg_rows,
-    pg_schema,
     pg_url,
     small_filesystem,
     wait_for,
@@ -208,7 +208,7 @@ def test_postgresql_gone_and_back_under_a_running_daemon(tmp_path):
     # The shared PostgreSQL server is not stopped: a TCP proxy process in front of it is killed (every connection
     # cut, new ones refused) and started again on the same port.
     port, proxy_port = free_port(), free_port()
-    with pg_schema() as schema:
+    with fresh_schema() as schema:
         proxy = Proxy(proxy_port).start()
         cfg = line_config(tmp_path, pg_url(schema, proxy_port), [(UNWIND, 8, 14), (REWIND, 10, 20)], port=port,
                           daemon='history_timeout = "2 s"')
