@@ -20,6 +20,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from pgtest import fresh_schema
 from spanwatch.connectors.history import sqlite_url
 from storagefaults import (
     ENV,
@@ -28,7 +29,6 @@ from storagefaults import (
     free_port,
     line_config,
     pg_rows,
-    pg_schema,
     pg_url,
     wait_for,
 )
@@ -66,7 +66,7 @@ def backend(request, tmp_path) -> Iterator[Backend]:
 
         yield Backend(sqlite_url(str(db)), rows)
     else:
-        with pg_schema() as schema:
+        with fresh_schema() as schema:
             yield Backend(pg_url(schema), lambda sql: pg_rows(schema, sql))
 
 
