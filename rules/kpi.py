@@ -277,7 +277,7 @@ def _key_counts(keys: np.ndarray, total: int) -> list[KeyCount]:
         return []
     names, counts = np.unique(keys, return_counts=True)
     order = sorted(range(len(names)), key=lambda i: (-counts[i], names[i]))
-    return [KeyCount(str(names[i]), int(counts[i]), counts[i] / total) for i in order]
+    return [KeyCount(str(names[i]), int(counts[i]), float(counts[i] / total)) for i in order]
 
 
 def alarm_kpis(ep: Episodes, start: float, end: float, *, operators: int = 1,
