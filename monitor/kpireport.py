@@ -58,8 +58,8 @@ def kpi_text(k: AlarmKpis, width: int = 80) -> str:
     width = max(60, width)
     th = k.thresholds
     ops = f"{k.operators} operator position" + ("s" if k.operators != 1 else "")
-    out = [f"Alarm KPIs {_when(k.start)} to {_when(k.end)} ({_hours(k.end - k.start)}), {ops}",
-           f"Annunciated raises {k.raises} (advisory {k.advisory_raises}, not counted); rates per operator",
+    out = [f"Alarm KPIs {_when(k.start)} to {_when(k.end)} ({_hours(k.end - k.start)})",
+           f"{ops}; annunciated raises {k.raises} (advisory {k.advisory_raises}, not counted)",
            f"{'':30}{'measured':>12}{'acceptable':>12}{'manageable':>12}"]
 
     def row(name: str, value: str, good: str = "", ok: str = "") -> None:
@@ -99,7 +99,7 @@ def kpi_text(k: AlarmKpis, width: int = 80) -> str:
     out.append(f"{'  recommended':14}" + "".join(
         f"{'':>10}" if p.recommended is None else
         f"{('<~' if p.priority == 'urgent' else '~') + f'{100 * p.recommended:g} %':>10}" for p in k.priorities))
-    return "\n".join(_fit(line, width) for line in out)
+    return "\n".join(_fit(line.rstrip(), width) for line in out)
 
 
 def _fit(text: str, width: int) -> str:
