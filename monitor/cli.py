@@ -472,6 +472,49 @@ def alarms_cmd(
         console.print(t)
 
 
+@app.command("kpi")
+def kpi_cmd(
+    db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
+    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
+    since: Annotated[str | None, typer.Option(help="Window start, ISO 8601 (default: 24 h before --until).")] = None,
+    until: Annotated[str | None, typer.Option(help="Window end, exclusive, ISO 8601 (default: now).")] = None,
+    line: Annotated[str | None, typer.Option(help="Only the runs of this line (default: every line).")] = None,
+    operators: Annotated[int, typer.Option(help="Operator positions sharing the alarms.", min=1)] = 1,
+    fmt: Annotated[str, typer.Option("--format", help="text or json.")] = "text",
+    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
+) -> None:
+    """Alarm-system KPIs of a window (ISA-18.2 / IEC 62682 / EEMUA 191): alarm rates, floods, top 10, chattering,
+    fleeting, stale alarms and the priority distribution, beside their benchmarks."""
+    import json
+    import time
+
+    from spanwatch.monitor.kpireport import kpi_dict, kpi_text, load_episodes, parse_time
+    from spanwatch.rules.kpi import alarm_kpis
+
+    _one_of(fmt, ("text", "json"), "--format")
+
+    def when(text: str | None, opt: str, default: float) -> float:
+        try:
+            return parse_time(text) if text is not None else default
+        except ValueError as exc:
+            fail(f"{opt}: {exc}")
+
+    end = when(until, "--until", time.time())
+    start = when(since, "--since", end - 86400.0)
+    if not start < end:
+        fail(f"--since: expected a time before --until, got {since or start} .. {until or end}")
+    url, _shown = _history_url(db, db_password, reading=True)
+    engine = open_history_reader(url, db_timeout)
+    with history_errors(url, db_timeout):
+        episodes = load_episodes(engine, start, end, line)
+    engine.dispose()
+    k = alarm_kpis(episodes, start, end, operators=operators)
+    if fmt == "json":
+        typer.echo(json.dumps(kpi_dict(k), indent=1))
+    else:
+        typer.echo(kpi_text(k, width=min(console.width, 80)))
+
+
 @app.command("demo")
 def demo_cmd(
     scenario: Annotated[Path | None, typer.Option(help="Scenario file, or the name of a shipped one such as "

@@ -31,9 +31,10 @@ ISA-18.2 alarm lifecycle (acknowledge, shelve, suppress) adds its tables through
 
 from spanwatch.connectors.history.database import make_engine, sqlite_url
 from spanwatch.connectors.history.errors import HistoryError, HistoryUnavailable, WriterLockBusy
-from spanwatch.connectors.history.queries import latest_run, open_reader, query_episodes
+from spanwatch.connectors.history.queries import episodes_in_window, latest_run, open_reader, query_episodes
 from spanwatch.connectors.history.schema import SchemaError, upgrade
 from spanwatch.connectors.history.store import Context, History, HistorySink, OpenEpisode
 
 __all__ = ["Context", "History", "HistoryError", "HistorySink", "HistoryUnavailable", "OpenEpisode", "SchemaError",
-           "WriterLockBusy", "latest_run", "make_engine", "open_reader", "query_episodes", "sqlite_url", "upgrade"]
+           "WriterLockBusy", "episodes_in_window", "latest_run", "make_engine", "open_reader", "query_episodes",
+           "sqlite_url", "upgrade"]

@@ -1,5 +1,5 @@
-"""The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists) and the
-latest run."""
+"""The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists), the
+episodes active during a window (what ``spanwatch kpi`` measures) and the latest run."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from spanwatch.connectors.history.errors import HistoryError, classify
 from spanwatch.connectors.history.models import AlarmEpisode, Level, Priority, Run
 from spanwatch.connectors.history.schema import check_readable
 from spanwatch.rules.values import iso
-from sqlalchemy import false, select
+from sqlalchemy import false, or_, select
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
@@ -83,6 +83,23 @@ def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | Non
             "line_state": e.line_state, "config_hash": e.config_hash, "raised_t": e.raised_t,
             "cleared_t": e.cleared_t,
         } for e in rows]
+
+
+def episodes_in_window(engine: Engine, start: float, end: float, line_name: str | None = None
+                       ) -> list[dict[str, Any]]:
+    """Every episode active during ``[start, end)``: raised before ``end`` and cleared after ``start`` or not
+    cleared; of the runs of ``line_name`` only if given. Oldest raise first, as plain dicts (alarm_key, kind,
+    object_id, level, priority, raised_t, cleared_t — None while active)."""
+    q = (select(AlarmEpisode.alarm_key, AlarmEpisode.kind, AlarmEpisode.object_id, AlarmEpisode.level,
+                AlarmEpisode.priority, AlarmEpisode.raised_t, AlarmEpisode.cleared_t)
+         .where(AlarmEpisode.raised_t < end,
+                or_(AlarmEpisode.cleared_t.is_(None), AlarmEpisode.cleared_t > start))
+         .order_by(AlarmEpisode.raised_t, AlarmEpisode.id))
+    if line_name is not None:
+        q = q.join(Run, Run.id == AlarmEpisode.run_id).where(Run.line_name == line_name)
+    with Session(engine) as s:
+        return [{"alarm_key": k, "kind": kind, "object_id": o, "level": str(lv), "priority": str(p), "raised_t": r,
+                 "cleared_t": c} for k, kind, o, lv, p, r, c in s.execute(q).all()]
 
 
 def _values(cls: type[enum.StrEnum]) -> set[str]:
