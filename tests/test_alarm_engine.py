@@ -156,14 +156,38 @@ def test_off_delay_long_dip_clears_at_dip_start_plus_delay():
     assert events(trs) == [("raise", 0.0), ("clear", 7.0)]
 
 
-def test_on_and_off_delay_with_deadband_together():
+def test_on_delay_restarts_inside_the_deadband():
+    # ISA-18.2 / IEC 62682 (from memory): the on-delay counts time beyond the limit; the deadband applies to the
+    # return to normal only. 0.9 is inside the band (0.75..1.0) but on the normal side of the limit 1.0: it restarts
+    # the on-delay. Beyond the limit: 1.0-1.5 s and 4.5-5.0 s, each 0.5 s < 1 s: no raise.
+    # (Before the fix this raised at 2.0 s with the value 0.9, on the normal side of its limit.)
     p = point(limit=1.0, deadband=0.25, on_delay=1.0, off_delay=2.0)
-    # 0.9 is inside the deadband: it neither sets nor clears, so the condition stays set from 1.0 s
     values = steps((0.0, 1), (1.5, 0.5), (0.9, 2), (0.5, 1), (1.5, 0.5), (0.5, 3))
+    assert run(p, values) == []
+
+
+def test_raise_value_beyond_the_limit_after_a_dip_into_the_band():
+    # the reported defect: "RAISE 0.722 (limit >= 0.75)". limit 0.75, deadband 0.05, on-delay 2 s.
+    # 0.76 from 1.0 s to 2.5 s (1.5 s), 0.722 (inside the band 0.70..0.75) from 2.5 s to 4.0 s restarts the delay,
+    # 0.8 from 4.0 s: raise at 4.0 + 2.0 = 6.0 s with 0.8.
+    p = point(limit=0.75, deadband=0.05, on_delay=2.0)
+    values = steps((0.5, 1), (0.76, 1.5), (0.722, 1.5), (0.8, 3), (0.5, 1))
     trs = run(p, values)
-    # set at 1.0, still set at 2.0 (inside band) -> raise at 2.0; reset at 3.5, set again at 4.5 (off-delay
-    # interrupted), reset at 5.0, clear at 7.0
-    assert events(trs) == [("raise", 2.0), ("clear", 7.0)]
+    assert events(trs) == [("raise", 6.0), ("clear", 7.0)]
+    assert trs[0].value == 0.8
+    assert trs[1].peak == 0.8
+
+
+def test_off_delay_counts_beyond_limit_minus_deadband_only():
+    # the deadband applies to the return to normal: the off-delay counts time below limit - deadband (0.75) and a
+    # value back inside the band (0.9) restarts it (ISA-18.2 / IEC 62682, from memory).
+    p = point(limit=1.0, deadband=0.25, on_delay=1.0, off_delay=2.0)
+    values = steps((0.0, 1), (1.5, 1.5), (0.9, 2), (0.5, 1), (0.9, 0.5), (0.5, 3))
+    trs = run(p, values)
+    # beyond 1.0 from 1.0 s -> raise at 2.0 s; 0.9 (2.5-4.5 s) holds; below 0.75 from 4.5 s, back in the band at
+    # 5.5 s (off-delay interrupted after 1 s), below again from 6.0 s -> clear at 8.0 s
+    assert events(trs) == [("raise", 2.0), ("clear", 8.0)]
+    assert trs[0].value == 1.5 and trs[1].peak == 1.5
 
 
 # --- validity: invalid input holds, line state resets --------------------------------------------------------------
