@@ -84,14 +84,15 @@ def _one_of(value: str | None, choices: Sequence[str], option: str) -> None:
 
 
 def open_line(path: Path) -> Line:
-    """Load a line and its alarm settings, exiting with status 2 on any config problem."""
-    from spanwatch.monitor.checkset import alarm_points, build_checks
+    """Load a line and its alarm settings (and suppression rules), exiting with status 2 on any config problem."""
+    from spanwatch.monitor.checkset import alarm_points, build_checks, suppression_rules
     from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.line import load_line
 
     try:
         line = load_line(path)
-        alarm_points(line, build_checks(line))
+        checks = build_checks(line)
+        suppression_rules(line, alarm_points(line, checks), checks)
     except ConfigError as exc:
         fail_config(exc)
     return line
