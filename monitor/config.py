@@ -175,6 +175,12 @@ def _at_most(v: float, high: float) -> float:
     return v
 
 
+def _not_empty(v: Any, what: str) -> Any:
+    if not v:
+        raise ValueError(f"expected {what}, got {v!r}")
+    return v
+
+
 def _at_least_one(v: float) -> float:
     # at least 1 (capacity is divided by it); above 10 the check would never warn (common practice, no source)
     if not (1.0 <= v <= 10.0 and math.isfinite(v)):
@@ -291,8 +297,8 @@ class SuppressRule(Strict):
     suppressed (still tracked and recorded; the lifecycle hides them) for ``reason``."""
 
     while_: AlarmPattern = Field(alias="while")
-    suppress: list[AlarmPattern] = Field(min_length=1)
-    reason: str = Field(min_length=1)
+    suppress: Annotated[list[AlarmPattern], AfterValidator(lambda v: _not_empty(v, "at least one alarm pattern"))]
+    reason: Annotated[str, AfterValidator(lambda v: _not_empty(v.strip(), "a reason an operator reads"))]
 
 
 class AlarmsSection(Strict):
