@@ -84,14 +84,15 @@ def _one_of(value: str | None, choices: Sequence[str], option: str) -> None:
 
 
 def open_line(path: Path) -> Line:
-    """Load a line and its alarm settings, exiting with status 2 on any config problem."""
-    from spanwatch.monitor.checkset import alarm_points, build_checks
+    """Load a line and its alarm settings (and suppression rules), exiting with status 2 on any config problem."""
+    from spanwatch.monitor.checkset import alarm_points, build_checks, suppression_rules
     from spanwatch.monitor.config import ConfigError
     from spanwatch.monitor.line import load_line
 
     try:
         line = load_line(path)
-        alarm_points(line, build_checks(line))
+        checks = build_checks(line)
+        suppression_rules(line, alarm_points(line, checks), checks)
     except ConfigError as exc:
         fail_config(exc)
     return line
@@ -409,7 +410,8 @@ def alarms_cmd(
     run: Annotated[int | None, typer.Option(help="Only this run (default: all runs).")] = None,
     check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
     obj: Annotated[str | None, typer.Option("--object", help="Only this roller, zone, winder or tag.")] = None,
-    priority: Annotated[str | None, typer.Option(help="Only this priority: low, medium, high.")] = None,
+    priority: Annotated[str | None, typer.Option(
+        help="Only this priority: advisory, low, medium, high, urgent.")] = None,
     level: Annotated[str | None, typer.Option(help="Only this level: warning or alarm.")] = None,
     since: Annotated[str | None, typer.Option(help="Raised at or after this ISO 8601 time.")] = None,
     until: Annotated[str | None, typer.Option(help="Raised before this ISO 8601 time.")] = None,
@@ -424,13 +426,14 @@ def alarms_cmd(
 
     from rich.table import Table
     from spanwatch.connectors.history import query_episodes
-    from spanwatch.connectors.history.models import Level, Priority
+    from spanwatch.connectors.history.models import Level
     from spanwatch.monitor.present import fmt_value
+    from spanwatch.monitor.schema import PRIORITIES
     from spanwatch.rules.catalog import CHECK_KINDS
 
     _one_of(fmt, ("table", "csv", "json"), "--format")
     _one_of(check, sorted(CHECK_KINDS), "--check")
-    _one_of(priority, [p.value for p in Priority], "--priority")
+    _one_of(priority, PRIORITIES, "--priority")
     _one_of(level, [v.value for v in Level], "--level")
 
     def when(text: str | None, opt: str) -> float | None:

@@ -27,6 +27,7 @@ from spanwatch.monitor import units as U
 from spanwatch.monitor.schema import (
     ID_PATTERN,
     Acceleration,
+    AlarmPattern,
     Angle,
     ConfigError,
     Duration,
@@ -50,6 +51,7 @@ from spanwatch.monitor.schema import (
     UnitName,
     between,
     finite_at_least,
+    int_between,
 )
 from spanwatch.monitor.sources import MqttSource, OpcUaSource, SimulatedSource, Source, TopicMap, mqtt_settings
 
@@ -173,6 +175,12 @@ def _at_most(v: float, high: float) -> float:
     return v
 
 
+def _not_empty(v: Any, what: str) -> Any:
+    if not v:
+        raise ValueError(f"expected {what}, got {v!r}")
+    return v
+
+
 def _at_least_one(v: float) -> float:
     # at least 1 (capacity is divided by it); above 10 the check would never warn (common practice, no source)
     if not (1.0 <= v <= 10.0 and math.isfinite(v)):
@@ -271,6 +279,7 @@ class AlarmOverride(Strict):
     off_delay: Delay | None = None
     priority: Priority | None = None
     warning_priority: Priority | None = None
+    latched: bool | None = None
 
 
 class CheckSection(AlarmOverride):
@@ -281,6 +290,38 @@ class CheckSection(AlarmOverride):
     action: str | None = None
     response_time: Delay | None = None
     overrides: dict[Ident, AlarmOverride] = Field(default_factory=dict)
+
+
+class SuppressRule(Strict):
+    """Suppression by design: while an alarm matching ``while`` is active, the alarms matching ``suppress`` are
+    suppressed (still tracked and recorded; the lifecycle hides them) for ``reason``."""
+
+    while_: AlarmPattern = Field(alias="while")
+    suppress: Annotated[list[AlarmPattern], AfterValidator(lambda v: _not_empty(v, "at least one alarm pattern"))]
+    reason: Annotated[str, AfterValidator(lambda v: _not_empty(v.strip(), "a reason an operator reads"))]
+
+
+class AlarmsSection(Strict):
+    """Alarm-system settings beyond one check: operators, shelving, chattering, first-out groups, suppression.
+
+    Patterns are fnmatch patterns on an alarm's "kind:object" or "kind:object:level" (``traction:R1*``,
+    ``slip:*``); each must match an alarm of the line (checked in :mod:`spanwatch.monitor.checkset`).
+    """
+
+    operators: Annotated[int, int_between(1, 1000, "a number of operator positions")] = Field(
+        default=1, description="operator positions (consoles) sharing the alarms, for the alarm-rate KPIs")
+    # the longest an operator may shelve an alarm: one shift (common practice, no source)
+    shelve_max: Annotated[float, between(U.TIME, 0.0, DURATION_MAX)] = 8 * 3600.0
+    # chattering: 3 or more raises within 60 s (ISA-18.2 TR / EEMUA 191; from memory)
+    chatter_count: Annotated[int, int_between(2, 1000, "a number of raises")] = 3
+    chatter_window: Annotated[float, between(U.TIME, 0.0, DURATION_MAX)] = 60.0
+    # the remedy: while an alarm chatters its off-delay is at least this, for chatter_hold after its last
+    # chattering raise; 0 disables the remedy, chattering is reported either way (common practice, no source)
+    chatter_off_delay: Delay = 30.0
+    chatter_hold: Delay = 600.0
+    first_out: dict[Ident, list[AlarmPattern]] = Field(
+        default_factory=dict, description="first-out groups: name -> alarm patterns of its members")
+    suppress: list[SuppressRule] = Field(default_factory=list)
 
 
 
@@ -361,6 +402,7 @@ class LineConfig(Strict):
     checks: dict[str, CheckSection] = Field(default_factory=dict)
     sources: dict[Ident, Source] = Field(default_factory=dict)
     daemon: DaemonSection = Field(default_factory=DaemonSection)
+    alarms: AlarmsSection = Field(default_factory=AlarmsSection)
 
 
 # --- loading --------------------------------------------------------------------------

@@ -6,6 +6,7 @@ from collections.abc import Iterator
 from typing import TYPE_CHECKING, Any
 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
+from spanwatch.monitor.schema import PRIORITIES
 
 if TYPE_CHECKING:
     from spanwatch.monitor.daemon import Daemon
@@ -51,7 +52,7 @@ class DaemonCollector:
         lat.add_metric([], d.frame_latency)
         yield lat
         active = GaugeMetricFamily("spanwatch_active_alarms", "Active alarms by priority", labels=["priority"])
-        counts = {"low": 0, "medium": 0, "high": 0}
+        counts = dict.fromkeys(PRIORITIES, 0)
         for p in d.pipe.engine.active():
             counts[p.priority] = counts.get(p.priority, 0) + 1
         for prio, n in counts.items():

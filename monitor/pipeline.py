@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from spanwatch.connectors.history.store import HistorySink
 from spanwatch.monitor.aligner import Aligner
-from spanwatch.monitor.checkset import alarm_points, build_checks
+from spanwatch.monitor.checkset import alarm_points, build_checks, chatter_settings, suppression_rules
 from spanwatch.monitor.context import ContextRecorder
 from spanwatch.monitor.inputs import InputStats
 from spanwatch.monitor.line import Line
@@ -81,7 +81,8 @@ class Pipeline:
                              for name in line.model.sources if name in self.source_names]
         self.checks = build_checks(line)
         self.points = alarm_points(line, self.checks)
-        self.engine = AlarmEngine(self.points)
+        self.engine = AlarmEngine(self.points, chatter_settings(line))
+        self.suppression = suppression_rules(line, self.points, self.checks)  # read by the alarm lifecycle
         self.inputs = InputStats()
         self.check_stats = CheckStats()
         self.history = history

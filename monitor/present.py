@@ -7,7 +7,9 @@ import math
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
 
-PRIORITY_STYLE = {"high": "bold red", "medium": "yellow", "low": "cyan"}
+# advisory alarms are journal only (not annunciated): dim, as a clear
+PRIORITY_STYLE = {"urgent": "bold reverse red", "high": "bold red", "medium": "yellow", "low": "cyan",
+                  "advisory": "dim"}
 
 
 def fmt_value(value: float | None, unit: str) -> str:

@@ -134,7 +134,41 @@ def _unit_name(value: str) -> str:
 Ident = Annotated[str, AfterValidator(_ident)]
 TagName = Annotated[str, Field(pattern=_TAG.pattern)]
 UnitName = Annotated[str, AfterValidator(_unit_name)]
-Priority = Literal["low", "medium", "high"]
+# ISA-18.2 priorities (ANSI/ISA-18.2-2016 recommends three or four annunciated priorities; from memory): "advisory"
+# is journal only, never annunciated; "low" to "urgent" are annunciated, most urgent last.
+PRIORITIES = ("advisory", "low", "medium", "high", "urgent")
+Priority = Literal["advisory", "low", "medium", "high", "urgent"]
+
+
+_PATTERN = re.compile(r"^[A-Za-z0-9_.\-/:*?\[\]!]+$")
+
+
+def _alarm_pattern(value: str) -> str:
+    """An alarm-key pattern: fnmatch (``*``, ``?``, ``[...]``) on "kind:object" or "kind:object:level"."""
+    closed = True
+    for ch in value:
+        if ch == "[":
+            closed = False
+        elif ch == "]":
+            closed = True
+    if not _PATTERN.match(value) or ":" not in value or not closed:
+        raise ValueError(f"expected an alarm pattern such as \"traction:R1*\" or \"slip:*:alarm\" (kind:object or "
+                         f"kind:object:level; letters, digits, _ . - / and the wildcards * ? [...]), got {value!r}")
+    return value
+
+
+AlarmPattern = Annotated[str, AfterValidator(_alarm_pattern)]
+
+
+def int_between(low: int, high: int, what: str) -> BeforeValidator:
+    """A whole number from ``low`` to ``high`` (a bool or a fraction is an error, not a number)."""
+
+    def check(value: Any) -> int:
+        if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+            raise ValueError(f"expected {what}: a whole number from {low} to {high}, got {value!r}")
+        return value
+
+    return BeforeValidator(check)
 
 
 class Strict(BaseModel):

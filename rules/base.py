@@ -157,7 +157,9 @@ class AlarmSettings:
     ``warning`` None: the check has no warning level. Levels are in the check's own value (see
     :attr:`AlarmDefaults.unit`); delays and the response time in seconds. ``cause``,
     ``consequence``, ``action`` and ``response_time`` are the rationalization of the alarm
-    (ANSI/ISA-18.2-2016, master alarm database; from memory).
+    (ANSI/ISA-18.2-2016, master alarm database; from memory). ``latched``: the alarm stays
+    annunciated after its return to normal until an operator resets it (ISA-18.2 latched alarm).
+    ``priority``: "advisory" (journal only, not annunciated), "low", "medium", "high" or "urgent".
     """
 
     enabled: bool = True
@@ -172,6 +174,7 @@ class AlarmSettings:
     consequence: str
     action: str
     response_time: float = 60.0
+    latched: bool = False
 
     def limit(self, level: str) -> float | None:
         """The limit of ``level`` ("warning" or "alarm")."""

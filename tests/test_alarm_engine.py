@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from spanwatch.rules.alarms import AlarmEngine, AlarmPoint, Transition
+from spanwatch.rules.alarms import AlarmEngine, AlarmPoint, ChatterSettings, Transition, chattering
 from spanwatch.rules.base import CheckResult, LineState, Reason
 
 RATE = 10.0  # frames per second
@@ -156,14 +156,38 @@ def test_off_delay_long_dip_clears_at_dip_start_plus_delay():
     assert events(trs) == [("raise", 0.0), ("clear", 7.0)]
 
 
-def test_on_and_off_delay_with_deadband_together():
+def test_on_delay_restarts_inside_the_deadband():
+    # ISA-18.2 / IEC 62682 (from memory): the on-delay counts time beyond the limit; the deadband applies to the
+    # return to normal only. 0.9 is inside the band (0.75..1.0) but on the normal side of the limit 1.0: it restarts
+    # the on-delay. Beyond the limit: 1.0-1.5 s and 4.5-5.0 s, each 0.5 s < 1 s: no raise.
+    # (Before the fix this raised at 2.0 s with the value 0.9, on the normal side of its limit.)
     p = point(limit=1.0, deadband=0.25, on_delay=1.0, off_delay=2.0)
-    # 0.9 is inside the deadband: it neither sets nor clears, so the condition stays set from 1.0 s
     values = steps((0.0, 1), (1.5, 0.5), (0.9, 2), (0.5, 1), (1.5, 0.5), (0.5, 3))
+    assert run(p, values) == []
+
+
+def test_raise_value_beyond_the_limit_after_a_dip_into_the_band():
+    # the reported defect: "RAISE 0.722 (limit >= 0.75)". limit 0.75, deadband 0.05, on-delay 2 s.
+    # 0.76 from 1.0 s to 2.5 s (1.5 s), 0.722 (inside the band 0.70..0.75) from 2.5 s to 4.0 s restarts the delay,
+    # 0.8 from 4.0 s: raise at 4.0 + 2.0 = 6.0 s with 0.8.
+    p = point(limit=0.75, deadband=0.05, on_delay=2.0)
+    values = steps((0.5, 1), (0.76, 1.5), (0.722, 1.5), (0.8, 3), (0.5, 1))
     trs = run(p, values)
-    # set at 1.0, still set at 2.0 (inside band) -> raise at 2.0; reset at 3.5, set again at 4.5 (off-delay
-    # interrupted), reset at 5.0, clear at 7.0
-    assert events(trs) == [("raise", 2.0), ("clear", 7.0)]
+    assert events(trs) == [("raise", 6.0), ("clear", 7.0)]
+    assert trs[0].value == 0.8
+    assert trs[1].peak == 0.8
+
+
+def test_off_delay_counts_beyond_limit_minus_deadband_only():
+    # the deadband applies to the return to normal: the off-delay counts time below limit - deadband (0.75) and a
+    # value back inside the band (0.9) restarts it (ISA-18.2 / IEC 62682, from memory).
+    p = point(limit=1.0, deadband=0.25, on_delay=1.0, off_delay=2.0)
+    values = steps((0.0, 1), (1.5, 1.5), (0.9, 2), (0.5, 1), (0.9, 0.5), (0.5, 3))
+    trs = run(p, values)
+    # beyond 1.0 from 1.0 s -> raise at 2.0 s; 0.9 (2.5-4.5 s) holds; below 0.75 from 4.5 s, back in the band at
+    # 5.5 s (off-delay interrupted after 1 s), below again from 6.0 s -> clear at 8.0 s
+    assert events(trs) == [("raise", 2.0), ("clear", 8.0)]
+    assert trs[0].value == 1.5 and trs[1].peak == 1.5
 
 
 # --- validity: invalid input holds, line state resets --------------------------------------------------------------
@@ -439,3 +463,147 @@ def test_after_its_first_valid_frame_a_carried_on_alarm_is_gated_as_any_other():
     gated, ok = int(Reason.LINE_STATE), int(Reason.OK)
     trs = _restored_run([2.0, 0, 0], [ok, gated, gated])
     assert [(tr.event, round(tr.t * RATE) - T0_FRAME) for tr in trs] == [("clear", 1)]
+
+
+# --- the value at a raise is beyond its limit; a clear follows off_delay back past the deadband ----------------------
+
+
+def _beyond(values: np.ndarray, p: AlarmPoint, threshold: float) -> np.ndarray:
+    """True where the value is at or beyond ``threshold`` on the abnormal side of the point's direction."""
+    if p.direction == "high":
+        return values >= threshold
+    if p.direction == "low":
+        return values <= threshold
+    return np.abs(values) >= threshold
+
+
+@settings(max_examples=300, deadline=None)
+@given(scenarios())
+def test_raise_beyond_limit_and_clear_after_off_delay_back_past_the_band(sc):
+    # ANSI/ISA-18.2-2016 / IEC 62682 nuisance-alarm tools (from memory): the on-delay counts time beyond the limit,
+    # the deadband and off-delay apply to the return to normal. Invalid frames hold; gated frames count as normal.
+    p, values, reasons, line_state, blocks = sc
+    trs = run(p, values, reasons, line_state, blocks=blocks)
+    t = times(len(values))
+    valid = reasons == int(Reason.OK)
+    gated = reasons == int(Reason.LINE_STATE)
+    v = np.where(valid, values, np.nan)
+    with np.errstate(invalid="ignore"):
+        beyond = valid & _beyond(v, p, p.limit)  # "low": limit itself is the threshold
+        back = p.limit + p.deadband if p.direction == "low" else p.limit - p.deadband
+        still = valid & _beyond(v, p, back)  # not yet back past the band
+    tol = 1e-6
+    assert [tr.event for tr in trs] == ["raise", "clear"] * (len(trs) // 2) + ["raise"] * (len(trs) % 2)
+    for tr in trs:
+        k = int(np.flatnonzero(np.isclose(t, tr.t, rtol=0, atol=tol))[0])
+        if tr.event == "raise":
+            assert valid[k] and beyond[k], (tr, values[k])
+            assert tr.t - t[0] >= p.on_delay - tol
+            window = (t >= tr.t - p.on_delay + tol) & (t <= tr.t)
+            assert not (window & valid & ~beyond).any() and not (window & gated).any()
+        else:
+            window = (t >= tr.t - p.off_delay + tol) & (t <= tr.t)
+            assert not (window & still).any()
+            assert math.isfinite(tr.peak) and _beyond(np.array([tr.peak]), p, p.limit)[0]
+
+
+# --- first-out groups ----------------------------------------------------------------------------------------------
+
+
+def _run_many(points: list[AlarmPoint], series: dict[tuple[str, str], np.ndarray]) -> list[Transition]:
+    n = len(next(iter(series.values())))
+    eng = AlarmEngine(points)
+    return eng.evaluate(times(n), {k: result(v) for k, v in series.items()}, np.full(n, RUNNING, np.int8))
+
+
+def test_first_out_marks_the_first_raise_of_a_quiet_group():
+    # ISA-18.2 first-out alarming (from memory): of a group of related alarms, the first to sound is marked.
+    a = AlarmPoint(**{**point(kind="traction", object_id="R1a").__dict__, "groups": ("unwind",)})
+    b = AlarmPoint(**{**point(kind="slip", object_id="R1b").__dict__, "groups": ("unwind",)})
+    c = point(kind="draw", object_id="S3")  # in no group
+    va = steps((0.0, 1), (2.0, 3), (0.0, 4))  # raise 1.0, clear 4.0
+    vb = steps((0.0, 2), (2.0, 2), (0.0, 1), (2.0, 1), (0.0, 2))  # raise 2.0, clear 4.0, raise 5.0, clear 6.0
+    vc = steps((2.0, 1), (0.0, 7))
+    trs = _run_many([a, b, c], {("traction", "R1a"): va, ("slip", "R1b"): vb, ("draw", "S3"): vc})
+    got = [(tr.key, tr.event, seconds(tr), tr.first_out) for tr in trs]
+    assert got == [
+        ("draw:S3:alarm", "raise", 0.0, False),
+        ("traction:R1a:alarm", "raise", 1.0, True),  # the group is quiet: first out
+        ("draw:S3:alarm", "clear", 1.0, False),
+        ("slip:R1b:alarm", "raise", 2.0, False),  # R1a still active: not first
+        ("traction:R1a:alarm", "clear", 4.0, False),
+        ("slip:R1b:alarm", "clear", 4.0, False),
+        ("slip:R1b:alarm", "raise", 5.0, True),  # all clear since 4.0: first out again
+        ("slip:R1b:alarm", "clear", 6.0, False),
+    ]
+
+
+def test_first_out_raises_on_the_same_frame_are_all_first():
+    a = AlarmPoint(**{**point(object_id="R1a").__dict__, "groups": ("unwind", "all")})
+    b = AlarmPoint(**{**point(object_id="R1b").__dict__, "groups": ("unwind",)})
+    v = steps((0.0, 1), (2.0, 1))
+    trs = _run_many([a, b], {("traction", "R1a"): v, ("traction", "R1b"): v})
+    assert [(tr.key, seconds(tr), tr.first_out) for tr in trs] == [
+        ("traction:R1a:alarm", 1.0, True), ("traction:R1b:alarm", 1.0, True)]
+
+
+def test_first_out_across_blocks_remembers_the_active_group():
+    a = AlarmPoint(**{**point(object_id="R1a").__dict__, "groups": ("unwind",)})
+    b = AlarmPoint(**{**point(object_id="R1b").__dict__, "groups": ("unwind",)})
+    eng = AlarmEngine([a, b])
+    ls = np.full(10, RUNNING, np.int8)
+    first = eng.evaluate(times(10), {("traction", "R1a"): result(np.full(10, 2.0)),
+                                     ("traction", "R1b"): result(np.zeros(10))}, ls)
+    second = eng.evaluate(times(10, start=10), {("traction", "R1a"): result(np.full(10, 2.0)),
+                                                ("traction", "R1b"): result(np.full(10, 2.0))}, ls)
+    assert [(tr.key, tr.first_out) for tr in first] == [("traction:R1a:alarm", True)]
+    assert [(tr.key, tr.first_out) for tr in second] == [("traction:R1b:alarm", False)]
+
+
+# --- chattering ----------------------------------------------------------------------------------------------------
+
+
+def test_chattering_helper_counts_raises_in_the_trailing_window():
+    # 3 or more raises within 60 s (ISA-18.2 TR / EEMUA 191; from memory)
+    assert chattering((), 0.0, 3, 60.0) == ((0.0,), False)
+    assert chattering((0.0, 20.0), 60.0, 3, 60.0) == ((0.0, 20.0, 60.0), True)  # 60 s apart: within
+    assert chattering((0.0, 20.0), 60.1, 3, 60.0) == ((20.0, 60.1), False)
+    assert chattering((10.0, 20.0, 30.0), 31.0, 3, 60.0)[1] is True
+
+
+def _spikes(*at: float, width: float = 0.5, total: float = 32.0) -> np.ndarray:
+    """2.0 for ``width`` seconds from each of ``at``, 0 elsewhere."""
+    v = np.zeros(round(total * RATE))
+    for a in at:
+        v[round(a * RATE): round((a + width) * RATE)] = 2.0
+    return v
+
+
+def test_chattering_raises_the_off_delay_for_the_hold():
+    # remedy (common practice, no source): while it chatters, the alarm's off-delay is at least chatter off_delay.
+    # count 3 in 10 s, off-delay 3 s for 20 s. Spikes of 0.5 s at 0, 2, 4, 20, 30 s; limit 1, no delays.
+    # raise 4 s is the third within 10 s: chattering, hold until 24 s -> returns starting at 4.5 and 20.5 s need 3 s;
+    # the return at 30.5 s is past the hold.
+    p = point()
+    eng = AlarmEngine([p], ChatterSettings(count=3, window=10.0, off_delay=3.0, hold=20.0))
+    v = _spikes(0, 2, 4, 20, 30)
+    trs = eng.evaluate(times(v.size), {(p.kind, p.object_id): result(v)}, np.full(v.size, RUNNING, np.int8))
+    assert [(tr.event, seconds(tr), tr.chattering) for tr in trs] == [
+        ("raise", 0.0, False), ("clear", 0.5, False), ("raise", 2.0, False), ("clear", 2.5, False),
+        ("raise", 4.0, True), ("clear", 7.5, False), ("raise", 20.0, False), ("clear", 23.5, False),
+        ("raise", 30.0, False), ("clear", 30.5, False)]
+
+
+def test_chattering_reported_without_the_remedy():
+    p = point()
+    eng = AlarmEngine([p], ChatterSettings(count=3, window=10.0, off_delay=0.0, hold=20.0))
+    v = _spikes(0, 2, 4)
+    trs = eng.evaluate(times(v.size), {(p.kind, p.object_id): result(v)}, np.full(v.size, RUNNING, np.int8))
+    assert [(tr.event, seconds(tr), tr.chattering) for tr in trs] == [
+        ("raise", 0.0, False), ("clear", 0.5, False), ("raise", 2.0, False), ("clear", 2.5, False),
+        ("raise", 4.0, True), ("clear", 4.5, False)]
+
+
+def test_latched_and_groups_default_off():
+    p = point()
+    assert p.latched is False and p.groups == ()

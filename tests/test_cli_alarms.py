@@ -232,7 +232,7 @@ def test_since_until_filters_in_any_offset(replayed, rows):
 
 
 @pytest.mark.parametrize("args", [["--since", "2026-03-02T05:00:00"], ["--until", "yesterday"],
-                                  ["--format", "xml"], ["--check", "no_such_check"], ["--priority", "urgent"],
+                                  ["--format", "xml"], ["--check", "no_such_check"], ["--priority", "critical"],
                                   ["--level", "alarms"]])
 def test_bad_filter_arguments_exit_2(replayed, args):
     db, _ = replayed

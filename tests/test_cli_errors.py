@@ -239,7 +239,7 @@ def history(tmp_path_factory) -> Path:
 
 
 @pytest.mark.parametrize(("args", "expected"), [
-    (["--priority", "urgent"], "--priority: expected one of low, medium, high, got 'urgent'"),
+    (["--priority", "critical"], "--priority: expected one of advisory, low, medium, high, urgent, got 'critical'"),
     (["--level", "alarms"], "--level: expected one of warning, alarm, got 'alarms' (did you mean alarm?)"),
     (["--check", "tracton"], "got 'tracton' (did you mean traction?)"),
     (["--format", "yaml"], "--format: expected one of table, csv, json"),

@@ -1,0 +1,134 @@
+"""Suppression by design: which alarms an active alarm makes redundant, and why.
+
+ANSI/ISA-18.2-2016 and IEC 62682 (designed suppression, from memory) suppress an alarm by
+logic when another condition explains it: the operator sees the cause once, not a flood of
+its consequences. A suppressed alarm's condition is still evaluated and recorded by the
+:class:`~spanwatch.rules.alarms.AlarmEngine`; the lifecycle hides it while suppressed.
+
+Rules are (while, suppress, reason): while an alarm matching the ``while`` pattern is active,
+the alarms matching any ``suppress`` pattern are suppressed. Patterns are fnmatch patterns
+(case-sensitive) matched against an alarm's "kind:object" and its "kind:object:level".
+:func:`derived_rules` builds the rules that follow from the line itself:
+
+1. a live source lost (``source_lost``, :mod:`spanwatch.rules.sourcehealth`) suppresses every
+   plausibility alarm (:data:`PLAUSIBILITY_KINDS`) of that source's tags: one "source lost"
+   alarm instead of one per tag;
+2. a stale tag suppresses the other plausibility alarms of that tag (frozen, quality, range):
+   one dropped tag raises one alarm, not both stale and frozen;
+3. any plausibility alarm of a tag suppresses the physics alarms whose check reads that tag
+   (a check's ``inputs`` are signal names; ``signal_tags`` says which tags each signal reads).
+
+Rules are tried in order (the derived ones first, then the configured ones); an alarm
+suppressed by several active alarms is reported with the first rule's reason.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from fnmatch import fnmatchcase
+
+from spanwatch.rules.alarms import AlarmPoint
+from spanwatch.rules.base import Check
+from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
+from spanwatch.rules.sourcehealth import SourceLostCheck
+
+PLAUSIBILITY_KINDS = (TagStaleCheck.kind, TagFrozenCheck.kind, TagQualityCheck.kind, TagRangeCheck.kind)
+STALE_KIND = TagStaleCheck.kind
+SOURCE_LOST_KIND = SourceLostCheck.kind
+
+
+@dataclass(frozen=True)
+class SuppressionRule:
+    """While an alarm matching ``while_`` is active, the alarms matching ``suppress`` are suppressed."""
+
+    while_: str
+    suppress: tuple[str, ...]
+    reason: str
+
+
+def matches(pattern: str, point: AlarmPoint) -> bool:
+    """True when ``pattern`` matches the point's "kind:object" or its "kind:object:level" (fnmatch, case-sensitive).
+
+    >>> p = AlarmPoint("traction", "R1a", "alarm", 1.0, "high", 0.0, 0.0, 0.0, "high", "", "", "", "", 60.0)
+    >>> matches("traction:R1*", p), matches("traction:*:warning", p), matches("slip:*", p)
+    (True, False, False)
+    """
+    return fnmatchcase(f"{point.kind}:{point.object_id}", pattern) or fnmatchcase(point.key, pattern)
+
+
+def derived_rules(checks: Iterable[Check], tag_sources: Mapping[str, str | None],
+                  signal_tags: Mapping[str, tuple[str, ...]]) -> list[SuppressionRule]:
+    """The suppression rules that follow from the line: source lost > tag plausibility > physics.
+
+    ``tag_sources``: tag name -> its live source (None: a recording). ``signal_tags``: signal
+    name -> the tags it is computed from (``tag/<name>`` reads tag ``name`` and needs no entry).
+    Tag names hold no fnmatch wildcards (config tag names are letters, digits, ``_ . - / :``),
+    so the derived patterns are exact "kind:object" names.
+    """
+    checks = list(checks)
+    kinds_of: dict[str, list[str]] = {}
+    for c in checks:
+        if c.kind in PLAUSIBILITY_KINDS:
+            kinds_of.setdefault(c.object_id, []).append(c.kind)
+    out: list[SuppressionRule] = []
+    for c in checks:
+        if c.kind == SOURCE_LOST_KIND:
+            tags = [t for t, s in tag_sources.items() if s == c.object_id and t in kinds_of]
+            targets = tuple(f"{k}:{t}" for t in tags for k in kinds_of[t])
+            if targets:
+                out.append(SuppressionRule(f"{c.kind}:{c.object_id}", targets, f"source {c.object_id} lost"))
+    for tag, kinds in kinds_of.items():
+        if STALE_KIND in kinds:
+            others = tuple(f"{k}:{tag}" for k in kinds if k != STALE_KIND)
+            if others:
+                out.append(SuppressionRule(f"{STALE_KIND}:{tag}", others, f"tag {tag} stale"))
+    readers: dict[str, list[str]] = {}
+    for c in checks:
+        if c.kind in PLAUSIBILITY_KINDS or c.kind == SOURCE_LOST_KIND:
+            continue
+        for tag in dict.fromkeys(t for name in c.inputs for t in _tags_of(name, signal_tags)):
+            readers.setdefault(tag, []).append(f"{c.kind}:{c.object_id}")
+    for tag, kinds in kinds_of.items():
+        if tag in readers:
+            targets = tuple(readers[tag])
+            for k in kinds:
+                out.append(SuppressionRule(f"{k}:{tag}", targets, f"tag {tag} implausible ({k})"))
+    return out
+
+
+def _tags_of(signal: str, signal_tags: Mapping[str, tuple[str, ...]]) -> tuple[str, ...]:
+    if signal.startswith("tag/"):
+        return (signal[4:],)
+    return signal_tags.get(signal, ())
+
+
+class SuppressionRules:
+    """Rules resolved against the line's alarm points: which active alarm suppresses which other."""
+
+    def __init__(self, rules: Iterable[SuppressionRule], points: Iterable[AlarmPoint]) -> None:
+        points = list(points)
+        self.rules = list(rules)
+        # suppressor key -> [(rule index, suppressed key, reason)], in rule order
+        self._by_key: dict[str, list[tuple[int, str, str]]] = {}
+        for i, r in enumerate(self.rules):
+            whiles = [p.key for p in points if matches(r.while_, p)]
+            targets = [p.key for p in points if any(matches(s, p) for s in r.suppress)]
+            for w in whiles:
+                self._by_key.setdefault(w, []).extend((i, k, f"{r.reason} ({w} active)") for k in targets if k != w)
+
+    def targets(self, key: str) -> list[str]:
+        """The alarm keys an active ``key`` suppresses."""
+        return [k for _, k, _ in self._by_key.get(key, [])]
+
+    def suppressed(self, active_keys: set[str]) -> dict[str, str]:
+        """Each alarm suppressed while ``active_keys`` are active -> the reason, naming the active alarm.
+
+        An active alarm may itself be suppressed (a stale tag while its source is lost); its own
+        targets stay suppressed. An alarm suppressed by several gets the reason of the earliest rule.
+        """
+        hits = sorted(e for k in active_keys for e in self._by_key.get(k, ()))
+        out: dict[str, str] = {}
+        for _, target, reason in hits:
+            out.setdefault(target, reason)
+        return out
