@@ -39,8 +39,10 @@ actions topic only to the operators' panels (mosquitto: ``acl_file`` with ``topi
 those users alone), and reading the result topic to them; ``user`` names who acted, it does not prove it.
 
 **Stale actions.** The listener's session starts clean and retained messages are not delivered to it (MQTT v5
-Retain Handling 2; a retained message is refused in any case): an action published while spanwatch was away is
-not carried out hours later (MQTT Version 5.0 OASIS Standard, 3.8.3.1 Subscription Options; from memory).
+Retain Handling 2); a message published retained is refused in any case (MQTT v5 Retain As Published keeps its
+flag; with 3.1.1 only the flag of a retained message delivered on subscribing tells): an action published while
+spanwatch was away is not carried out hours later (MQTT Version 5.0 OASIS Standard, 3.8.3.1 Subscription
+Options; from memory).
 
 **Threads.** ``on_action`` runs on paho's network thread unless ``loop`` is given, when it is called on that
 asyncio event loop (``call_soon_threadsafe``); it must not block. :meth:`reply` may be called from any thread.
@@ -311,8 +313,9 @@ class MqttActionListener:
             self.state = "reconnecting"
             log.error("mqtt action listener: %s", self.last_error)
             return
-        if self.settings.protocol == "5":  # no retained actions, no echo of our own results
-            client.subscribe(self.topic, options=SubscribeOptions(qos=1, noLocal=True, retainHandling=2))
+        if self.settings.protocol == "5":  # no retained actions on subscribing; the retain flag kept to refuse them
+            client.subscribe(self.topic, options=SubscribeOptions(qos=1, noLocal=True, retainAsPublished=True,
+                                                                  retainHandling=2))
         else:
             client.subscribe(self.topic, qos=1)
 
