@@ -43,7 +43,11 @@ __all__ = ["MqttAlarmPublisher", "transition_message"]
 
 
 class MqttAlarmPublisher:
-    """Publishes alarm transitions (QoS 1) and the retained list of active alarms to the broker.
+    """Publishes alarm messages (QoS 1) and the retained list of alarms to the broker.
+
+    :meth:`publish` sends the condition engine's transitions and the alarms whose condition is active;
+    :meth:`publish_lifecycle` the lifecycle's events (raises and clears with their transitions, operators'
+    actions, shelve expiry, suppression) and every alarm that is not normal. Use one or the other for a line.
 
     Its own paho client (client id ``<client_id>-alarms``, so it never takes over the
     connector's session) with paho's network thread and paho's own reconnection (capped
