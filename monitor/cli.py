@@ -518,6 +518,24 @@ def kpi_cmd(
         typer.echo(kpi_text(k, width=min(console.width, 80)))
 
 
+@app.command("alarm-list")
+def alarm_list_cmd(
+    config: Annotated[Path, typer.Option("--config", help="Line configuration (TOML).")],
+    fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
+    check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
+) -> None:
+    """Print the master alarm database: every alarm point with its settings and rationalization."""
+    from spanwatch.monitor.alarmlist import render
+    from spanwatch.monitor.checkset import alarm_points, build_checks
+    from spanwatch.rules.catalog import CHECK_KINDS
+
+    _one_of(fmt, ("table", "csv", "json"), "--format")
+    _one_of(check, sorted(CHECK_KINDS), "--check")
+    line = open_line(config)
+    points = [p for p in alarm_points(line, build_checks(line)) if check is None or p.kind == check]
+    typer.echo(render(points, fmt, title=f"{line.config.line.name}: master alarm list ({config})"), nl=False)
+
+
 @app.command("demo")
 def demo_cmd(
     scenario: Annotated[Path | None, typer.Option(help="Scenario file, or the name of a shipped one such as "

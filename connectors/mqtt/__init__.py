@@ -13,7 +13,9 @@ Modules, each named for what it holds:
 * ``queue``: the bounded queue between the network thread and the event loop;
 * ``client``: the one place a paho client is made and connected, and the network thread;
 * ``source``: :class:`MqttConnector`, the live source (connection, subscriptions, delivery);
-* ``publisher``: :class:`MqttAlarmPublisher`, alarms back to the broker.
+* ``messages``: the JSON alarm messages and alarm list (their schema and version), pure functions;
+* ``publisher``: :class:`MqttAlarmPublisher`, alarms and their lifecycle back to the broker;
+* ``actions``: :class:`MqttActionListener`, operators' actions (acknowledge, shelve ...) from the broker.
 """
 
 from __future__ import annotations
@@ -22,11 +24,13 @@ import importlib
 from typing import Any
 
 _WHERE = {
+    "ActionMessage": "actions",
+    "MqttActionListener": "actions",
     "MqttConnectionError": "client",
     "MalformedPayload": "payload",
     "PayloadDecoder": "payload",
     "MqttAlarmPublisher": "publisher",
-    "transition_message": "publisher",
+    "transition_message": "messages",
     "SampleQueue": "queue",
     "MqttSettings": "settings",
     "TopicRule": "settings",
@@ -45,7 +49,9 @@ def __getattr__(name: str) -> Any:
 
 
 __all__ = [
+    "ActionMessage",
     "MalformedPayload",
+    "MqttActionListener",
     "MqttAlarmPublisher",
     "MqttConnectionError",
     "MqttConnector",

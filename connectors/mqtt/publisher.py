@@ -1,8 +1,17 @@
-"""Alarms back to the broker: :class:`MqttAlarmPublisher` publishes alarm transitions and the list of active alarms.
+"""Alarms back to the broker: :class:`MqttAlarmPublisher` publishes alarm messages and the retained list of alarms.
 
-Messages are JSON (:func:`transition_message`, :meth:`MqttAlarmPublisher.active_message`),
-marked ``advisory``; the publisher works on the core alarm types
-(:class:`~spanwatch.rules.alarms.Transition`, :class:`~spanwatch.rules.alarms.AlarmPoint`).
+Messages are JSON, marked ``advisory``, built by :mod:`spanwatch.connectors.mqtt.messages` (whose docstring is
+the payload's schema, with its version). Two ways to feed the publisher:
+
+* :meth:`MqttAlarmPublisher.publish` (transitions, active points): the condition engine's raises and clears and
+  the list of alarms whose condition is active, without lifecycle states;
+* :meth:`MqttAlarmPublisher.publish_lifecycle` (lifecycle events, points, records, transitions): every raise,
+  clear and operator or system action of the ISA-18.2 lifecycle (:mod:`spanwatch.rules.lifecycle`) with the
+  states before and after, and the list of every alarm that is not normal.
+
+The publisher works on the core types (:class:`~spanwatch.rules.alarms.Transition`,
+:class:`~spanwatch.rules.alarms.AlarmPoint`, :class:`~spanwatch.rules.lifecycle.LifecycleEvent`,
+:class:`~spanwatch.rules.lifecycle.Record`).
 """
 
 from __future__ import annotations
@@ -10,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import json
 import time
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import paho.mqtt.client as mqtt
@@ -17,30 +27,27 @@ from paho.mqtt.enums import MQTTErrorCode
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from spanwatch.connectors.mqtt.client import FIRST_ONLY, describe, log, new_client, refusal
+from spanwatch.connectors.mqtt.messages import (
+    CONDITION_EVENTS,
+    alarm_message,
+    list_message,
+    list_row,
+    transition_message,
+)
 from spanwatch.connectors.mqtt.settings import MqttSettings
 from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.rules.alarms import AlarmPoint, Transition
-from spanwatch.rules.base import state_name
-from spanwatch.rules.values import finite_or_none, iso
+from spanwatch.rules.lifecycle import Action, AlarmState, LifecycleEvent, Record
 
-
-def transition_message(tr: Transition, line: str = "") -> dict[str, Any]:
-    """The JSON object published for one alarm transition (non-finite numbers become null)."""
-    p = tr.point
-    msg: dict[str, Any] = {
-        "time": iso(tr.t), "event": tr.event, "check": p.kind, "object": p.object_id, "level": p.level,
-        "priority": p.priority, "value": finite_or_none(tr.value), "limit": finite_or_none(p.limit), "unit": p.unit,
-        "line_state": state_name(tr.line_state), "key": p.key, "advisory": True,
-    }
-    if tr.event == "clear":
-        msg["peak"] = finite_or_none(tr.peak)
-    if line:
-        msg["line"] = line
-    return msg
+__all__ = ["MqttAlarmPublisher", "transition_message"]
 
 
 class MqttAlarmPublisher:
-    """Publishes alarm transitions (QoS 1) and the retained list of active alarms to the broker.
+    """Publishes alarm messages (QoS 1) and the retained list of alarms to the broker.
+
+    :meth:`publish` sends the condition engine's transitions and the alarms whose condition is active;
+    :meth:`publish_lifecycle` the lifecycle's events (raises and clears with their transitions, operators'
+    actions, shelve expiry, suppression) and every alarm that is not normal. Use one or the other for a line.
 
     Its own paho client (client id ``<client_id>-alarms``, so it never takes over the
     connector's session) with paho's network thread and paho's own reconnection (capped
@@ -63,7 +70,8 @@ class MqttAlarmPublisher:
         self.sent = 0  # messages handed to paho (written by the caller's thread only)
         self.acked = 0  # PUBACKs received (written by paho's thread only)
         self.refused = 0  # messages paho could not queue or the broker refused
-        self._raised: dict[str, tuple[float, float]] = {}  # alarm key -> (raise time, value)
+        self.unknown = 0  # lifecycle events of keys the publisher was given no point for
+        self._episode: dict[str, dict[str, float]] = {}  # alarm key -> raised, value, cleared, peak (epoch s, value)
         self._client: mqtt.Client | None = None
         self._stopping = False
         self._secrets: tuple[str | None, ...] = (settings.password,)
@@ -96,17 +104,65 @@ class MqttAlarmPublisher:
         self._publish_active(active or [])
 
     def publish(self, transitions: list[Transition], active: list[AlarmPoint]) -> None:
-        """Queue one message per transition and, if anything changed, the retained active list."""
+        """Queue one message per transition and, if anything changed, the retained list of active alarms."""
         if self._client is None or not transitions:
             return
         for tr in transitions:
-            if tr.event == "raise":
-                self._raised[tr.point.key] = (tr.t, tr.value)
-            else:
-                self._raised.pop(tr.point.key, None)
+            self._track(tr.key, tr.event, tr.t, tr)
             if self.settings.alarm_topic:
                 self._send(self.settings.alarm_topic, transition_message(tr, self.line), retain=False)
         self._publish_active(active)
+
+    def publish_lifecycle(self, events: Sequence[LifecycleEvent], points: Mapping[str, AlarmPoint],
+                          records: Mapping[str, Record], transitions: Sequence[Transition] = ()) -> None:
+        """Queue one message per lifecycle event and, if anything changed, the retained list of alarms not normal.
+
+        ``events``: what :class:`~spanwatch.rules.lifecycle.Lifecycle` returned (raises, clears, operator and
+        system actions), in order; ``points``: alarm key -> point; ``records``: the lifecycle's records after
+        the events. ``transitions``: the condition engine's raises and clears behind the raise and clear events,
+        matched by key and event in order, for their value, peak, line state and first-out / chattering flags; a
+        transition no event matches is published on its own (its key has no lifecycle). Events of keys not in
+        ``points`` are skipped (counted in ``unknown``).
+        """
+        if self._client is None or not (events or transitions):
+            return
+        pending: dict[tuple[str, str], list[Transition]] = {}
+        for tr in transitions:
+            pending.setdefault((tr.key, tr.event), []).append(tr)
+        out: list[tuple[float, dict[str, Any]]] = []
+        for ev in events:
+            p = points.get(ev.key)
+            if p is None:
+                self.unknown += 1
+                continue
+            tr = None
+            if ev.action in CONDITION_EVENTS:
+                queue = pending.get((ev.key, ev.action.value))
+                tr = queue.pop(0) if queue else None
+                self._track(ev.key, ev.action.value, ev.t, tr)
+            out.append((ev.t, alarm_message(p, t=ev.t, event=ev.action.value, tr=tr, ev=ev, line=self.line)))
+        for left in pending.values():
+            for tr in left:
+                self._track(tr.key, tr.event, tr.t, tr)
+                out.append((tr.t, transition_message(tr, self.line)))
+        if self.settings.alarm_topic:
+            for _t, msg in sorted(out, key=lambda x: x[0]):
+                self._send(self.settings.alarm_topic, msg, retain=False)
+        self.publish_list(points, records)
+
+    def publish_list(self, points: Mapping[str, AlarmPoint], records: Mapping[str, Record]) -> None:
+        """Queue the retained list of every alarm whose lifecycle state is not normal (after a restart, say)."""
+        if self.settings.active_topic:
+            self._send(self.settings.active_topic, self.lifecycle_list_message(points, records), retain=True)
+
+    def _track(self, key: str, event: str, t: float, tr: Transition | None) -> None:
+        """Keep the raise time and value, and the clear time and peak, of each alarm's latest episode."""
+        if event == Action.RAISE:
+            self._episode[key] = {"raised": t, "value": tr.value if tr is not None else float("nan")}
+        elif event == Action.CLEAR:
+            ep = self._episode.setdefault(key, {})
+            ep["cleared"] = t
+            ep["peak"] = tr.peak if tr is not None else float("nan")
 
     def stop(self, timeout: float = 2.0) -> None:
         """Wait up to ``timeout`` s for outstanding PUBACKs, then disconnect and join paho's thread."""
@@ -127,18 +183,20 @@ class MqttAlarmPublisher:
         self.state = "stopped"
 
     def active_message(self, active: list[AlarmPoint]) -> dict[str, Any]:
-        """The retained JSON object listing the active alarms."""
+        """The retained JSON object listing the alarms whose condition is active (no lifecycle states)."""
+        rows = [list_row(p, None, self._episode.get(p.key)) for p in active]
+        return list_message(rows, time.time(), self.line)
+
+    def lifecycle_list_message(self, points: Mapping[str, AlarmPoint], records: Mapping[str, Record]) -> dict[str, Any]:
+        """The retained JSON object listing every alarm of ``points`` whose lifecycle state is not normal."""
         rows = []
-        for p in active:
-            raised = self._raised.get(p.key)
-            rows.append({"key": p.key, "check": p.kind, "object": p.object_id, "level": p.level,
-                         "priority": p.priority, "limit": finite_or_none(p.limit), "unit": p.unit,
-                         "raised": iso(raised[0]) if raised else None,
-                         "value": finite_or_none(raised[1]) if raised else None})
-        msg: dict[str, Any] = {"time": iso(time.time()), "count": len(rows), "active": rows, "advisory": True}
-        if self.line:
-            msg["line"] = self.line
-        return msg
+        for key, p in points.items():
+            rec = records.get(key)
+            if rec is None or rec.state == AlarmState.NORMAL:
+                self._episode.pop(key, None)  # the episode is over: acknowledged and returned to normal
+                continue
+            rows.append(list_row(p, rec, self._episode.get(key)))
+        return list_message(rows, time.time(), self.line)
 
     def _publish_active(self, active: list[AlarmPoint]) -> None:
         if self.settings.active_topic:
