@@ -242,6 +242,7 @@ class History:
         closed: dict[str, int] = {}  # alarm key -> episode id cleared in this call (opened earlier)
         completed: list[dict[str, object]] = []
         with Session(self.engine, expire_on_commit=False) as s, s.begin():
+            latest = self._latest_episodes(s, {e.key for e in events})  # before this write adds any
             for tr in trs:
                 p = tr.point
                 ev = AlarmEvent(run_id=self.run_id, t=tr.t, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
@@ -274,11 +275,10 @@ class History:
             s.flush()  # one INSERT per table (batched), then the completed episodes in one UPDATE
             if completed:
                 s.execute(update(AlarmEpisode), completed)
-            latest: dict[str, int | None] = {}
             for e in events:
                 until, one_shot = shelve_end(e.until)
                 s.add(AlarmAction(run_id=self.run_id, line_name=self.line_name,
-                                  episode_id=self._episode_at(s, e.key, e.t, seen, latest), alarm_key=e.key,
+                                  episode_id=self._episode_at(e.key, e.t, seen, latest), alarm_key=e.key,
                                   t=e.t, action=e.action, origin=Origin(e.origin), user=e.user, comment=e.comment,
                                   state_before=e.before, state_after=e.after, until=until, one_shot=one_shot,
                                   request_id=e.request))
@@ -298,22 +298,26 @@ class History:
             self._raised[(ep.alarm_key, ep.raised_t)] = ep.id
             self._latest[ep.alarm_key] = ep.id
 
-    def _episode_at(self, s: Session, key: str, t: float, seen: Mapping[str, list[tuple[float, AlarmEpisode]]],
-                    latest: dict[str, int | None]) -> int | None:
-        """The episode of ``key`` at ``t``: raised in this call at or before ``t``, else open, else the latest."""
-        here = [ep for raised_t, ep in seen.get(key, ()) if raised_t <= t]
-        if here:
-            return here[-1].id
-        if key in self._open:
-            return self._open[key]
-        if key in self._latest:
-            return self._latest[key]
-        if key not in latest:
+    def _latest_episodes(self, s: Session, keys: set[str]) -> dict[str, int]:
+        """The episode of each key the store knows open, else its latest of this line in the database (if any)."""
+        out = {k: self._open[k] for k in keys if k in self._open}
+        out.update({k: self._latest[k] for k in keys if k not in out and k in self._latest})
+        missing = sorted(keys - out.keys())
+        if missing:
             runs = select(Run.id).where(Run.line_name == self.line_name)
-            latest[key] = s.scalar(select(AlarmEpisode.id).where(AlarmEpisode.alarm_key == key,
-                                                                 AlarmEpisode.run_id.in_(runs))
-                                   .order_by(AlarmEpisode.raised_t.desc(), AlarmEpisode.id.desc()).limit(1))
-        return latest[key]
+            ranked = (select(AlarmEpisode.alarm_key, func.max(AlarmEpisode.id))
+                      .where(AlarmEpisode.alarm_key.in_(missing), AlarmEpisode.run_id.in_(runs))
+                      .group_by(AlarmEpisode.alarm_key))
+            out.update({k: int(i) for k, i in s.execute(ranked).all()})
+        return out
+
+    @staticmethod
+    def _episode_at(key: str, t: float, seen: Mapping[str, list[tuple[float, AlarmEpisode]]],
+                    latest: Mapping[str, int]) -> int | None:
+        """The episode of ``key`` at ``t``: raised in this write at or before ``t``, else the one open or latest
+        before this write."""
+        here = [ep for raised_t, ep in seen.get(key, ()) if raised_t <= t]
+        return here[-1].id if here else latest.get(key)
 
     def _put_states(self, s: Session, recs: Mapping[str, Record], changed: Mapping[str, float]) -> None:
         """Upsert the lifecycle records of this run's line: read the rows there are, update them, add the others.
