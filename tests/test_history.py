@@ -511,8 +511,8 @@ def test_closed_sets_refuse_an_unknown_value(db_url):
     # by the ORM, before any statement: the whole transaction is refused, its valid raise with it
     with pytest.raises(RecordRefused, match="acknowledge"):
         h.record([Transition(T0, SLIP, "raise", 1.0, RUNNING), Transition(T0 + 1, SLIP, "acknowledge", 1.0, RUNNING)])
-    with pytest.raises(RecordRefused, match="urgent"):
-        h.record([Transition(T0, point("slip", "idler_3", "alarm", "urgent", 0.05), "raise", 1.0, RUNNING)])
+    with pytest.raises(RecordRefused, match="emergency"):
+        h.record([Transition(T0, point("slip", "idler_3", "alarm", "emergency", 0.05), "raise", 1.0, RUNNING)])
     with pytest.raises(RecordRefused, match="critical"):
         h.record([Transition(T0, point("slip", "idler_3", "critical", "high", 0.05), "raise", 1.0, RUNNING)])
     h.close()
@@ -523,7 +523,7 @@ def test_closed_sets_refuse_an_unknown_value(db_url):
     try:
         with engine.begin() as c:
             c.execute(INSERT_EVENT, ok)
-        for column, bad in (("level", "critical"), ("event", "acknowledge"), ("priority", "urgent")):
+        for column, bad in (("level", "critical"), ("event", "acknowledge"), ("priority", "emergency")):
             with pytest.raises(IntegrityError), engine.begin() as c:
                 c.execute(INSERT_EVENT, {**ok, column: bad})
         with pytest.raises(IntegrityError), engine.begin() as c:
@@ -531,7 +531,7 @@ def test_closed_sets_refuse_an_unknown_value(db_url):
         with pytest.raises(IntegrityError), engine.begin() as c:
             c.execute(text("insert into alarm_episodes (run_id, alarm_key, kind, object_id, level, priority, unit, "
                            "raised_t, \"limit\", line_state, config_hash) values (:run, 'k', 'slip', 'o', 'alarm', "
-                           "'urgent', 'ratio', 0, 1, 'running', 'h')"), {"run": run})
+                           "'emergency', 'ratio', 0, 1, 'running', 'h')"), {"run": run})
     finally:
         engine.dispose()
 

@@ -256,3 +256,48 @@ def test_the_writer_says_unavailable_while_the_database_is_locked(tmp_path):
     left = Spool(writer.spool.path, 1 << 16)
     assert left.count == 0  # written, and cleared
     left.close()
+
+
+def test_lifecycle_writes_wait_in_the_spool_and_are_written_in_order(tmp_path):
+    # lifecycle rows, states and answers take the same way as transitions: spooled while the database is locked,
+    # written in order when it returns (a one-shot shelve's infinite end included)
+    import math
+
+    from spanwatch.connectors.history import RequestAnswer, actions_of, make_engine
+    from spanwatch.connectors.history.requests import answer_of, submit
+    from spanwatch.rules.lifecycle import Lifecycle
+
+    url = sqlite_url(str(tmp_path / "history.db"))
+    writer = open_writer(url, line_name="Q2", timeout=0.5, lock_timeout=2.0)
+    writer.history.start_run(mode="daemon", line_name="Q2", config_file="f", config_hash="h")
+    writer.start()
+    key = point(1).key
+    req = submit(writer.history.engine, line_name="Q2", action="ack", user="operator-a", alarm_key=key, at=T0)
+    lc = Lifecycle([key])
+    locker = Locker(tmp_path / "history.db")
+    try:
+        writer.record([raise_(1)], lifecycle=[lc.condition(T0 + 1, key, "raise")], states=dict(lc.records))
+        ack = lc.act(T0 + 2, key, "ack", user="operator-a", request=req)
+        writer.record([], lifecycle=[ack], states=dict(lc.records),
+                      answers=[RequestAnswer(req, "applied", "acknowledged", T0 + 2)])
+        shelve = lc.act(T0 + 3, key, "shelve", user="operator-b", comment="trial", until=math.inf)
+        writer.record([], lifecycle=[shelve], states=dict(lc.records))
+        st = wait_for(lambda: writer.status()["spooled"] == 3 and writer.status(), 30, "the writes to be spooled")
+        assert st["state"] == UNAVAILABLE
+    finally:
+        locker.release()
+    wait_for(lambda: writer.status()["state"] == "ok", 30, "the writer to recover")
+    writer.close()
+    assert writer.lost == writer.refused == 0
+    engine = make_engine(url)
+    try:
+        assert [(a["action"], a["before"], a["after"], a["until"], a["request"]) for a in actions_of(engine)] == [
+            ("raise", "normal", "unack", None, None), ("ack", "unack", "acked", None, req),
+            ("shelve", "acked", "shelved", math.inf, None)]
+        assert answer_of(engine, req).status == "applied"
+    finally:
+        engine.dispose()
+    h = History(url)
+    assert h.load_states("Q2") == lc.records and lc.records[key].shelved_until == math.inf
+    h.close()
+    assert _events(url) == [("q2.tag1", "raise")]

@@ -11,30 +11,63 @@ committed transaction), PostgreSQL for a plant (``postgresql+psycopg://user@host
 * ``input_issues`` — per run, per tag and reason, how many samples were refused or flagged, with the
   first line numbers.
 * ``writer_locks`` — which daemon writes each line into this history, with its heartbeat.
+* ``alarm_actions`` — the lifecycle journal: every acknowledge, reset, shelve, suppression, out of service,
+  raise and clear as the lifecycle saw it, with who, why and the states before and after. Append-only.
+* ``alarm_states`` — the current lifecycle record of each alarm of a line (restored at a daemon's start).
+* ``action_requests`` — operators' requests to a running daemon, and its answers (:mod:`.requests`).
+* ``config_versions`` — the text of each configuration a line ran with (secrets removed), once per hash.
 
 Times are epoch seconds (UTC) as floats; they are shown in ISO 8601.
 
 Modules: :mod:`.models` (tables, relationships, closed sets), :mod:`.database` (engines and URLs),
 :mod:`.schema` (Alembic revisions in ``migrations/``, applied when a history opens), :mod:`.store`
-(the store, :class:`History`), :mod:`.queries` (the readers), :mod:`.errors` (every failure as one line),
-:mod:`.lock` (one writer per line), :mod:`.spool` (the store-and-forward file) and :mod:`.writer` (the
-daemon's writer thread in front of the store, with the spool).
+(the store, :class:`History`), :mod:`.queries` (the readers), :mod:`.requests` (operators' requests),
+:mod:`.errors` (every failure as one line), :mod:`.lock` (one writer per line), :mod:`.spool` (the
+store-and-forward file) and :mod:`.writer` (the daemon's writer thread in front of the store, with the spool).
 
 The schema is created and changed only by Alembic migrations, shipped in ``migrations/`` and applied
 when a history opens: revision ``0001`` creates the tables; ``0002`` adds how a run ended
 (``runs.end_state``: finished, failed, interrupted), the last write of its writer applied
 (``runs.written_seq``) and ``writer_locks``. A database from before the migrations (``create_all``, no
-``alembic_version`` table) is converted in place to what ``0001`` creates and stamped with it. The
-ISA-18.2 alarm lifecycle (acknowledge, shelve, suppress) adds its tables through new revisions in
-``migrations/versions/``.
+``alembic_version`` table) is converted in place to what ``0001`` creates and stamped with it. ``0003``
+adds the ISA-18.2 alarm lifecycle: the rationalization and flags on episodes, five priorities, and the tables
+``alarm_actions``, ``alarm_states``, ``action_requests``, ``config_versions``.
 """
 
 from spanwatch.connectors.history.database import make_engine, sqlite_url
 from spanwatch.connectors.history.errors import HistoryError, HistoryUnavailable, WriterLockBusy
-from spanwatch.connectors.history.queries import episodes_in_window, latest_run, open_reader, query_episodes
+from spanwatch.connectors.history.queries import (
+    actions_of,
+    config_at,
+    episode_detail,
+    episodes_in_window,
+    latest_run,
+    open_reader,
+    prune_context,
+    query_episodes,
+)
 from spanwatch.connectors.history.schema import SchemaError, upgrade
-from spanwatch.connectors.history.store import Context, History, HistorySink, OpenEpisode
+from spanwatch.connectors.history.store import Context, History, HistorySink, OpenEpisode, RequestAnswer
 
-__all__ = ["Context", "History", "HistoryError", "HistorySink", "HistoryUnavailable", "OpenEpisode", "SchemaError",
-           "WriterLockBusy", "episodes_in_window", "latest_run", "make_engine", "open_reader", "query_episodes",
-           "sqlite_url", "upgrade"]
+__all__ = [
+    "Context",
+    "History",
+    "HistoryError",
+    "HistorySink",
+    "HistoryUnavailable",
+    "OpenEpisode",
+    "RequestAnswer",
+    "SchemaError",
+    "WriterLockBusy",
+    "actions_of",
+    "config_at",
+    "episode_detail",
+    "episodes_in_window",
+    "latest_run",
+    "make_engine",
+    "open_reader",
+    "prune_context",
+    "query_episodes",
+    "sqlite_url",
+    "upgrade",
+]

@@ -18,7 +18,8 @@ from __future__ import annotations
 
 import enum
 
-from sqlalchemy import Enum, Float, ForeignKey, Index, MetaData, Text
+from spanwatch.rules.lifecycle import Action, AlarmState
+from sqlalchemy import Enum, Float, ForeignKey, Index, MetaData, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
 # Constraint names the migrations can refer to; index names as SQLAlchemy's default (the original tables').
@@ -45,11 +46,17 @@ class Level(enum.StrEnum):
 
 
 class Priority(enum.StrEnum):
-    """ISA-18.2 alarm priority as the configuration offers it."""
+    """ISA-18.2 alarm priority as the configuration offers it, least urgent first.
 
+    ``advisory`` is journal only, never annunciated; ``low`` to ``urgent`` are annunciated (ANSI/ISA-18.2-2016
+    recommends three or four annunciated priorities; from memory).
+    """
+
+    ADVISORY = "advisory"
     LOW = "low"
     MEDIUM = "medium"
     HIGH = "high"
+    URGENT = "urgent"
 
 
 class RunMode(enum.StrEnum):
@@ -71,6 +78,21 @@ class RunEnd(enum.StrEnum):
     FINISHED = "finished"
     FAILED = "failed"
     INTERRUPTED = "interrupted"
+
+
+class Origin(enum.StrEnum):
+    """Who changed an alarm's lifecycle (``alarm_actions.origin``): an operator, or the process and the design."""
+
+    OPERATOR = "operator"
+    SYSTEM = "system"
+
+
+class RequestStatus(enum.StrEnum):
+    """Where an operator's request stands (``action_requests.status``): waiting for the daemon, or answered."""
+
+    PENDING = "pending"
+    APPLIED = "applied"
+    REFUSED = "refused"
 
 
 def closed_set(cls: type[enum.StrEnum], name: str) -> Enum:
@@ -148,11 +170,20 @@ class AlarmEpisode(Base):
     limit: Mapped[float]
     line_state: Mapped[str]
     config_hash: Mapped[str]
+    # the alarm's rationalization as configured at the raise (ISA-18.2 alarm response: cause, consequence,
+    # corrective action, time to respond in s), and the flags of its raise; NULL on episodes from before revision 0003
+    cause: Mapped[str | None]
+    consequence: Mapped[str | None]
+    corrective_action: Mapped[str | None]
+    response_time: Mapped[float | None]
+    first_out: Mapped[bool | None]
+    chattering: Mapped[bool | None]
     __table_args__ = (Index("ix_episode_open", "alarm_key", "cleared_t"),)
 
     run: Mapped[Run] = relationship(back_populates="episodes")
     events: Mapped[list[AlarmEvent]] = relationship(back_populates="episode", order_by="AlarmEvent.t")
     context: Mapped[list[AlarmContext]] = relationship(back_populates="episode", order_by="AlarmContext.id")
+    actions: Mapped[list[AlarmAction]] = relationship(back_populates="episode", order_by="AlarmAction.id")
 
 
 class AlarmContext(Base):
@@ -198,3 +229,99 @@ class WriterLock(Base):
     process: Mapped[str]  # boot id, process id namespace and process id: a writer on the same machine sees it gone
     acquired_at: Mapped[float]
     heartbeat_at: Mapped[float]
+
+
+# --- the alarm lifecycle (revision 0003) ---------------------------------------------------------------------------
+#
+# A shelve's end is a time (epoch s) or "until the alarm next clears" (one-shot, ``inf`` in
+# :class:`~spanwatch.rules.lifecycle.Record`): stored as NULL with a ``one_shot`` flag, so neither database nor a
+# JSON export ever sees an infinite float.
+
+
+class ActionRequest(Base):
+    """The inbox of a running daemon: an operator's action asked by another process, and the daemon's answer.
+
+    The target is an episode (``episode_id``, the alarm id a listing shows) or an alarm key (``alarm_key``, as
+    given: "kind:object" without a level means every level of that check on that object). ``until``: the end of a
+    shelve (epoch s), NULL with ``one_shot`` for a shelve until the alarm clears.
+    """
+
+    __tablename__ = "action_requests"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    line_name: Mapped[str]
+    requested_at: Mapped[float]
+    user: Mapped[str]
+    action: Mapped[Action] = mapped_column(closed_set(Action, "action"))
+    episode_id: Mapped[int | None]
+    alarm_key: Mapped[str | None]
+    comment: Mapped[str] = mapped_column(default="")
+    until: Mapped[float | None]
+    one_shot: Mapped[bool] = mapped_column(default=False)
+    status: Mapped[RequestStatus] = mapped_column(closed_set(RequestStatus, "status"), default=RequestStatus.PENDING)
+    answer: Mapped[str] = mapped_column(default="")
+    answered_at: Mapped[float | None]
+    __table_args__ = (Index("ix_action_requests_line_status", "line_name", "status"),)
+
+
+class AlarmAction(Base):
+    """The lifecycle journal: one row per change of an alarm's lifecycle or operator's action, append-only.
+
+    ``episode_id``: the episode of the alarm key open at that moment (or its latest); ``request_id``: the
+    operator's request it answers, when it came through the inbox.
+    """
+
+    __tablename__ = "alarm_actions"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    run_id: Mapped[int | None] = mapped_column(ForeignKey("runs.id"), index=True)
+    line_name: Mapped[str]
+    episode_id: Mapped[int | None] = mapped_column(ForeignKey("alarm_episodes.id"), index=True)
+    alarm_key: Mapped[str]
+    t: Mapped[float] = mapped_column(index=True)
+    action: Mapped[Action] = mapped_column(closed_set(Action, "action"))
+    origin: Mapped[Origin] = mapped_column(closed_set(Origin, "origin"))
+    user: Mapped[str]
+    comment: Mapped[str]
+    state_before: Mapped[AlarmState] = mapped_column(closed_set(AlarmState, "state_before"))
+    state_after: Mapped[AlarmState] = mapped_column(closed_set(AlarmState, "state_after"))
+    until: Mapped[float | None]
+    one_shot: Mapped[bool] = mapped_column(default=False)
+    request_id: Mapped[int | None] = mapped_column(ForeignKey("action_requests.id"))
+    __table_args__ = (Index("ix_alarm_actions_line_key", "line_name", "alarm_key"),)
+
+    episode: Mapped[AlarmEpisode | None] = relationship(back_populates="actions")
+
+
+class AlarmStateRow(Base):
+    """The current lifecycle record of each alarm of a line (what :class:`~spanwatch.rules.lifecycle.Record`
+    holds), upserted with every change: a daemon restores its lifecycle from it at start."""
+
+    __tablename__ = "alarm_states"
+    line_name: Mapped[str] = mapped_column(primary_key=True)
+    alarm_key: Mapped[str] = mapped_column(primary_key=True)
+    state: Mapped[AlarmState] = mapped_column(closed_set(AlarmState, "state"))
+    active: Mapped[bool]
+    acked: Mapped[bool]
+    held: Mapped[bool]
+    shelved_until: Mapped[float | None]
+    shelved_one_shot: Mapped[bool]  # shelved until the alarm clears (Record.shelved_until == inf)
+    shelved_by: Mapped[str]
+    shelve_reason: Mapped[str]
+    out_of_service: Mapped[bool]
+    oos_by: Mapped[str]
+    oos_reason: Mapped[str]
+    suppressed_by: Mapped[str]
+    updated_at: Mapped[float]
+
+
+class ConfigVersion(Base):
+    """The text of each configuration a line ran with (secrets removed by the caller), once per hash."""
+
+    __tablename__ = "config_versions"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    line_name: Mapped[str]
+    config_hash: Mapped[str]
+    config_file: Mapped[str]
+    content: Mapped[str]
+    saved_at: Mapped[float]
+    saved_by: Mapped[str]
+    __table_args__ = (UniqueConstraint("line_name", "config_hash", name="uq_config_versions_line_hash"),)

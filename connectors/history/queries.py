@@ -1,5 +1,7 @@
 """The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists), the
-episodes active during a window (what ``spanwatch kpi`` measures) and the latest run."""
+episodes active during a window (what ``spanwatch kpi`` measures), one episode in full, the lifecycle journal, the
+configuration in force at a time and the latest run; and the one deletion the history allows, of old context
+windows."""
 
 from __future__ import annotations
 
@@ -9,13 +11,23 @@ from typing import Any
 
 from spanwatch.connectors.history.database import make_engine
 from spanwatch.connectors.history.errors import HistoryError, classify
-from spanwatch.connectors.history.models import AlarmEpisode, Level, Priority, Run
+from spanwatch.connectors.history.models import (
+    AlarmAction,
+    AlarmContext,
+    AlarmEpisode,
+    AlarmEvent,
+    ConfigVersion,
+    Level,
+    Priority,
+    Run,
+)
 from spanwatch.connectors.history.schema import check_readable
+from spanwatch.connectors.history.store import shelve_end_of
 from spanwatch.rules.values import iso
-from sqlalchemy import false, or_, select
+from sqlalchemy import delete, false, func, inspect, or_, select
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import SQLAlchemyError
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, load_only
 
 READ_TIMEOUT_S = 10.0
 
@@ -56,7 +68,7 @@ def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | Non
     ``since`` is inclusive and ``until`` exclusive, on the raise time; a ``priority`` or ``level``
     outside its closed set matches nothing.
     """
-    q = select(AlarmEpisode).order_by(AlarmEpisode.raised_t, AlarmEpisode.id)
+    q = select(AlarmEpisode).options(load_only(*_BASE)).order_by(AlarmEpisode.raised_t, AlarmEpisode.id)
     if run_id is not None:
         q = q.where(AlarmEpisode.run_id == run_id)
     if kind:
@@ -74,15 +86,136 @@ def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | Non
     if active_only:
         q = q.where(AlarmEpisode.cleared_t.is_(None))
     with Session(engine) as s:
-        rows = s.scalars(q).all()
-        return [{
-            "id": e.id, "run": e.run_id, "raised": iso(e.raised_t), "cleared": iso(e.cleared_t),
-            "duration_s": None if e.cleared_t is None else round(e.cleared_t - e.raised_t, 3),
-            "check": e.kind, "object": e.object_id, "level": str(e.level), "priority": str(e.priority),
-            "value": e.raise_value, "peak": e.peak_value, "limit": e.limit, "unit": e.unit,
-            "line_state": e.line_state, "config_hash": e.config_hash, "raised_t": e.raised_t,
-            "cleared_t": e.cleared_t,
-        } for e in rows]
+        return [_episode(e) for e in s.scalars(q).all()]
+
+
+# the columns of an episode since revision 0001: a reader lists a history at an older revision as it is
+_BASE = (AlarmEpisode.id, AlarmEpisode.run_id, AlarmEpisode.alarm_key, AlarmEpisode.kind, AlarmEpisode.object_id,
+         AlarmEpisode.level, AlarmEpisode.priority, AlarmEpisode.unit, AlarmEpisode.raised_t, AlarmEpisode.cleared_t,
+         AlarmEpisode.raise_value, AlarmEpisode.peak_value, AlarmEpisode.limit, AlarmEpisode.line_state,
+         AlarmEpisode.config_hash)
+_RATIONALE = ("cause", "consequence", "corrective_action", "response_time", "first_out", "chattering")
+
+
+def _episode(e: AlarmEpisode) -> dict[str, Any]:
+    return {
+        "id": e.id, "run": e.run_id, "raised": iso(e.raised_t), "cleared": iso(e.cleared_t),
+        "duration_s": None if e.cleared_t is None else round(e.cleared_t - e.raised_t, 3),
+        "check": e.kind, "object": e.object_id, "level": str(e.level), "priority": str(e.priority),
+        "value": e.raise_value, "peak": e.peak_value, "limit": e.limit, "unit": e.unit,
+        "line_state": e.line_state, "config_hash": e.config_hash, "raised_t": e.raised_t,
+        "cleared_t": e.cleared_t,
+    }
+
+
+def _action(a: AlarmAction) -> dict[str, Any]:
+    return {"id": a.id, "run": a.run_id, "line": a.line_name, "episode": a.episode_id, "key": a.alarm_key,
+            "t": a.t, "time": iso(a.t), "action": str(a.action), "origin": str(a.origin), "user": a.user,
+            "comment": a.comment, "before": str(a.state_before), "after": str(a.state_after),
+            "until": shelve_end_of(a.until, a.one_shot), "one_shot": bool(a.one_shot), "request": a.request_id}
+
+
+def episode_detail(engine: Engine, episode_id: int) -> dict[str, Any] | None:
+    """One episode in full, or None: its row (as :func:`query_episodes`), its rationalization (``cause``,
+    ``consequence``, ``corrective_action``, ``response_time`` in s; None on episodes from before they were kept),
+    its flags (``first_out``, ``chattering``), its transitions (``events``), its lifecycle changes and operator
+    actions (``actions``, oldest first) and the names of the signals kept around its raise (``context``).
+
+    A one-shot shelve's ``until`` is ``inf`` in ``actions`` (``one_shot`` says so too). A history at a revision
+    before the lifecycle (read as it is) gives None for those and no actions.
+    """
+    with Session(engine) as s:
+        lifecycle = inspect(s.connection()).has_table("alarm_actions")
+        cols = (*_BASE, *(getattr(AlarmEpisode, c) for c in _RATIONALE)) if lifecycle else _BASE
+        e = s.scalar(select(AlarmEpisode).options(load_only(*cols)).where(AlarmEpisode.id == episode_id))
+        if e is None:
+            return None
+        out = _episode(e)
+        out.update({"key": e.alarm_key, **{c: getattr(e, c) if lifecycle else None for c in _RATIONALE}})
+        out.update({
+            "events": [{"id": ev.id, "run": ev.run_id, "t": ev.t, "time": iso(ev.t), "event": str(ev.event),
+                        "value": ev.value, "limit": ev.limit, "line_state": ev.line_state} for ev in
+                       s.scalars(select(AlarmEvent).where(AlarmEvent.episode_id == episode_id)
+                                 .order_by(AlarmEvent.t, AlarmEvent.id))],
+            "actions": [_action(a) for a in s.scalars(select(AlarmAction).where(AlarmAction.episode_id == episode_id)
+                                                      .order_by(AlarmAction.t, AlarmAction.id))] if lifecycle else [],
+            "context": list(s.scalars(select(AlarmContext.signal).where(AlarmContext.episode_id == episode_id)
+                                      .order_by(AlarmContext.id))),
+        })
+        return out
+
+
+def actions_of(engine: Engine, *, line_name: str | None = None, alarm_key: str | None = None,
+               since: float | None = None, until: float | None = None) -> list[dict[str, Any]]:
+    """The lifecycle journal (``alarm_actions``) with filters, oldest first, as plain dicts.
+
+    ``alarm_key``: a full key, or "kind:object" for every level of that check on that object; ``since``
+    inclusive, ``until`` exclusive (epoch s).
+    """
+    q = select(AlarmAction).order_by(AlarmAction.t, AlarmAction.id)
+    if line_name is not None:
+        q = q.where(AlarmAction.line_name == line_name)
+    if alarm_key:
+        q = q.where(or_(AlarmAction.alarm_key == alarm_key,
+                        AlarmAction.alarm_key.startswith(alarm_key + ":", autoescape=True)))
+    if since is not None:
+        q = q.where(AlarmAction.t >= since)
+    if until is not None:
+        q = q.where(AlarmAction.t < until)
+    with Session(engine) as s:
+        return [_action(a) for a in s.scalars(q)]
+
+
+def config_at(engine: Engine, line_name: str, t: float) -> dict[str, Any] | None:
+    """The configuration ``line_name`` ran with at ``t`` (epoch s), as saved in ``config_versions``, or None.
+
+    The run of the line covering ``t`` is the latest started at or before ``t`` that had not finished before it
+    (a run killed without a finish time covers up to the next run's start); None when no run covers ``t`` or its
+    configuration's text was not saved.
+    """
+    with Session(engine) as s:
+        run = s.execute(select(Run.id, Run.config_hash, Run.finished_at)
+                        .where(Run.line_name == line_name, Run.started_at <= t)
+                        .order_by(Run.started_at.desc(), Run.id.desc()).limit(1)).first()
+        if run is None or (run.finished_at is not None and run.finished_at < t):
+            return None
+        v = s.scalar(select(ConfigVersion).where(ConfigVersion.line_name == line_name,
+                                                 ConfigVersion.config_hash == run.config_hash))
+        if v is None:
+            return None
+        return {"id": v.id, "line": v.line_name, "config_hash": v.config_hash, "config_file": v.config_file,
+                "content": v.content, "saved_at": v.saved_at, "saved": iso(v.saved_at), "saved_by": v.saved_by,
+                "run": run.id}
+
+
+def prune_context(engine: Engine, *, older_than: float | None = None, max_rows: int | None = None) -> int:
+    """Delete context windows (``alarm_context`` only) and return how many; the journal, the lifecycle journal and
+    the episodes are never deleted.
+
+    ``older_than``: those of episodes raised before it (epoch s); ``max_rows``: then, of what is left, those of the
+    oldest episodes (by raise time) beyond the newest ``max_rows`` windows. One transaction.
+    """
+    if max_rows is not None and max_rows < 0:
+        raise ValueError(f"max_rows: expected 0 or more, got {max_rows}")
+    order = (AlarmEpisode.raised_t, AlarmEpisode.id, AlarmContext.id)
+    with Session(engine) as s, s.begin():
+        gone = 0
+        if older_than is not None:
+            old = select(AlarmEpisode.id).where(AlarmEpisode.raised_t < older_than)
+            res = s.execute(delete(AlarmContext).where(AlarmContext.episode_id.in_(old))
+                            .execution_options(synchronize_session=False))
+            gone += res.rowcount  # type: ignore[attr-defined]
+        if max_rows is not None:
+            left = int(s.scalar(select(func.count()).select_from(AlarmContext)) or 0)
+            if left > max_rows:
+                ids = list(s.scalars(select(AlarmContext.id).join(AlarmEpisode, AlarmContext.episode_id
+                                                                  == AlarmEpisode.id)
+                                     .order_by(*order).limit(left - max_rows)))
+                for i in range(0, len(ids), 500):
+                    res = s.execute(delete(AlarmContext).where(AlarmContext.id.in_(ids[i:i + 500]))
+                                    .execution_options(synchronize_session=False))
+                    gone += res.rowcount  # type: ignore[attr-defined]
+        return gone
 
 
 def episodes_in_window(engine: Engine, start: float, end: float, line_name: str | None = None

@@ -1,7 +1,8 @@
-"""The store: one run's transitions, episodes, context windows and input issues.
+"""The store: one run's transitions, episodes, context windows, input issues and alarm lifecycle.
 
-Every :meth:`History.record` is one transaction (journal rows, new episodes, completed episodes), so
-a crash or ``kill -9`` loses nothing committed and leaves nothing half-written. The store knows alarm
+Every :meth:`History.record` is one transaction (journal rows, new episodes, completed episodes, lifecycle
+changes and operator actions, the current lifecycle records, the answers to operators' requests), so a
+crash or ``kill -9`` loses nothing committed and leaves nothing half-written. The store knows alarm
 keys and episodes, not the alarm engine: carrying an alarm on across a restart is the application's
 job, with :meth:`History.open_episodes`, :meth:`History.adopt` and :meth:`History.close_episodes`.
 
@@ -18,7 +19,8 @@ from __future__ import annotations
 
 import functools
 import json
-from collections.abc import Callable, Iterable, Sequence
+import math
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import ParamSpec, Protocol, TypeVar
@@ -26,10 +28,16 @@ from typing import ParamSpec, Protocol, TypeVar
 from spanwatch.connectors.history.database import SQLITE_BUSY_TIMEOUT_S, make_engine
 from spanwatch.connectors.history.errors import HistoryError, classify
 from spanwatch.connectors.history.models import (
+    ActionRequest,
+    AlarmAction,
     AlarmContext,
     AlarmEpisode,
     AlarmEvent,
+    AlarmStateRow,
+    ConfigVersion,
     InputIssue,
+    Origin,
+    RequestStatus,
     Run,
     RunEnd,
     RunMode,
@@ -37,9 +45,10 @@ from spanwatch.connectors.history.models import (
 from spanwatch.connectors.history.schema import upgrade
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
+from spanwatch.rules.lifecycle import LifecycleEvent, Record
 from spanwatch.rules.values import finite_or_none
-from sqlalchemy import func, select, update
-from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy import and_, func, select, update
+from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 from sqlalchemy.orm import Session
 
 P = ParamSpec("P")
@@ -68,10 +77,40 @@ class OpenEpisode:
     run_id: int
 
 
+@dataclass(frozen=True)
+class RequestAnswer:
+    """The daemon's answer to an operator's request (``action_requests``): ``status`` applied or refused, and
+    ``answer``: what was done, or the refusal's message; ``answered_at``: epoch s."""
+
+    request_id: int
+    status: str
+    answer: str
+    answered_at: float
+
+
+def shelve_end(until: float | None) -> tuple[float | None, bool]:
+    """A shelve's end as stored: (time or None, one-shot). ``inf`` (until the alarm clears) is (None, True).
+
+    >>> shelve_end(float("inf")), shelve_end(1.5), shelve_end(None)
+    ((None, True), (1.5, False), (None, False))
+    """
+    if until is None or math.isnan(until):
+        return None, False
+    if until == math.inf:
+        return None, True
+    return float(until), False
+
+
+def shelve_end_of(until: float | None, one_shot: bool) -> float | None:
+    """The inverse of :func:`shelve_end`."""
+    return math.inf if one_shot else until
+
+
 class HistorySink(Protocol):
     """What the pipeline writes to: a :class:`History` (replay, demo) or a writer thread in front of one (daemon)."""
 
-    def record(self, transitions: Iterable[Transition]) -> None: ...
+    def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
+               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = ()) -> None: ...
 
     def record_contexts(self, contexts: Iterable[Context]) -> None: ...
 
@@ -122,6 +161,7 @@ class History:
         self.config_hash = ""
         self._open: dict[str, int] = {}  # alarm key -> id of its open episode (raised here or adopted)
         self._raised: dict[tuple[str, float], int] = {}  # (alarm key, raise time) -> episode id, until its context
+        self._latest: dict[str, int] = {}  # alarm key -> id of its latest episode (raised here, or read)
 
     @_said("starting a run in")
     def start_run(self, *, mode: str, line_name: str, config_file: str, config_hash: str, source: str = "",
@@ -139,7 +179,7 @@ class History:
             s.flush()
             self.run_id = run.id
         self.started_at, self.mode, self.line_name, self.config_hash = at, run_mode, line_name, config_hash
-        self._open, self._raised = {}, {}
+        self._open, self._raised, self._latest = {}, {}, {}
         return self.run_id
 
     # --- alarms an earlier run left open ---------------------------------------------------------------------------
@@ -178,17 +218,31 @@ class History:
     # --- this run --------------------------------------------------------------------------------------------------
 
     @_said("writing")
-    def record(self, transitions: Iterable[Transition], *, seq: int | None = None) -> None:
-        """Write transitions in one transaction: journal rows, new episodes, completed episodes (and ``seq``)."""
+    def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
+               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = (),
+               seq: int | None = None) -> None:
+        """Write in one transaction: journal rows, new and completed episodes, lifecycle rows, states, answers.
+
+        ``lifecycle``: the changes of alarms' lifecycles and the operators' actions (``alarm_actions``), each tied to
+        the episode of its alarm key open at that moment (raised in this call at or before its time, else the one
+        the store knows open, else the key's latest episode of this line); ``states``: the current lifecycle record
+        of each alarm key given (upserted into ``alarm_states`` for this run's line); ``answers``: the daemon's
+        answers to operators' requests. All or nothing: a refused row (a constraint) leaves none of them written.
+        """
         trs = list(transitions)
-        if not trs:
+        events = list(lifecycle)
+        recs = dict(states or {})
+        replies = list(answers)
+        if not (trs or events or recs or replies):
             return
-        assert self.run_id is not None, "start_run first"
+        assert self.run_id is not None or not trs, "start_run first"
         opened: dict[str, AlarmEpisode] = {}  # raised in this call, still open
         raised: list[AlarmEpisode] = []
+        seen: dict[str, list[tuple[float, AlarmEpisode]]] = {}  # key -> (raise time, episode) of this call
         closed: dict[str, int] = {}  # alarm key -> episode id cleared in this call (opened earlier)
         completed: list[dict[str, object]] = []
         with Session(self.engine, expire_on_commit=False) as s, s.begin():
+            latest = self._latest_episodes(s, {e.key for e in events})  # before this write adds any
             for tr in trs:
                 p = tr.point
                 ev = AlarmEvent(run_id=self.run_id, t=tr.t, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
@@ -199,10 +253,15 @@ class History:
                     ep = AlarmEpisode(run_id=self.run_id, alarm_key=p.key, kind=p.kind, object_id=p.object_id,
                                       level=p.level, priority=p.priority, unit=p.unit, raised_t=tr.t,
                                       raise_value=finite_or_none(tr.value), limit=p.limit,
-                                      line_state=ev.line_state, config_hash=self.config_hash)
+                                      line_state=ev.line_state, config_hash=self.config_hash,
+                                      cause=p.cause, consequence=p.consequence, corrective_action=p.action,
+                                      response_time=finite_or_none(p.response_time),
+                                      first_out=bool(getattr(tr, "first_out", False)),
+                                      chattering=bool(getattr(tr, "chattering", False)))
                     ev.episode = ep  # the unit of work inserts the episode first and links the event to it
                     opened[p.key] = ep
                     raised.append(ep)
+                    seen.setdefault(p.key, []).append((tr.t, ep))
                 elif tr.event == "clear":
                     if p.key in opened:
                         ep = opened.pop(p.key)
@@ -216,6 +275,20 @@ class History:
             s.flush()  # one INSERT per table (batched), then the completed episodes in one UPDATE
             if completed:
                 s.execute(update(AlarmEpisode), completed)
+            for e in events:
+                until, one_shot = shelve_end(e.until)
+                s.add(AlarmAction(run_id=self.run_id, line_name=self.line_name,
+                                  episode_id=self._episode_at(e.key, e.t, seen, latest), alarm_key=e.key,
+                                  t=e.t, action=e.action, origin=Origin(e.origin), user=e.user, comment=e.comment,
+                                  state_before=e.before, state_after=e.after, until=until, one_shot=one_shot,
+                                  request_id=e.request))
+            if recs:
+                self._put_states(s, recs, {e.key: e.t for e in events})
+            for a in replies:
+                s.execute(update(ActionRequest).where(ActionRequest.id == a.request_id)
+                          .values(status=RequestStatus(a.status), answer=a.answer, answered_at=a.answered_at)
+                          .execution_options(synchronize_session=False))
+            s.flush()
             self._mark(s, seq)
         for key in closed:  # committed: now the state follows
             del self._open[key]
@@ -223,6 +296,83 @@ class History:
             self._open[key] = ep.id
         for ep in raised:
             self._raised[(ep.alarm_key, ep.raised_t)] = ep.id
+            self._latest[ep.alarm_key] = ep.id
+
+    def _latest_episodes(self, s: Session, keys: set[str]) -> dict[str, int]:
+        """The episode of each key the store knows open, else its latest of this line in the database (if any)."""
+        out = {k: self._open[k] for k in keys if k in self._open}
+        out.update({k: self._latest[k] for k in keys if k not in out and k in self._latest})
+        missing = sorted(keys - out.keys())
+        if missing:
+            runs = select(Run.id).where(Run.line_name == self.line_name)
+            ranked = (select(AlarmEpisode.alarm_key, func.max(AlarmEpisode.id))
+                      .where(AlarmEpisode.alarm_key.in_(missing), AlarmEpisode.run_id.in_(runs))
+                      .group_by(AlarmEpisode.alarm_key))
+            out.update({k: int(i) for k, i in s.execute(ranked).all()})
+        return out
+
+    @staticmethod
+    def _episode_at(key: str, t: float, seen: Mapping[str, list[tuple[float, AlarmEpisode]]],
+                    latest: Mapping[str, int]) -> int | None:
+        """The episode of ``key`` at ``t``: raised in this write at or before ``t``, else the one open or latest
+        before this write."""
+        here = [ep for raised_t, ep in seen.get(key, ()) if raised_t <= t]
+        return here[-1].id if here else latest.get(key)
+
+    def _put_states(self, s: Session, recs: Mapping[str, Record], changed: Mapping[str, float]) -> None:
+        """Upsert the lifecycle records of this run's line: read the rows there are, update them, add the others.
+
+        Portable (no dialect's ON CONFLICT); safe because one writer per line writes its states (:mod:`.lock`).
+        ``updated_at``: the time of the key's last lifecycle event in this write, else the wall clock.
+        """
+        now = datetime.now(UTC).timestamp()
+        have = {r.alarm_key: r for r in s.scalars(select(AlarmStateRow).where(
+            AlarmStateRow.line_name == self.line_name, AlarmStateRow.alarm_key.in_(list(recs))))}
+        for key, rec in recs.items():
+            until, one_shot = shelve_end(rec.shelved_until)
+            values = {"state": rec.state, "active": rec.active, "acked": rec.acked, "held": rec.held,
+                      "shelved_until": until, "shelved_one_shot": one_shot, "shelved_by": rec.shelved_by,
+                      "shelve_reason": rec.shelve_reason, "out_of_service": rec.out_of_service, "oos_by": rec.oos_by,
+                      "oos_reason": rec.oos_reason, "suppressed_by": rec.suppressed_by,
+                      "updated_at": changed.get(key, now)}
+            row = have.get(key)
+            if row is None:
+                s.add(AlarmStateRow(line_name=self.line_name, alarm_key=key, **values))
+            else:
+                for name, value in values.items():
+                    setattr(row, name, value)
+
+    @_said("reading")
+    def load_states(self, line_name: str) -> dict[str, Record]:
+        """The lifecycle records of ``line_name`` as last written (alarm key -> record), to restore at a start."""
+        with Session(self.engine) as s:
+            rows = s.scalars(select(AlarmStateRow).where(AlarmStateRow.line_name == line_name)
+                             .order_by(AlarmStateRow.alarm_key)).all()
+            return {r.alarm_key: Record(active=r.active, acked=r.acked, held=r.held,
+                                        shelved_until=shelve_end_of(r.shelved_until, r.shelved_one_shot),
+                                        shelved_by=r.shelved_by, shelve_reason=r.shelve_reason,
+                                        out_of_service=r.out_of_service, oos_by=r.oos_by, oos_reason=r.oos_reason,
+                                        suppressed_by=r.suppressed_by) for r in rows}
+
+    @_said("writing")
+    def save_config_version(self, *, line_name: str, config_hash: str, config_file: str, content: str,
+                            saved_by: str) -> None:
+        """Keep the text of a configuration ``line_name`` runs with (``content``: secrets already removed).
+
+        Idempotent: a version already stored for this line and hash is left as it is (the first save wins, also
+        when two processes save it at once: the unique constraint refuses the second, which then finds it).
+        """
+        known = select(ConfigVersion.id).where(and_(ConfigVersion.line_name == line_name,
+                                                    ConfigVersion.config_hash == config_hash))
+        try:
+            with Session(self.engine) as s, s.begin():
+                if s.scalar(known) is None:
+                    s.add(ConfigVersion(line_name=line_name, config_hash=config_hash, config_file=config_file,
+                                        content=content, saved_at=datetime.now(UTC).timestamp(), saved_by=saved_by))
+        except IntegrityError:
+            with Session(self.engine) as s:
+                if s.scalar(known) is None:
+                    raise
 
     @_said("writing")
     def record_contexts(self, contexts: Iterable[Context], *, seq: int | None = None) -> None:
@@ -302,6 +452,7 @@ class History:
         with Session(self.engine) as s:
             self._open = {key: int(ep) for key, ep in s.execute(q).all()}
         self._raised.clear()
+        self._latest.clear()
 
     @_said("writing")
     def interrupt_dead_runs(self) -> list[int]:

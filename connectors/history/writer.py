@@ -1,7 +1,8 @@
 """The daemon's history writer: a thread that owns the store, takes writes from a queue in order, and keeps
 what the database cannot take in a spool on disk until it can.
 
-The event loop only puts transitions, context windows and the run's end into an in-memory queue
+The event loop only puts transitions (with the alarm lifecycle's changes, current records and answers to
+operators' requests), context windows and the run's end into an in-memory queue
 (:meth:`HistoryWriter.record`, :meth:`~HistoryWriter.record_contexts`, :meth:`~HistoryWriter.finish_run`:
 the :class:`~spanwatch.connectors.history.store.HistorySink` the pipeline writes to), which never blocks.
 The writer thread numbers each write and applies it to the database in one transaction that also stores
@@ -38,15 +39,16 @@ import queue
 import re
 import threading
 import time
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 from spanwatch.connectors.history.errors import HistoryError, RecordRefused, where
 from spanwatch.connectors.history.lock import LineLock, writer_lock
 from spanwatch.connectors.history.spool import Spool, SpoolBusy, SpoolFull
-from spanwatch.connectors.history.store import Context, History
+from spanwatch.connectors.history.store import Context, History, RequestAnswer
 from spanwatch.rules.alarms import AlarmPoint, Transition
+from spanwatch.rules.lifecycle import Action, AlarmState, LifecycleEvent, Record
 from sqlalchemy.engine import make_url
 
 log = logging.getLogger("spanwatch.history")
@@ -89,23 +91,62 @@ def _plain(o: object) -> object:
     raise TypeError(f"cannot store {type(o).__name__} in the spool")
 
 
+_TR_FLAGS = ("first_out", "chattering")  # flags a Transition may carry (read with getattr: older cores lack them)
+
+
+def _fields(cls: type) -> set[str]:
+    return {f.name for f in dataclasses.fields(cls)}
+
+
+def _transition(tr: Transition) -> dict[str, Any]:
+    d = {"t": tr.t, "event": tr.event, "value": tr.value, "line_state": tr.line_state, "peak": tr.peak,
+         "point": dataclasses.asdict(tr.point)}
+    d.update({f: getattr(tr, f) for f in _TR_FLAGS if hasattr(tr, f)})
+    return d
+
+
+def _of_transition(d: dict[str, Any]) -> Transition:
+    known = _fields(AlarmPoint)  # a field this core does not have is dropped; a list back to the tuple it was
+    point = AlarmPoint(**{k: tuple(v) if isinstance(v, list) else v for k, v in d["point"].items() if k in known})
+    flags = {f: d[f] for f in _TR_FLAGS if f in d and f in _fields(Transition)}
+    return Transition(d["t"], point, d["event"], d["value"], d["line_state"], d["peak"], **flags)
+
+
+def _of_event(d: dict[str, Any]) -> LifecycleEvent:
+    return LifecycleEvent(t=d["t"], key=d["key"], action=Action(d["action"]), before=AlarmState(d["before"]),
+                          after=AlarmState(d["after"]), user=d["user"], comment=d["comment"], until=d["until"],
+                          request=d["request"])
+
+
 def encode(run_id: int, seq: int, op: str, data: Any) -> bytes:
-    """One spool record: the run, the write's number, what to do (record, contexts, finish) and its data."""
+    """One spool record: the run, the write's number, what to do (record, contexts, finish) and its data.
+
+    A record's data is ``{"transitions", "lifecycle", "states", "answers"}`` (a bare list: transitions only). JSON
+    as Python writes it: a non-finite float (a NaN peak, an ``inf`` one-shot shelve) is ``NaN``/``Infinity``,
+    which :func:`decode` reads back as it was.
+    """
     if op == "record":
-        data = [{"t": tr.t, "event": tr.event, "value": tr.value, "line_state": tr.line_state, "peak": tr.peak,
-                 "point": dataclasses.asdict(tr.point)} for tr in data]
+        rec = data if isinstance(data, dict) else {"transitions": data}
+        data = {"transitions": [_transition(tr) for tr in rec.get("transitions", ())],
+                "lifecycle": [dataclasses.asdict(e) for e in rec.get("lifecycle", ())],
+                "states": {k: dataclasses.asdict(r) for k, r in (rec.get("states") or {}).items()},
+                "answers": [dataclasses.asdict(a) for a in rec.get("answers", ())]}
     elif op == "contexts":
         data = [dataclasses.asdict(c) for c in data]
     return json.dumps({"run": run_id, "seq": seq, "op": op, "data": data}, default=_plain).encode()
 
 
 def decode(payload: bytes) -> tuple[int, int, str, Any]:
-    """The inverse of :func:`encode`."""
+    """The inverse of :func:`encode` (a record's data always as the dict; a spool of an older version read too)."""
     rec = json.loads(payload)
     op, data = rec["op"], rec["data"]
     if op == "record":
-        data = [Transition(d["t"], AlarmPoint(**d["point"]), d["event"], d["value"], d["line_state"], d["peak"])
-                for d in data]
+        if isinstance(data, list):  # written before the lifecycle: transitions only
+            data = {"transitions": data}
+        data = {"transitions": [_of_transition(d) for d in data.get("transitions", [])],
+                "lifecycle": [_of_event(d) for d in data.get("lifecycle", [])],
+                "states": {k: Record(**r) for k, r in data.get("states", {}).items()},
+                "answers": [RequestAnswer(**a) for a in data.get("answers", [])]}
     elif op == "contexts":
         data = [Context(**d) for d in data]
     return int(rec["run"]), int(rec["seq"]), op, data
@@ -113,7 +154,9 @@ def decode(payload: bytes) -> tuple[int, int, str, Any]:
 
 def _apply(history: History, op: str, data: Any, seq: int) -> None:
     if op == "record":
-        history.record(data, seq=seq)
+        rec = data if isinstance(data, dict) else {"transitions": data}
+        history.record(rec.get("transitions", ()), lifecycle=rec.get("lifecycle", ()), states=rec.get("states"),
+                       answers=rec.get("answers", ()), seq=seq)
     elif op == "contexts":
         history.record_contexts(data, seq=seq)
     elif op == "finish":
@@ -123,6 +166,8 @@ def _apply(history: History, op: str, data: Any, seq: int) -> None:
 
 
 def _count(op: str, data: Any) -> int:
+    if op == "record" and isinstance(data, dict):
+        return sum(len(data.get(k) or ()) for k in ("transitions", "lifecycle", "states", "answers"))
     return len(data) if op in ("record", "contexts") else 1
 
 
@@ -155,10 +200,13 @@ class HistoryWriter:
 
     # --- the event loop's side: never blocks --------------------------------------------------------------------------
 
-    def record(self, transitions: Iterable[Transition]) -> None:
-        trs = list(transitions)
-        if trs:
-            self._put(("record", trs))
+    def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
+               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = ()) -> None:
+        """Queue what :meth:`History.record` writes in one transaction (written, or spooled, in order)."""
+        rec = {"transitions": list(transitions), "lifecycle": list(lifecycle), "states": dict(states or {}),
+               "answers": list(answers)}
+        if any(rec.values()):
+            self._put(("record", rec))
 
     def record_contexts(self, contexts: Iterable[Context]) -> None:
         cs = list(contexts)
