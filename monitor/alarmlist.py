@@ -104,18 +104,17 @@ def table(points: Sequence[AlarmPoint], title: str = "") -> list[str]:
         units = sorted({p.unit for p in pts})
         dirs = sorted({DIRECTION_TEXT.get(p.direction, p.direction) for p in pts})
         out += _wrap("", f"== {kind} ({len(pts)}): unit {', '.join(units)}; abnormal at {' or '.join(dirs)}", "")
-        head = _row_line("object", "level", "priority", "limit", "deadband", "on s", "off s",
-                         "".join(f" {n}" for n in extra))
+        head = _row_line("object", "level", "priority", "limit", "deadband", "on s", "off s", "")
         out.append(head)
         for p in pts:
             obj = p.object_id
             if len(obj) > _OBJ:
                 out += _wrap("", obj, "  ")
                 obj = ""
-            more = "".join(f" {'yes' if v is True else 'no' if v is False else '-' if v is None else v}"
-                           for v in (getattr(p, n, None) for n in extra if n != "groups"))
             out.append(_row_line(obj, p.level, p.priority, number(p.limit, p.unit), number(p.deadband, p.unit),
-                                 f"{p.on_delay:g}", f"{p.off_delay:g}", more))
+                                 f"{p.on_delay:g}", f"{p.off_delay:g}", ""))
+            if "latched" in extra and getattr(p, "latched", False):  # a line of its own: the row has no room
+                out.append("    latched: stays annunciated after the return to normal until reset")
             if "groups" in extra and _extra(p, "groups"):
                 out += _wrap("groups: ", str(_extra(p, "groups")), "    ")
         texts: dict[tuple[str, str, str, float], list[AlarmPoint]] = {}

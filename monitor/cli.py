@@ -405,6 +405,9 @@ def replay_cmd(
 
 @app.command("alarms")
 def alarms_cmd(
+    what: Annotated[list[str] | None, typer.Argument(help="show ID: one alarm in full (rationalization, "
+                                                          "transitions, operator actions).", show_default=False)]
+    = None,
     db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
     db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
     run: Annotated[int | None, typer.Option(help="Only this run (default: all runs).")] = None,
@@ -419,14 +422,21 @@ def alarms_cmd(
     fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
     db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
 ) -> None:
-    """List alarms from a history database, with filters."""
+    """List alarms from a history database, with filters; or show one: spanwatch alarms show ID."""
     import csv
     import json
     from datetime import datetime
 
+    if what:
+        if len(what) != 2 or what[0] != "show" or not what[1].isdigit():
+            fail(f"expected nothing, or show ID (an alarm id as the list gives it), got {' '.join(what)!r}")
+        _show_alarm(int(what[1]), db, db_password, fmt, db_timeout)
+        return
+
     from rich.table import Table
     from spanwatch.connectors.history import query_episodes
     from spanwatch.connectors.history.models import Level
+    from spanwatch.connectors.history.queries import episode_extras
     from spanwatch.monitor.present import fmt_value
     from spanwatch.monitor.schema import PRIORITIES
     from spanwatch.rules.catalog import CHECK_KINDS
@@ -455,9 +465,14 @@ def alarms_cmd(
     with history_errors(url, db_timeout):
         rows = query_episodes(engine, run_id=run, kind=check, object_id=obj, priority=priority, level=level,
                               since=since_t, until=until_t, active_only=active)
+        extras = episode_extras(engine, [int(r["id"]) for r in rows]) if fmt != "table" else {}
     engine.dispose()
-    cols = ["raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
-            "unit", "line_state", "run", "config_hash"]
+    cols = ["id", "raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
+            "unit", "line_state", "run", "config_hash", "state", "first_out", "chattering", "cause", "consequence",
+            "corrective_action", "response_time"]
+    for r in rows:
+        r.update(extras.get(int(r["id"]), dict.fromkeys(("state", "first_out", "chattering", "cause", "consequence",
+                                                          "corrective_action", "response_time"))))
     if fmt == "json":
         typer.echo(json.dumps([{c: r[c] for c in cols} for r in rows], indent=1))
     elif fmt == "csv":
@@ -534,6 +549,71 @@ def alarm_list_cmd(
     line = open_line(config)
     points = [p for p in alarm_points(line, build_checks(line)) if check is None or p.kind == check]
     typer.echo(render(points, fmt, title=f"{line.config.line.name}: master alarm list ({config})"), nl=False)
+
+
+def _show_alarm(episode_id: int, db: str, db_password: str | None, fmt: str, db_timeout: float) -> None:
+    """``spanwatch alarms show ID``: one alarm with its rationalization, transitions and actions (80 columns)."""
+    import json
+    import textwrap
+
+    from spanwatch.connectors.history import episode_detail
+    from spanwatch.monitor.present import fmt_value
+
+    _one_of(fmt, ("table", "json"), "--format")
+    url, _shown = _history_url(db, db_password, reading=True)
+    engine = open_history_reader(url, db_timeout)
+    with history_errors(url, db_timeout):
+        d = episode_detail(engine, episode_id)
+    engine.dispose()
+    if d is None:
+        fail(f"alarm {episode_id} is not in this history (spanwatch alarms lists the ids)")
+    if fmt == "json":
+        typer.echo(json.dumps(d, indent=1, default=str))
+        return
+    unit = str(d["unit"])
+    out = [f"alarm {d['id']}: {d['check']} {d['object']} {d['level']} ({d['priority']} priority)",
+           f"  raised   {d['raised']}  value {fmt_value(d['value'], unit)}",
+           f"  cleared  {d['cleared'] or 'active'}" + (f"  peak {fmt_value(d['peak'], unit)}" if d["cleared"] else ""),
+           f"  limit    {d['limit']:g} ({unit}); line state {d['line_state']}; run {d['run']}; "
+           f"config {str(d['config_hash'])[:12]}"]
+    flags = [name for name in ("first_out", "chattering") if d.get(name)]
+    if flags:
+        out.append("  marked   " + ", ".join(f.replace("_", "-") for f in flags))
+    for label, key in (("cause", "cause"), ("if ignored", "consequence"), ("do", "corrective_action")):
+        if d.get(key):
+            out += textwrap.wrap(str(d[key]), 78, initial_indent=f"  {label + ':':12}", subsequent_indent=" " * 14)
+    if d.get("response_time") is not None:
+        out.append(f"  {'respond in':12}{d['response_time']:g} s")
+    if d["events"]:
+        out.append("transitions")
+        out += [f"  {_short(e['time'])} {e['event']:5} {fmt_value(e['value'], unit)} [{e['line_state']}]"
+                for e in d["events"]]
+    if d["actions"]:
+        out.append("lifecycle and operator actions")
+        for a in d["actions"]:
+            who = f" by {a['user']}" if a["user"] else ""
+            out.append(f"  {_short(a['time'])} {a['action'].replace('_', ' ')}{who}: {a['before']} -> {a['after']}")
+            if a["until"] is not None:
+                out.append("      until " + ("it clears" if a["one_shot"] else iso_or(a["until"])))
+            if a["comment"]:
+                out += textwrap.wrap(str(a["comment"]), 78, initial_indent="      ", subsequent_indent="      ")
+    if d["context"]:
+        out += textwrap.wrap("signals kept around the raise: " + ", ".join(d["context"]), 78,
+                             subsequent_indent="  ")
+    typer.echo("\n".join(out))
+
+
+def _short(iso_time: str | None) -> str:
+    """An ISO 8601 time without its milliseconds (the detail view's lines fit 80 columns)."""
+    import re
+
+    return re.sub(r"\.\d+(?=[+-Z])", "", iso_time or "-")
+
+
+def iso_or(t: float) -> str:
+    from spanwatch.rules.values import iso
+
+    return iso(t) or "-"
 
 
 @app.command("demo")
@@ -760,3 +840,7 @@ def main() -> None:
 
 if __name__ == "__main__":
     main()
+
+
+# the operator's commands (ack, shelve, ...) register themselves on the app
+from spanwatch.monitor import cli_operator  # noqa: E402, F401

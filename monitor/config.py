@@ -322,9 +322,12 @@ class AlarmsSection(Strict):
     first_out: dict[Ident, list[AlarmPattern]] = Field(
         default_factory=dict, description="first-out groups: name -> alarm patterns of its members")
     suppress: list[SuppressRule] = Field(default_factory=list)
-
-
-
+    # how often the daemon reads the operators' requests from the history (spanwatch ack, shelve, ...)
+    actions_poll: Annotated[float, between(U.TIME, 0.05, 10.0, low_included=True)] = 0.25
+    # alarm context windows (the signals around each raise) kept this long and at most this many; the
+    # transitions, episodes and actions are never pruned
+    context_keep: Annotated[float, between(U.TIME, 0.0, 100 * 365 * 86400.0)] = 365 * 86400.0
+    context_max_rows: Annotated[int, int_between(1000, 10**9, "a number of context windows")] = 1_000_000
 
 
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import gc
 import json
 import logging
@@ -27,20 +28,23 @@ import signal
 import time
 from collections import deque
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
+from spanwatch.connectors.history.store import RequestAnswer
 from spanwatch.connectors.history.writer import open_writer
 from spanwatch.connectors.live import LiveConnector
-from spanwatch.monitor.daemonlog import SourceWatch, log_start, log_stop, log_transition
+from spanwatch.monitor.daemonlog import SourceWatch, log_lifecycle, log_start, log_stop, log_transition
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.metrics import DaemonCollector
+from spanwatch.monitor.operate import ActionInbox, Outcome, Pending, carry_out
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.sources import build_connectors
 from spanwatch.rules.alarms import AlarmEngine, Transition
+from spanwatch.rules.lifecycle import Lifecycle, LifecycleEvent, Record
 from spanwatch.rules.samples import SampleBatch
 
 log = logging.getLogger("spanwatch.daemon")
@@ -97,6 +101,12 @@ class Daemon:
             if lost_after is not None:
                 self.pipe.clocks.lost_after = lost_after
             restored = carry_on_open_alarms(self.history, self.pipe.engine)
+            self.pipe.keep_states = True
+            restore_lifecycle(self.pipe.lifecycle, self.history.load_states(line.name), self.pipe.engine)
+            self.history.save_config_version(line_name=line.name, config_hash=line.config_hash,
+                                             config_file=line.file, content=redacted_config(line.file),
+                                             saved_by=_login())
+            self.actions = ActionInbox(history_url, line.name, timeout=d.history_timeout)
         except BaseException:
             self.writer.close()  # releases the writer lock: a failed start does not block the next one
             raise
@@ -116,6 +126,9 @@ class Daemon:
         self.http_port: int | None = None
         self.mode = mode
         self.stop_reason = "stop requested"
+        self.requests: list[Pending] = []  # operators' requests read from the inbox, for the next tick
+        self.pipe.on_lifecycle = self._lifecycle_out
+        self.on_lifecycle: Callable[[list[LifecycleEvent]], None] | None = None  # the demo prints them
 
     def _publishers(self) -> list:  # type: ignore[type-arg]
         pubs = []
@@ -157,12 +170,16 @@ class Daemon:
                 await asyncio.to_thread(self.writer.close)
                 raise
         for p in self.publishers:
-            p.start(active=self.pipe.engine.active())  # the retained list starts with what a restart carried on
+            p.start()
+            p.publish_list(self.pipe.point_of, self.pipe.lifecycle.records)  # what a restart carried on
+        listeners = self._action_listeners(asyncio.get_running_loop())
         tasks = [asyncio.create_task(c.run(), name=f"connector {c.name}") for c in self.connectors]
         started = time.monotonic()
         if self.mode == "daemon":
             log_start(self)
         watch = asyncio.create_task(self._watch_sources(), name="source watch")
+        inbox = asyncio.create_task(self._poll_actions(), name="operator actions")
+        prune = asyncio.create_task(self._prune_context(), name="context retention")
         gc.freeze()  # long-lived objects of the start-up out of the collector's way: shorter GC pauses
         try:
             while not self.stopping.is_set():
@@ -175,6 +192,8 @@ class Daemon:
             raise
         finally:
             watch.cancel()
+            inbox.cancel()
+            prune.cancel()
             for c in self.connectors:
                 await c.stop()
             for t in tasks:
@@ -184,9 +203,12 @@ class Daemon:
             self.pipe.finish_history()
             for p in self.publishers:
                 p.stop()
+            for listener in listeners:
+                listener.stop()
             if self._http is not None:
                 await self._http.close()
             await asyncio.to_thread(self.writer.close)  # writes what is queued (or spools it); off the event loop
+            self.actions.close()
             if self.mode == "daemon":
                 log_stop(self, self.stop_reason, time.monotonic() - started)
 
@@ -223,26 +245,112 @@ class Daemon:
         self.stats.last_tick_wall = time.time()
         for tr in trs:
             self.stats.transitions[tr.event] = self.stats.transitions.get(tr.event, 0) + 1
-        if trs and self.publishers:
-            active = self.pipe.engine.active()
-            for p in self.publishers:
-                p.publish(trs, active)
+        self._operate()
         self._note_counts()
         return trs
+
+    # --- operator actions and the lifecycle --------------------------------------------------
+
+    async def _poll_actions(self) -> None:
+        """Read the operators' requests for this line from the history, every ``[alarms] actions_poll`` s."""
+        every = self.line.config.alarms.actions_poll
+        while True:
+            with contextlib.suppress(Exception):  # a database hiccup must never stop the monitor
+                self.requests += await asyncio.to_thread(self.actions.poll)
+            await asyncio.sleep(every)
+
+    async def _prune_context(self, every: float = 3600.0) -> None:
+        """Delete context windows older than ``[alarms] context_keep`` or beyond ``context_max_rows``, hourly.
+
+        Only the signals kept around raises go: transitions, episodes and actions are never deleted.
+        """
+        from spanwatch.connectors.history.queries import prune_context
+
+        a = self.line.config.alarms
+        while True:
+            try:
+                n = await asyncio.to_thread(prune_context, self.actions.engine,
+                                            older_than=self.clock() - a.context_keep, max_rows=a.context_max_rows)
+                if n:
+                    log.info("history retention: %d context window(s) deleted (older than %.0f days, or beyond %d)",
+                             n, a.context_keep / 86400, a.context_max_rows)
+            except Exception as exc:  # the database unavailable: the next hour tries again
+                log.warning("history retention: %s", exc)
+            await asyncio.sleep(every)
+
+    def _operate(self) -> None:
+        """End the shelves whose time ran out; carry out the requests that arrived; record both."""
+        now = self.clock()
+        events = self.pipe.lifecycle.expire(now)
+        answers = []
+        reqs, self.requests = self.requests, []
+        for r in reqs:
+            out = carry_out(self.pipe.lifecycle, t=now, target=r.target, action=r.action, user=r.user,
+                            comment=r.comment, until=r.until, one_shot=r.one_shot, request=r.id)
+            log.info("request %d by %s: %s %s: %s: %s", r.id, r.user, r.action, r.target, out.status, out.answer)
+            events += out.events
+            answers.append(RequestAnswer(r.id, out.status, out.answer, now))
+        if events or answers:
+            self.pipe.record_lifecycle(events, answers)
+
+    def act(self, target: str, action: str, *, user: str, comment: str = "", until: float | None = None,
+            one_shot: bool = False) -> Outcome:
+        """Carry out an operator's action in this process (the demo's operator, an MQTT action), recorded."""
+        out = carry_out(self.pipe.lifecycle, t=self.clock(), target=target, action=action, user=user,
+                        comment=comment, until=until, one_shot=one_shot)
+        if out.events:
+            self.pipe.record_lifecycle(out.events)
+        return out
+
+    def _lifecycle_out(self, events: list[LifecycleEvent], transitions: list[Transition]) -> None:
+        """Log the lifecycle's changes (the daemon), publish them (MQTT) with the transitions among them."""
+        if self.mode == "daemon":
+            for e in events:
+                log_lifecycle(e)
+        if self.on_lifecycle is not None:
+            self.on_lifecycle(events)
+        for p in self.publishers:
+            p.publish_lifecycle(events, self.pipe.point_of, self.pipe.lifecycle.records, transitions=transitions)
+
+    def _action_listeners(self, loop: asyncio.AbstractEventLoop) -> list:  # type: ignore[type-arg]
+        """Listen for operators' actions on each MQTT source's ``actions_topic`` (the broker authenticates)."""
+        out = []
+        for spec in self.line.config.sources.values():
+            if spec.kind == "mqtt" and spec.actions_topic:
+                from spanwatch.connectors.mqtt import MqttActionListener
+                from spanwatch.monitor.sources import mqtt_settings
+
+                listener = MqttActionListener(mqtt_settings(spec), spec.actions_topic, lambda _msg: None, loop=loop)
+                listener.on_action = functools.partial(self._mqtt_answer, listener)
+                listener.start()
+                out.append(listener)
+        return out
+
+    def _mqtt_answer(self, listener: object, msg: object) -> None:
+        """Carry out an action that came over MQTT (on the event loop) and answer on the result topic."""
+        target = str(msg.alarm)  # type: ignore[attr-defined]
+        if target.isdigit():
+            target = self.actions.key_of_episode(int(target)) or f"episode {target}"
+        until = msg.until  # type: ignore[attr-defined]
+        out = self.act(target, msg.action.value, user=msg.user, comment=msg.comment or "",  # type: ignore[attr-defined]
+                       until=None if until is None or until == float("inf") else until,
+                       one_shot=bool(msg.one_shot))  # type: ignore[attr-defined]
+        log.info("mqtt action by %s: %s %s: %s: %s", msg.user, msg.action.value, target,  # type: ignore[attr-defined]
+                 out.status, out.answer)
+        states = {e.key: e.after.value for e in out.events}
+        listener.reply(msg, out.status == "applied", out.answer, state=states)  # type: ignore[attr-defined]
 
     # reasons a sample was not used as it should have been (malformed payloads are counted by the connectors)
     TROUBLE = ("out of order", "duplicate timestamp", "late", "future time", "malformed", "unknown tag")
 
     def _trouble(self) -> int:
         refused = sum(self.pipe.inputs.total(r) for r in self.TROUBLE)
-        lost = sum(c.stats.malformed_total + c.stats.overflow + sum(getattr(c.stats, "lost", {}).values())
-                   for c in self.connectors)
+        lost = sum(c.stats.malformed_total + c.stats.overflow + sum(c.stats.lost.values()) for c in self.connectors)
         return refused + lost
 
     def _note_counts(self) -> None:
-        now = self.elapsed()
-        seen = self.pipe.samples + self._trouble()
-        self._counts.append((now, seen, self._trouble()))
+        now, trouble = self.elapsed(), self._trouble()
+        self._counts.append((now, self.pipe.samples + trouble, trouble))
         while len(self._counts) > 2 and now - self._counts[1][0] > 60.0:
             self._counts.popleft()
 
@@ -307,6 +415,8 @@ class Daemon:
             "frame_latency_s": round(self.frame_latency, 3),
             "samples": self.pipe.samples,
             "active_alarms": [p.key for p in self.pipe.engine.active()],
+            "alarm_states": {k: r.state.value for k, r in self.pipe.lifecycle.records.items()
+                             if r.state.value != "normal"},
             "connectors": {c.name: {"kind": c.kind, "state": c.state, "samples_in": c.stats.samples_in,
                                     "reconnects": c.stats.reconnects, "malformed": c.stats.malformed_total,
                                     "queue_depth": c.stats.queue_depth, "last_error": c.stats.last_error,
@@ -358,6 +468,42 @@ async def run_daemon(line: Line, *, history_url: str | None = None, http: str | 
     daemon = Daemon(line, history_url=history_url, http=http)
     daemon.install_signal_handlers()
     await daemon.run()
+
+
+def restore_lifecycle(lifecycle: Lifecycle, states: dict[str, Record], engine: AlarmEngine) -> int:
+    """Take on the lifecycle records a previous run of the line left (acknowledged, shelved, out of service ...).
+
+    The condition is the engine's (what :func:`carry_on_open_alarms` restored): a record whose alarm the
+    configuration no longer has is dropped, and one whose condition disagrees with the engine's follows the
+    engine. Returns how many records were taken on.
+    """
+    n = 0
+    for key, rec in states.items():
+        if key not in lifecycle.records:
+            continue
+        active = engine.state[key].active
+        if rec.active != active:
+            rec = replace(rec, active=active, acked=rec.acked and not active)
+        lifecycle.records[key] = rec
+        n += 1
+    return n
+
+
+def redacted_config(path: str) -> str:
+    """The config file's text with the value of every key that names a secret replaced (what the history keeps)."""
+    import re
+
+    text = Path(path).read_text(encoding="utf-8")
+    return re.sub(r'(?im)^(\s*[\w.-]*(password|secret|token|private_key)[\w.-]*\s*=\s*).*$', r'\1"(removed)"', text)
+
+
+def _login() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except Exception:
+        return ""
 
 
 def carry_on_open_alarms(history: History, engine: AlarmEngine) -> int:

@@ -26,8 +26,9 @@ from typing import TYPE_CHECKING
 from spanwatch.connectors.ratelog import RateLimitedLog
 from spanwatch.connectors.secrets import redact, redact_url
 from spanwatch.monitor.exposure import exposure_warnings
-from spanwatch.monitor.present import transition_log_line
+from spanwatch.monitor.present import quiet_suppression, transition_log_line
 from spanwatch.rules.alarms import Transition
+from spanwatch.rules.lifecycle import LifecycleEvent
 
 if TYPE_CHECKING:
     from spanwatch.connectors.live import LiveConnector
@@ -68,6 +69,16 @@ def log_stop(daemon: Daemon, why: str, seconds: float) -> None:
 def log_transition(tr: Transition) -> None:
     """One line per alarm transition: a raise as a WARNING, a clear as INFO."""
     log.log(logging.WARNING if tr.event == "raise" else logging.INFO, "alarm %s", transition_log_line(tr))
+
+
+def log_lifecycle(e: LifecycleEvent) -> None:
+    """One line per lifecycle change other than a raise or clear (those have their own line): who did what."""
+    if e.action in ("raise", "clear") or quiet_suppression(e):
+        return
+    who = f" by {e.user}" if e.user else ""
+    note = f": {e.comment}" if e.comment else ""
+    log.info("alarm %s %s%s (%s -> %s)%s", e.key, e.action.value.replace("_", " "), who, e.before.value,
+             e.after.value, note)
 
 
 @dataclass

@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import asyncio
 import tempfile
+import textwrap
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -22,11 +24,13 @@ from rich.table import Table
 from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.examples import ExampleError, example_path
 from spanwatch.monitor.line import Line, load_line
+from spanwatch.monitor.operate import Outcome, carry_out
 from spanwatch.monitor.pipeline import Pipeline
-from spanwatch.monitor.present import fmt_value, mmss, transition_line
+from spanwatch.monitor.present import fmt_value, lifecycle_line, mmss, quiet_suppression, transition_line
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
+from spanwatch.rules.lifecycle import LifecycleEvent
 
 if TYPE_CHECKING:
     from spanwatch.monitor.daemon import Daemon
@@ -119,6 +123,8 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     publishing = max(s.publishing_interval for s in live_line.config.sources.values())  # type: ignore[union-attr]
     daemon = Daemon(live_line, history_url=sqlite_url(str(db)), http="", clock=server.clock,
                     latency=(publishing + 0.05) * speedup, lost_after=5.0 * speedup, on_transition=show, mode="demo")
+    daemon.on_lifecycle = show.lifecycle
+    operator = DemoOperator(show, daemon.act)
     _banner(console, line.name, line.config.line.plant, name, total, speedup, db, _faults(sim),
             f"behind an OPC UA server at {server.endpoint}")
     wall0 = time.perf_counter()
@@ -127,6 +133,7 @@ async def _demo_opcua(console: Console, sim: SimulatedLine, name: str, scenario:
     try:
         while sim.t < total - 1e-9 and not task.done():
             await asyncio.sleep(0.1)
+            operator.step(sim.t)
             if sim.t >= next_status:
                 _status(console, daemon.pipe, sim.t, daemon)
                 next_status += status_every
@@ -149,6 +156,15 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
     show = _Printer(console, sim.t0)
 
     pipe = Pipeline(line, history, on_transition=show)
+    pipe.keep_states = True
+    pipe.on_lifecycle = lambda events, _trs: show.lifecycle(events)
+
+    def act(target: str, action: str, **kw: object) -> Outcome:
+        out = carry_out(pipe.lifecycle, t=sim.t0 + sim.t, target=target, action=action, **kw)  # type: ignore[arg-type]
+        pipe.record_lifecycle(out.events)
+        return out
+
+    operator = DemoOperator(show, act)
     _banner(console, line.name, line.config.line.plant, sim.sc.scenario.name, total, speedup, db, _faults(sim),
             "fed in process" if pace else "as fast as possible, in process")
     wall0 = time.perf_counter()
@@ -158,6 +174,7 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
         while sim.t < total - 1e-9:
             chunk = min(step, total - sim.t)
             pipe.feed(sim.advance(chunk))
+            operator.step(sim.t)
             if sim.t >= next_status:
                 _status(console, pipe, sim.t)
                 next_status += status_every
@@ -175,17 +192,58 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
 
 
 class _Printer:
-    """Prints each alarm transition the moment it is computed; keeps the raises for the result."""
+    """Prints each alarm transition and lifecycle change the moment it is computed; keeps the raises.
+
+    The first raise of each check kind is followed by its rationalization's corrective action (the master
+    alarm database's text), shortened to the width of an 80-column terminal.
+    """
 
     def __init__(self, console: Console, t0: float) -> None:
         self.console, self.t0 = console, t0
         self.raised: list[Transition] = []
+        self._told: set[str] = set()
 
     def __call__(self, tr: Transition) -> None:
         text, style = transition_line(tr, self.t0)
         self.console.print(text, style=style, highlight=False, markup=False)
         if tr.event == "raise":
             self.raised.append(tr)
+            if tr.point.kind not in self._told and tr.point.action:
+                self._told.add(tr.point.kind)
+                self.console.print("    do: " + textwrap.shorten(tr.point.action, 70, placeholder=" ..."),
+                                   style="dim", highlight=False, markup=False)
+
+    def lifecycle(self, events: list[LifecycleEvent]) -> None:
+        for e in events:
+            if e.action in ("raise", "clear") or quiet_suppression(e):
+                continue
+            self.console.print(lifecycle_line(e, self.t0), style="bold" if e.user else "dim", highlight=False,
+                               markup=False)
+
+
+class DemoOperator:
+    """The demo's shift operator: acknowledges the first alarm raised and shelves the next one (another alarm),
+    each a little later in simulated time, as a person at the panel would."""
+
+    USER = "shift-op"
+
+    def __init__(self, printer: _Printer, act: Callable[..., Outcome], delay: float = 15.0) -> None:
+        self.printer, self.act, self.delay = printer, act, delay
+        self.acked: str | None = None
+        self.shelved: str | None = None
+
+    def step(self, sim_t: float) -> None:
+        raised = self.printer.raised
+        t0 = self.printer.t0
+        if self.acked is None and raised and sim_t >= raised[0].t - t0 + self.delay:
+            self.acked = raised[0].key
+            self.act(self.acked, "ack", user=self.USER, comment="seen; checking the nip and the web path")
+        if self.shelved is None and self.acked is not None:
+            later = [tr for tr in raised if tr.key != self.acked]
+            if later and sim_t >= later[0].t - t0 + self.delay:
+                self.shelved = later[0].key
+                self.act(self.shelved, "shelve", user=self.USER, until=later[0].t + self.delay + 3600.0,
+                         comment="known; maintenance informed")
 
 
 def _status(console: Console, pipe: Pipeline, t: float, daemon: Daemon | None = None) -> None:

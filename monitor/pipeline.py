@@ -27,6 +27,7 @@ from spanwatch.monitor.signals import SignalDeriver
 from spanwatch.monitor.watermarks import Watermarks
 from spanwatch.rules.alarms import AlarmEngine, Transition
 from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason, Signal
+from spanwatch.rules.lifecycle import Lifecycle, LifecycleEvent
 from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
 from spanwatch.rules.samples import SampleBatch
 from spanwatch.rules.values import iso
@@ -82,7 +83,14 @@ class Pipeline:
         self.checks = build_checks(line)
         self.points = alarm_points(line, self.checks)
         self.engine = AlarmEngine(self.points, chatter_settings(line))
-        self.suppression = suppression_rules(line, self.points, self.checks)  # read by the alarm lifecycle
+        # the lifecycle of every alarm point (acknowledge, shelve, suppression by design, out of service)
+        self.lifecycle = Lifecycle([p.key for p in self.points], latched=[p.key for p in self.points if p.latched],
+                                   shelve_max=line.config.alarms.shelve_max)
+        self.suppression = suppression_rules(line, self.points, self.checks)
+        self.point_of = {p.key: p for p in self.points}
+        self.keep_states = False  # write each alarm's lifecycle record as it changes (the daemon's, not a replay's)
+        # the lifecycle's changes with the transitions that caused the raises and clears among them
+        self.on_lifecycle: Callable[[list[LifecycleEvent], list[Transition]], None] | None = None
         self.inputs = InputStats()
         self.check_stats = CheckStats()
         self.history = history
@@ -255,14 +263,46 @@ class Pipeline:
             for tr in transitions:
                 if tr.event == "raise":
                     self.context.on_raise(tr.key, tr.t, self._inputs_of[(tr.point.kind, tr.point.object_id)])
+        events = self.follow(transitions)
         if self.history is not None:
-            self.history.record(transitions)
+            self.history.record(transitions, lifecycle=events, states=self.states_of(events))
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float(t[-1])))
         if self.on_transition is not None:
             for tr in transitions:
                 self.on_transition(tr)
+        if events and self.on_lifecycle is not None:
+            self.on_lifecycle(events, transitions)
         return transitions
+
+    # --- the lifecycle ---------------------------------------------------------------------
+
+    def follow(self, transitions: list[Transition]) -> list[LifecycleEvent]:
+        """The lifecycle's changes from the condition engine's raises and clears, in time order, each followed by
+        the suppression by design that the new set of abnormal conditions calls for."""
+        out: list[LifecycleEvent] = []
+        records = self.lifecycle.records
+        for tr in transitions:
+            e = self.lifecycle.condition(tr.t, tr.key, tr.event)
+            if e is None:
+                continue
+            out.append(e)
+            active = {k for k, r in records.items() if r.active}
+            out += self.lifecycle.suppress(tr.t, self.suppression.suppressed(active))
+        return out
+
+    def states_of(self, events: list[LifecycleEvent]) -> dict[str, object] | None:
+        """The lifecycle records the events changed (to store), when this pipeline keeps them."""
+        if not self.keep_states or not events:
+            return None
+        return {e.key: self.lifecycle.records[e.key] for e in events}
+
+    def record_lifecycle(self, events: list[LifecycleEvent], answers: list[object] | None = None) -> None:
+        """Write lifecycle changes that did not come with a block (operator actions, shelves expiring)."""
+        if self.history is not None and (events or answers):
+            self.history.record([], lifecycle=events, states=self.states_of(events), answers=answers or [])
+        if events and self.on_lifecycle is not None:
+            self.on_lifecycle(events, [])
 
     def feed(self, batch: SampleBatch) -> list[Transition]:
         """Ingest a batch and compute frames up to its newest sample minus the alignment lag (replay)."""

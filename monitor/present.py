@@ -6,6 +6,7 @@ import math
 
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
+from spanwatch.rules.lifecycle import LifecycleEvent
 
 # advisory alarms are journal only (not annunciated): dim, as a clear
 PRIORITY_STYLE = {"urgent": "bold reverse red", "high": "bold red", "medium": "yellow", "low": "cyan",
@@ -60,6 +61,35 @@ def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
             f"{f' (limit {limit})' if limit else ''} [{state_name(tr.line_state)}]")
     style = PRIORITY_STYLE.get(p.priority, "") if tr.event == "raise" else "dim"
     return text, style
+
+
+def quiet_suppression(e: LifecycleEvent) -> bool:
+    """A suppression by design that starts or ends while the alarm is normal: recorded, not worth a line.
+
+    >>> from spanwatch.rules.lifecycle import Action, AlarmState as S
+    >>> quiet_suppression(LifecycleEvent(0.0, "k", Action.SUPPRESS, S.NORMAL, S.SUPPRESSED))
+    True
+    >>> quiet_suppression(LifecycleEvent(0.0, "k", Action.SUPPRESS, S.UNACK, S.SUPPRESSED))
+    False
+    """
+    quiet = {"normal", "suppressed"}
+    return e.action in ("suppress", "unsuppress") and e.before.value in quiet and e.after.value in quiet
+
+
+def lifecycle_line(e: LifecycleEvent, t0: float) -> str:
+    """A lifecycle change as one short line for the demo: time since ``t0``, what, which alarm, who, the states.
+
+    >>> from spanwatch.rules.lifecycle import Action, AlarmState as S
+    >>> lifecycle_line(LifecycleEvent(75.0, "traction:R3:alarm", Action.ACK, S.UNACK, S.ACKED, user="op"), 0.0)
+    '+01:15 ACK traction R3 alarm by op (unack -> acked)'
+    """
+    what = {"out_of_service": "OUT OF SERVICE", "return_to_service": "IN SERVICE",
+            "shelve_expired": "UNSHELVED"}.get(e.action.value, e.action.value.upper())
+    who = f" by {e.user}" if e.user else ""
+    text = f"+{_mmss(e.t - t0)} {what} {e.key.replace(':', ' ')}{who} ({e.before.value} -> {e.after.value})"
+    if e.action == "suppress" and e.comment:
+        text += f": {e.comment}"
+    return text if len(text) <= 79 else text[:76] + "..."
 
 
 def transition_log_line(tr: Transition) -> str:

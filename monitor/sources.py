@@ -134,6 +134,9 @@ class MqttSource(Strict):
     overflow: Literal["block", "drop_oldest"] = "block"
     alarm_topic: str | None = None
     active_topic: str | None = None
+    actions_topic: str | None = Field(
+        default=None, description="where operators' panels publish actions (ack, shelve, ...) as JSON; the broker's "
+                                  "access control must allow only them to publish there")
     reconnect_min: PosDuration = 0.5
     reconnect_max: PosDuration = 30.0
 
@@ -143,7 +146,7 @@ class MqttSource(Strict):
         alarms back (counted as unknown topics, or worse, as a tag a topic_map pattern makes of them)."""
         from spanwatch.connectors.mqtt.topics import check_filter, check_subscription, match_filter
 
-        for key in ("alarm_topic", "active_topic"):
+        for key in ("alarm_topic", "active_topic", "actions_topic"):
             topic = getattr(self, key)
             if topic is None:
                 continue

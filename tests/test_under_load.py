@@ -84,6 +84,13 @@ startup_grace = "3 s"
     return f
 
 
+def _publisher(scenario: Path, broker) -> subprocess.Popen:
+    """The simulated line published to the broker in real time, as its own process."""
+    return subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
+                             f"{broker.host}:{broker.port}", "--speedup", "1"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
 def _start_daemon(cfg: Path) -> subprocess.Popen:
     return subprocess.Popen([sys.executable, "-m", "spanwatch", "run", "--config", str(cfg), "--log-level", "warning"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -150,10 +157,9 @@ end = "25 s"
     daemon = _start_daemon(_daemon_config(tmp_path, "loaded", mqtt_broker, port))
     try:
         _wait_connected(port, daemon)
-        pub = subprocess.run([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
-                              f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "1"],
-                             capture_output=True, text=True, timeout=300)
-        assert pub.returncode == 0, pub.stderr
+        pub = _publisher(scenario, mqtt_broker)
+        _, pub_err = pub.communicate(timeout=300)
+        assert pub.returncode == 0, pub_err
         time.sleep(1.0)
     finally:
         err = _stop(daemon)
@@ -189,9 +195,7 @@ end = "35 s"
     try:
         _wait_connected(port_a, a)
         _wait_connected(port_b, b)
-        pub = subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
-                                f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "1"],
-                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        pub = _publisher(scenario, mqtt_broker)
         time.sleep(22.0)
         b.kill()  # SIGKILL
         b.wait()
@@ -220,9 +224,7 @@ def test_a_suspended_daemon_catches_up_from_the_broker_queue(tmp_path, mqtt_brok
     daemon = _start_daemon(_daemon_config(tmp_path, "paused", mqtt_broker, port))
     try:
         _wait_connected(port, daemon)
-        pub = subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
-                                f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "1"],
-                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        pub = _publisher(scenario, mqtt_broker)
         time.sleep(10.0)
         daemon.send_signal(signal.SIGSTOP)
         time.sleep(20.0)
@@ -262,9 +264,7 @@ def test_a_flood_on_unknown_topics_makes_no_tag_stale_and_shows_as_degraded(tmp_
     daemon = _start_daemon(_daemon_config(tmp_path, "flooded", mqtt_broker, port))
     try:
         _wait_connected(port, daemon)
-        pub = subprocess.Popen([sys.executable, "-m", "spanwatch", "simulate", str(scenario), "--publish-mqtt",
-                                f"{mqtt_broker.host}:{mqtt_broker.port}", "--speedup", "1"],
-                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        pub = _publisher(scenario, mqtt_broker)
         time.sleep(8.0)
         flood = subprocess.run([sys.executable, "-c", FLOOD, mqtt_broker.host, str(mqtt_broker.port), "200000"],
                                capture_output=True, text=True, timeout=300)

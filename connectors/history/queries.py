@@ -145,6 +145,30 @@ def episode_detail(engine: Engine, episode_id: int) -> dict[str, Any] | None:
         return out
 
 
+def episode_extras(engine: Engine, ids: list[int]) -> dict[int, dict[str, Any]]:
+    """For each episode id: its rationalization, flags and the lifecycle state it was last recorded in (``state``:
+    the state after the newest lifecycle change tied to it). Empty on a history from before the lifecycle."""
+    out: dict[int, dict[str, Any]] = {}
+    if not ids:
+        return out
+    with Session(engine) as s:
+        if not inspect(s.connection()).has_table("alarm_actions"):
+            return out
+        for chunk in range(0, len(ids), 500):
+            part = ids[chunk:chunk + 500]
+            for e in s.scalars(select(AlarmEpisode).options(load_only(*(getattr(AlarmEpisode, c) for c in _RATIONALE)))
+                               .where(AlarmEpisode.id.in_(part))):
+                out[e.id] = {c: getattr(e, c) for c in _RATIONALE}
+                out[e.id]["state"] = None
+            last = (select(AlarmAction.episode_id, func.max(AlarmAction.id).label("last"))
+                    .where(AlarmAction.episode_id.in_(part)).group_by(AlarmAction.episode_id).subquery())
+            for ep, state in s.execute(select(AlarmAction.episode_id, AlarmAction.state_after)
+                                       .join(last, AlarmAction.id == last.c.last)):
+                if ep in out:
+                    out[ep]["state"] = str(state)
+    return out
+
+
 def actions_of(engine: Engine, *, line_name: str | None = None, alarm_key: str | None = None,
                since: float | None = None, until: float | None = None) -> list[dict[str, Any]]:
     """The lifecycle journal (``alarm_actions``) with filters, oldest first, as plain dicts.

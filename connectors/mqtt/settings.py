@@ -75,6 +75,7 @@ class MqttSettings:
     overflow: str = "block"  # "block" or "drop_oldest"
     alarm_topic: str | None = None
     active_topic: str | None = None
+    actions_topic: str | None = None  # operators' actions (connectors/mqtt/actions.py); None: not listened to
     reconnect_min: float = 0.5
     reconnect_max: float = 30.0
 
