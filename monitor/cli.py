@@ -535,20 +535,70 @@ def kpi_cmd(
 
 @app.command("alarm-list")
 def alarm_list_cmd(
-    config: Annotated[Path, typer.Option("--config", help="Line configuration (TOML).")],
+    config: Annotated[Path | None, typer.Option("--config", help="Line configuration (TOML).")] = None,
     fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
     check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
+    db: Annotated[str | None, typer.Option(help="Instead of --config: the alarm list a history kept (with --line "
+                                                 "and --at).")] = None,
+    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
+    line_name: Annotated[str | None, typer.Option("--line", help="With --db: the line.")] = None,
+    at: Annotated[str | None, typer.Option(help="With --db: the moment (ISO 8601 with offset; default: now).")]
+    = None,
+    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
 ) -> None:
-    """Print the master alarm database: every alarm point with its settings and rationalization."""
+    """Print the master alarm database: every alarm point with its settings and rationalization; from a config
+    file, or as it was in force at a moment (--db --line --at)."""
     from spanwatch.monitor.alarmlist import render
-    from spanwatch.monitor.checkset import alarm_points, build_checks
     from spanwatch.rules.catalog import CHECK_KINDS
 
     _one_of(fmt, ("table", "csv", "json"), "--format")
     _one_of(check, sorted(CHECK_KINDS), "--check")
-    line = open_line(config)
-    points = [p for p in alarm_points(line, build_checks(line)) if check is None or p.kind == check]
-    typer.echo(render(points, fmt, title=f"{line.config.line.name}: master alarm list ({config})"), nl=False)
+    if (config is None) == (db is None):
+        fail("alarm-list: give --config FILE, or --db (with --line and optionally --at)")
+    if config is not None:
+        from spanwatch.monitor.checkset import alarm_points, build_checks
+
+        line = open_line(config)
+        points = alarm_points(line, build_checks(line))
+        title = f"{line.config.line.name}: master alarm list ({config})"
+    else:
+        points, title = _kept_alarm_points(db or "", db_password, line_name, at, db_timeout)
+    points = [p for p in points if check is None or p.kind == check]
+    typer.echo(render(points, fmt, title=title), nl=False)
+
+
+def _kept_alarm_points(db: str, db_password: str | None, line_name: str | None, at: str | None,
+                       db_timeout: float) -> tuple[list, str]:  # type: ignore[type-arg]
+    """The alarm points a history kept for ``line_name`` in force at ``at`` (``config_versions``), and a title."""
+    import json
+    import time
+
+    from spanwatch.connectors.history import config_at
+    from spanwatch.monitor.kpireport import parse_time
+    from spanwatch.rules.alarms import AlarmPoint
+
+    if not line_name:
+        fail("--line: with --db, name the line (spanwatch alarms lists runs and their lines)")
+    try:
+        t = parse_time(at) if at is not None else time.time()
+    except ValueError as exc:
+        fail(f"--at: {exc}")
+    url, shown = _history_url(db, db_password, reading=True)
+    engine = open_history_reader(url, db_timeout)
+    with history_errors(url, db_timeout):
+        kept = config_at(engine, line_name, t, last_used=True)
+    engine.dispose()
+    if kept is None:
+        fail(f"{shown}: no run of line {line_name!r} started before {at or 'now'}, or its configuration was not kept")
+    data = json.loads(kept["content"])
+    if not isinstance(data, dict) or "alarm_points" not in data:
+        fail(f"{shown}: the configuration kept for line {line_name!r} has no alarm list")
+    names = {f for f in AlarmPoint.__dataclass_fields__}
+    points = [AlarmPoint(**{k: (tuple(v) if isinstance(v, list) else v) for k, v in p.items() if k in names})
+              for p in data["alarm_points"]]
+    when = "in force at" if kept["covering"] else "last used before"
+    return points, (f"{line_name}: master alarm list {when} {at or 'now'} (config {kept['config_hash']} of run "
+                    f"{kept['run']}, saved {kept['saved']} by {kept['saved_by'] or 'unknown'})")
 
 
 def _show_alarm(episode_id: int, db: str, db_password: str | None, fmt: str, db_timeout: float) -> None:

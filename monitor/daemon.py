@@ -37,6 +37,7 @@ from spanwatch.connectors.history.store import RequestAnswer
 from spanwatch.connectors.history.writer import open_writer
 from spanwatch.connectors.live import LiveConnector
 from spanwatch.monitor.daemonlog import SourceWatch, log_lifecycle, log_start, log_stop, log_transition
+from spanwatch.monitor.exposure import remember_config
 from spanwatch.monitor.httpd import HttpEndpoint, serve_http
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.metrics import DaemonCollector
@@ -103,9 +104,7 @@ class Daemon:
             restored = carry_on_open_alarms(self.history, self.pipe.engine)
             self.pipe.keep_states = True
             restore_lifecycle(self.pipe.lifecycle, self.history.load_states(line.name), self.pipe.engine)
-            self.history.save_config_version(line_name=line.name, config_hash=line.config_hash,
-                                             config_file=line.file, content=redacted_config(line.file),
-                                             saved_by=_login())
+            remember_config(self.history, line, self.pipe.points)
             self.actions = ActionInbox(history_url, line.name, timeout=d.history_timeout)
         except BaseException:
             self.writer.close()  # releases the writer lock: a failed start does not block the next one
@@ -128,6 +127,7 @@ class Daemon:
         self.stop_reason = "stop requested"
         self.requests: list[Pending] = []  # operators' requests read from the inbox, for the next tick
         self.pipe.on_lifecycle = self._lifecycle_out
+        self.pipe.on_committed = self._publish
         self.on_lifecycle: Callable[[list[LifecycleEvent]], None] | None = None  # the demo prints them
 
     def _publishers(self) -> list:  # type: ignore[type-arg]
@@ -303,12 +303,16 @@ class Daemon:
         return out
 
     def _lifecycle_out(self, events: list[LifecycleEvent], transitions: list[Transition]) -> None:
-        """Log the lifecycle's changes (the daemon), publish them (MQTT) with the transitions among them."""
+        """Log the lifecycle's changes (the daemon) or hand them to the demo."""
         if self.mode == "daemon":
             for e in events:
                 log_lifecycle(e)
         if self.on_lifecycle is not None:
             self.on_lifecycle(events)
+
+    def _publish(self, events: list[LifecycleEvent], transitions: list[Transition]) -> None:
+        """Publish lifecycle changes with the transitions among them (MQTT), once the history has them: called on
+        the history writer's thread after the commit (or the spool)."""
         for p in self.publishers:
             p.publish_lifecycle(events, self.pipe.point_of, self.pipe.lifecycle.records, transitions=transitions)
 
@@ -487,23 +491,6 @@ def restore_lifecycle(lifecycle: Lifecycle, states: dict[str, Record], engine: A
         lifecycle.records[key] = rec
         n += 1
     return n
-
-
-def redacted_config(path: str) -> str:
-    """The config file's text with the value of every key that names a secret replaced (what the history keeps)."""
-    import re
-
-    text = Path(path).read_text(encoding="utf-8")
-    return re.sub(r'(?im)^(\s*[\w.-]*(password|secret|token|private_key)[\w.-]*\s*=\s*).*$', r'\1"(removed)"', text)
-
-
-def _login() -> str:
-    import getpass
-
-    try:
-        return getpass.getuser()
-    except Exception:
-        return ""
 
 
 def carry_on_open_alarms(history: History, engine: AlarmEngine) -> int:

@@ -23,6 +23,7 @@ from rich.console import Console
 from rich.table import Table
 from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.examples import ExampleError, example_path
+from spanwatch.monitor.exposure import remember_config
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.operate import Outcome, carry_out
 from spanwatch.monitor.pipeline import Pipeline
@@ -156,6 +157,7 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
     show = _Printer(console, sim.t0)
 
     pipe = Pipeline(line, history, on_transition=show)
+    remember_config(history, line, pipe.points)
     pipe.keep_states = True
     pipe.on_lifecycle = lambda events, _trs: show.lifecycle(events)
 

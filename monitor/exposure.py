@@ -66,6 +66,30 @@ def config_hash(cfg: LineConfig) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
+def config_text(cfg: LineConfig, points: list[Any] | None = None) -> str:
+    """The config as the history keeps it (``config_versions``), as indented JSON: ``config`` is
+    :func:`canonical_config` (its bases merged in, its secrets removed; its hash is :func:`config_hash`) and
+    ``alarm_points`` every alarm point it resolved to (limits, deadband, delays, priority, rationalization), so the
+    alarm list in force at any past moment can be shown (``spanwatch alarm-list --db ... --at TIME``)."""
+    import dataclasses
+
+    return json.dumps({"config": canonical_config(cfg),
+                       "alarm_points": [dataclasses.asdict(p) for p in points or []]},
+                      sort_keys=True, indent=1, allow_nan=True)
+
+
+def remember_config(history: Any, line: Any, points: list[Any]) -> None:
+    """Save the line's config and its alarm points in the history once per version (who: this process's login)."""
+    import getpass
+
+    try:
+        who = getpass.getuser()
+    except Exception:
+        who = ""
+    history.save_config_version(line_name=line.name, config_hash=line.config_hash, config_file=line.file,
+                                content=config_text(line.config, points), saved_by=who)
+
+
 def inline_secrets(cfg: LineConfig) -> list[str]:
     """Key paths of secrets written into the config itself: a password not ``env:``/``file:``, a URL with one."""
     found: list[str] = []

@@ -11,6 +11,7 @@ block of frames; Python loops run per block, per check and per alarm transition.
 
 from __future__ import annotations
 
+import functools
 import logging
 import time
 from collections.abc import Callable
@@ -91,6 +92,8 @@ class Pipeline:
         self.keep_states = False  # write each alarm's lifecycle record as it changes (the daemon's, not a replay's)
         # the lifecycle's changes with the transitions that caused the raises and clears among them
         self.on_lifecycle: Callable[[list[LifecycleEvent], list[Transition]], None] | None = None
+        # the same, once committed to the history (or in its spool): what goes out of the process (MQTT)
+        self.on_committed: Callable[[list[LifecycleEvent], list[Transition]], None] | None = None
         self.inputs = InputStats()
         self.check_stats = CheckStats()
         self.history = history
@@ -264,8 +267,12 @@ class Pipeline:
                 if tr.event == "raise":
                     self.context.on_raise(tr.key, tr.t, self._inputs_of[(tr.point.kind, tr.point.object_id)])
         events = self.follow(transitions)
+        after = functools.partial(self.on_committed, events, transitions) \
+            if self.on_committed is not None and events else None
         if self.history is not None:
-            self.history.record(transitions, lifecycle=events, states=self.states_of(events))
+            self.history.record(transitions, lifecycle=events, states=self.states_of(events), after=after)
+        elif after is not None:
+            after()
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float(t[-1])))
         if self.on_transition is not None:
@@ -299,8 +306,12 @@ class Pipeline:
 
     def record_lifecycle(self, events: list[LifecycleEvent], answers: list[object] | None = None) -> None:
         """Write lifecycle changes that did not come with a block (operator actions, shelves expiring)."""
+        after = functools.partial(self.on_committed, events, []) if self.on_committed is not None and events else None
         if self.history is not None and (events or answers):
-            self.history.record([], lifecycle=events, states=self.states_of(events), answers=answers or [])
+            self.history.record([], lifecycle=events, states=self.states_of(events), answers=answers or [],
+                                after=after)
+        elif after is not None:
+            after()
         if events and self.on_lifecycle is not None:
             self.on_lifecycle(events, [])
 

@@ -17,6 +17,7 @@ from spanwatch.connectors.history import History, HistoryError
 from spanwatch.connectors.history.database import SQLITE_BUSY_TIMEOUT_S
 from spanwatch.connectors.history.models import RunEnd
 from spanwatch.connectors.recording import ReadProblems, read_recording
+from spanwatch.monitor.exposure import remember_config
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.pipeline import Pipeline
 
@@ -54,6 +55,8 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
             history.close()
             raise
     pipe = Pipeline(line, history)
+    if history is not None:
+        remember_config(history, line, pipe.points)
     problems = ReadProblems()
     raised: dict[str, int] = {}
     used = 0

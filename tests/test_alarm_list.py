@@ -139,3 +139,33 @@ def test_rationalization_differing_within_a_kind_is_shown_per_point():
     assert text.count("Tension ratio across a pull roll") == 1
     assert "for pull_2 warning, pull_2 alarm:" in text
     assert "  q2.a_very_long_object_name_for_a_roller.in.the.coating.section" in lines
+
+
+def test_the_alarm_list_kept_in_the_history_is_the_one_in_force(tmp_path):
+    """A replay keeps its configuration's alarm list; `alarm-list --db --line` shows it as it was, even after the
+    file changed (what a rationalization review compares against)."""
+    import shutil
+
+    from spanwatch.connectors.history import History, sqlite_url
+    from spanwatch.monitor.exposure import remember_config
+    from spanwatch.monitor.pipeline import Pipeline
+
+    cfg = tmp_path / "line.toml"
+    shutil.copy(REPO / "config" / "quillmere-q2.toml", cfg)
+    line = load_line(cfg)
+    db = tmp_path / "h.db"
+    h = History(sqlite_url(str(db)))
+    h.start_run(mode="replay", line_name=line.name, config_file=str(cfg), config_hash=line.config_hash)
+    remember_config(h, line, Pipeline(line, None).points)
+    h.finish_run(input_rows=[])
+    h.close()
+    before = json.loads(listing(cfg, "--format", "json"))
+    # the file changes afterwards: the kept list still gives the old limits
+    cfg.write_text(cfg.read_text(encoding="utf-8").replace("warning = 0.8 ", "warning = 0.7 ", 1),
+                   encoding="utf-8")
+    assert json.loads(listing(cfg, "--format", "json")) != before
+    r = CliRunner().invoke(app, ["alarm-list", "--db", str(db), "--line", line.name, "--format", "json"])
+    assert r.exit_code == 0, r.output
+    assert json.loads(r.output) == before
+    r = CliRunner().invoke(app, ["alarm-list", "--db", str(db), "--line", line.name, "--at", "2000-01-01T00:00:00Z"])
+    assert r.exit_code == 2

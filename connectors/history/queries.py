@@ -190,18 +190,20 @@ def actions_of(engine: Engine, *, line_name: str | None = None, alarm_key: str |
         return [_action(a) for a in s.scalars(q)]
 
 
-def config_at(engine: Engine, line_name: str, t: float) -> dict[str, Any] | None:
+def config_at(engine: Engine, line_name: str, t: float, *, last_used: bool = False) -> dict[str, Any] | None:
     """The configuration ``line_name`` ran with at ``t`` (epoch s), as saved in ``config_versions``, or None.
 
     The run of the line covering ``t`` is the latest started at or before ``t`` that had not finished before it
     (a run killed without a finish time covers up to the next run's start); None when no run covers ``t`` or its
-    configuration's text was not saved.
+    configuration's text was not saved. ``last_used``: when no run covers ``t``, the configuration of the latest
+    run before it (``covering`` in the result says which).
     """
     with Session(engine) as s:
         run = s.execute(select(Run.id, Run.config_hash, Run.finished_at)
                         .where(Run.line_name == line_name, Run.started_at <= t)
                         .order_by(Run.started_at.desc(), Run.id.desc()).limit(1)).first()
-        if run is None or (run.finished_at is not None and run.finished_at < t):
+        covering = run is not None and (run.finished_at is None or run.finished_at >= t)
+        if run is None or (not covering and not last_used):
             return None
         v = s.scalar(select(ConfigVersion).where(ConfigVersion.line_name == line_name,
                                                  ConfigVersion.config_hash == run.config_hash))
@@ -209,7 +211,7 @@ def config_at(engine: Engine, line_name: str, t: float) -> dict[str, Any] | None
             return None
         return {"id": v.id, "line": v.line_name, "config_hash": v.config_hash, "config_file": v.config_file,
                 "content": v.content, "saved_at": v.saved_at, "saved": iso(v.saved_at), "saved_by": v.saved_by,
-                "run": run.id}
+                "run": run.id, "covering": covering}
 
 
 def prune_context(engine: Engine, *, older_than: float | None = None, max_rows: int | None = None) -> int:

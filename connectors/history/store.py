@@ -110,7 +110,8 @@ class HistorySink(Protocol):
     """What the pipeline writes to: a :class:`History` (replay, demo) or a writer thread in front of one (daemon)."""
 
     def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
-               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = ()) -> None: ...
+               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = (),
+               after: Callable[[], None] | None = None) -> None: ...
 
     def record_contexts(self, contexts: Iterable[Context]) -> None: ...
 
@@ -220,8 +221,9 @@ class History:
     @_said("writing")
     def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
                states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = (),
-               seq: int | None = None) -> None:
-        """Write in one transaction: journal rows, new and completed episodes, lifecycle rows, states, answers.
+               seq: int | None = None, after: Callable[[], None] | None = None) -> None:
+        """Write in one transaction: journal rows, new and completed episodes, lifecycle rows, states, answers;
+        then call ``after`` (what may only go out once it is committed, such as publishing the alarms).
 
         ``lifecycle``: the changes of alarms' lifecycles and the operators' actions (``alarm_actions``), each tied to
         the episode of its alarm key open at that moment (raised in this call at or before its time, else the one
@@ -297,6 +299,8 @@ class History:
         for ep in raised:
             self._raised[(ep.alarm_key, ep.raised_t)] = ep.id
             self._latest[ep.alarm_key] = ep.id
+        if after is not None:
+            after()
 
     def _latest_episodes(self, s: Session, keys: set[str]) -> dict[str, int]:
         """The episode of each key the store knows open, else its latest of this line in the database (if any)."""

@@ -171,6 +171,14 @@ def _count(op: str, data: Any) -> int:
     return len(data) if op in ("record", "contexts") else 1
 
 
+def _call(after: Callable[[], None]) -> None:
+    """Run a write's ``after`` (publishing): its failure is logged, never the writer's."""
+    try:
+        after()
+    except Exception:
+        log.exception("history writer: what follows a write failed")
+
+
 # --- the writer -------------------------------------------------------------------------------------------------
 
 
@@ -201,12 +209,20 @@ class HistoryWriter:
     # --- the event loop's side: never blocks --------------------------------------------------------------------------
 
     def record(self, transitions: Iterable[Transition], *, lifecycle: Sequence[LifecycleEvent] = (),
-               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = ()) -> None:
-        """Queue what :meth:`History.record` writes in one transaction (written, or spooled, in order)."""
+               states: Mapping[str, Record] | None = None, answers: Sequence[RequestAnswer] = (),
+               after: Callable[[], None] | None = None) -> None:
+        """Queue what :meth:`History.record` writes in one transaction (written, or spooled, in order).
+
+        ``after`` runs on the writer's thread once the write is committed or in the spool (what may only go out
+        then, such as publishing the alarms); also when the write had to be dropped (queue or spool full: counted,
+        logged and shown on /healthz), so that the alarm still reaches the operator.
+        """
         rec = {"transitions": list(transitions), "lifecycle": list(lifecycle), "states": dict(states or {}),
                "answers": list(answers)}
         if any(rec.values()):
-            self._put(("record", rec))
+            self._put(("record", rec), after)
+        elif after is not None:
+            _call(after)
 
     def record_contexts(self, contexts: Iterable[Context]) -> None:
         cs = list(contexts)
@@ -218,9 +234,9 @@ class HistoryWriter:
         self._put(("finish", {"input_rows": [dict(r) for r in input_rows], "data_start": data_start,
                               "data_end": data_end, "state": state, "finished_at": time.time()}))
 
-    def _put(self, item: tuple[str, Any]) -> None:
+    def _put(self, item: tuple[str, Any], after: Callable[[], None] | None = None) -> None:
         try:
-            self._q.put_nowait(item)
+            self._q.put_nowait((*item, after))
             if self._queue_full:
                 self._queue_full = False
                 log.warning("history writer queue accepts writes again")
@@ -231,6 +247,8 @@ class HistoryWriter:
                 self._queue_full = True
                 log.error("history writer queue full (%d writes waiting): alarm records are being LOST until it "
                           "drains", self._q.maxsize)
+            if after is not None:
+                _call(after)
 
     # --- life ---------------------------------------------------------------------------------------------------------
 
@@ -291,7 +309,14 @@ class HistoryWriter:
             log.warning("history unavailable at shutdown: %d record(s) stay in the spool %s; the next start of this "
                         "line writes them first", self.spool.count, self.spool.path)
 
-    def _handle(self, op: str, data: Any) -> None:
+    def _handle(self, op: str, data: Any, after: Callable[[], None] | None = None) -> None:
+        try:
+            self._write(op, data)
+        finally:
+            if after is not None:
+                _call(after)
+
+    def _write(self, op: str, data: Any) -> None:
         self._seq += 1
         seq = self._seq
         if self._state == OK and not self.spool.count:
