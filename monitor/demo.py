@@ -196,8 +196,8 @@ def _demo_direct(console: Console, sim: SimulatedLine, line: Line, scenario: Pat
 class _Printer:
     """Prints each alarm transition and lifecycle change the moment it is computed; keeps the raises.
 
-    The first raise of each check kind is followed by its rationalization's corrective action (the master
-    alarm database's text), shortened to the width of an 80-column terminal.
+    The first raise of each check kind is followed by its rationalization (the master alarm database's cause,
+    corrective action and time to respond), shortened to the width of an 80-column terminal.
     """
 
     def __init__(self, console: Console, t0: float) -> None:
@@ -210,10 +210,13 @@ class _Printer:
         self.console.print(text, style=style, highlight=False, markup=False)
         if tr.event == "raise":
             self.raised.append(tr)
-            if tr.point.kind not in self._told and tr.point.action:
-                self._told.add(tr.point.kind)
-                self.console.print("    do: " + textwrap.shorten(tr.point.action, 70, placeholder=" ..."),
-                                   style="dim", highlight=False, markup=False)
+            p = tr.point
+            if p.kind not in self._told:
+                self._told.add(p.kind)
+                for label, text in (("why", p.cause), (f"do within {p.response_time:g} s", p.action)):
+                    if text:
+                        short = textwrap.shorten(text, 74 - len(label), placeholder=" ...")
+                        self.console.print(f"    {label}: {short}", style="dim", highlight=False, markup=False)
 
     def lifecycle(self, events: list[LifecycleEvent]) -> None:
         for e in events:

@@ -48,7 +48,9 @@ def transition_line(tr: Transition, t0: float | None = None) -> tuple[str, str]:
         value = fmt_value(tr.value if tr.event == "raise" else tr.peak, p.unit)
         limit = fmt_limit(p.limit, p.unit, p.direction)
         text = (f"+{_mmss(tr.t - t0)} {verb} {p.kind} {p.object_id} {p.level}: "
-                f"{'' if tr.event == 'raise' else 'peak '}{value}{f' ({limit})' if limit else ''}")
+                f"{'' if tr.event == 'raise' else 'peak '}{value}")
+        if limit and len(text) + len(limit) + 3 <= 79:  # the limit when the line has room for it (80 columns)
+            text += f" ({limit})"
         style = PRIORITY_STYLE.get(p.priority, "") if tr.event == "raise" else "dim"
         return text, style
     clock = _clock(tr.t)

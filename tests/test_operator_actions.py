@@ -197,3 +197,34 @@ print(json.dumps({{"sent": n, "ok": ok}}))
     finally:
         assert d2.stop() == 0, d2.text()[-3000:]
     assert dict(rows(db, "select alarm_key, state from alarm_states"))[STALE] == "acked"
+
+
+def test_actions_on_postgresql(tmp_path, pg_schema, pg_url):
+    """The same round trip on the real PostgreSQL server: the daemon writes there, the command line acts there."""
+    from storagefaults import pg_rows
+
+    port = free_port()
+    cfg = line_config(tmp_path, pg_url, [("q2.unwind.rpm", 2, 600)], port=port)
+    d = DaemonProcess(cfg, port, tmp_path / "daemon.log")
+    try:
+        d.wait_up()
+
+        def open_ep() -> int | None:
+            got = pg_rows(pg_schema, f"select id from alarm_episodes where alarm_key = '{STALE}' "
+                                     "and cleared_t is null order by id")
+            return got[0][0] if got else None
+
+        ep = wait_for(open_ep, 90, "the stale alarm")
+        r = sw("ack", str(ep), "--user", "op-north", "-m", "seen", "--config", str(cfg))
+        assert r.returncode == 0, r.stdout + r.stderr
+        r = sw("shelve", STALE, "--until-clear", "-m", "tacho cable", "--user", "op-north", "--config", str(cfg))
+        assert r.returncode == 0, r.stdout + r.stderr
+        r = sw("ack", str(ep), "--user", "op-north", "--config", str(cfg))
+        assert r.returncode == 1 and "hidden" in r.stderr
+        assert pg_rows(pg_schema, f"select state, shelved_one_shot from alarm_states where alarm_key = '{STALE}'") \
+            == [("shelved", True)]
+    finally:
+        assert d.stop() == 0, d.text()[-3000:]
+    acts = pg_rows(pg_schema, f"select action, state_before, state_after from alarm_actions where alarm_key = "
+                              f"'{STALE}' and origin = 'operator' order by id")
+    assert acts == [("ack", "unack", "acked"), ("shelve", "acked", "shelved")]
