@@ -7,6 +7,7 @@ from typing import TYPE_CHECKING, Any
 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, SummaryMetricFamily
 from spanwatch.monitor.schema import PRIORITIES
+from spanwatch.rules.lifecycle import AlarmState
 
 if TYPE_CHECKING:
     from spanwatch.monitor.daemon import Daemon
@@ -58,6 +59,14 @@ class DaemonCollector:
         for prio, n in counts.items():
             active.add_metric([prio], n)
         yield active
+        states = GaugeMetricFamily("spanwatch_alarm_states", "Alarm points by lifecycle state (ISA-18.2)",
+                                   labels=["state"])
+        by_state = {s.value: 0 for s in AlarmState}
+        for rec in list(d.pipe.lifecycle.records.values()):
+            by_state[rec.state.value] += 1
+        for state, n in by_state.items():
+            states.add_metric([state], n)
+        yield states
         trans = CounterMetricFamily("spanwatch_alarm_transitions", "Alarm transitions", labels=["event"])
         for ev, n in d.stats.transitions.items():
             trans.add_metric([ev], n)

@@ -127,6 +127,8 @@ def test_daemon_raises_serves_health_and_metrics_and_stops_cleanly(tmp_path):
     # Prometheus text exposition format: metric names and labels as the client library renders them
     assert 'spanwatch_samples_in_total{source="sim"}' in metrics
     assert 'spanwatch_active_alarms{priority="medium"} 1.0' in metrics
+    # the stale alarm raised and not acknowledged (ANSI/ISA-18.2 state B, unacknowledged alarm; from memory)
+    assert 'spanwatch_alarm_states{state="unack"} 1.0' in metrics
     assert "spanwatch_check_evaluation_seconds_count" in metrics
     con = sqlite3.connect(tmp_path / "history.db")
     finished = con.execute("select finished_at from runs").fetchall()
