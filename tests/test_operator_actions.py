@@ -104,6 +104,19 @@ def test_ack_shelve_and_refusals_from_the_command_line(tmp_path):
     answered = rows(db, "select status from action_requests order by id")
     assert [a[0] for a in answered] == ["applied", "refused", "applied", "refused", "applied", "applied",
                                         "applied", "applied", "refused"]
+    # the journal alone rebuilds the lifecycle the daemon left (every change is in it, in order)
+    from spanwatch.connectors.history import actions_of, open_reader
+    from spanwatch.rules.lifecycle import Action, AlarmState, Lifecycle, LifecycleEvent
+
+    engine = open_reader(f"sqlite:///{db}")
+    journal = actions_of(engine)
+    engine.dispose()
+    states = dict(rows(db, "select alarm_key, state from alarm_states"))
+    rebuilt = Lifecycle(sorted(states))
+    rebuilt.replay(LifecycleEvent(a["t"], a["key"], Action(a["action"]), AlarmState(a["before"]),
+                                  AlarmState(a["after"]), a["user"] or "", a["comment"] or "", a["until"])
+                   for a in journal)
+    assert {k: r.state.value for k, r in rebuilt.records.items()} == states
     # the detail view shows the actions with the alarm
     r = sw("alarms", "show", str(ep), "--db", str(db))
     assert r.returncode == 0, r.stderr
