@@ -312,7 +312,7 @@ DB_TIMEOUT = "Seconds to wait for a database another process holds locked, then 
 
 
 DB_PASSWORD_HELP = ("The database password as env:NAME or file:/path (not in --db, where ps shows it to every user); "
-                    "default: [daemon] history_password.")
+                    "default: daemon.history_password in the config.")
 
 
 def _history_url(db: str | None, db_password: str | None, line: Line | None = None, *,
@@ -704,10 +704,12 @@ def demo_cmd(
 
 @app.command("run")
 def run_cmd(
-    config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration with [sources] (TOML).")],
-    db: Annotated[str | None, typer.Option(help="History (SQLite path or SQLAlchemy URL); default: [daemon].")] = None,
+    config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration with sources (TOML).")],
+    db: Annotated[str | None, typer.Option(help="History (SQLite path or SQLAlchemy URL); default: daemon.history "
+                                                "in the config.")] = None,
     db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
-    http: Annotated[str | None, typer.Option(help="HOST:PORT for /healthz and /metrics; default: [daemon].")] = None,
+    http: Annotated[str | None, typer.Option(help="HOST:PORT for /healthz and /metrics; default: daemon.http in the "
+                                                  "config.")] = None,
     log_level: Annotated[str | None, typer.Option(help="debug, info, warning or error.")] = None,
 ) -> None:
     """Run the monitor as a daemon on the live sources of the config (OPC UA, MQTT) until SIGTERM or Ctrl-C."""

@@ -123,7 +123,7 @@ _simple("return-to-service", "return_to_service", "Return an alarm to service.",
 def shelve_cmd(
     target: Annotated[str, typer.Argument(help=TARGET)],
     for_: Annotated[str | None, typer.Option("--for", help="How long, e.g. '2 h' or '30 min' (at most "
-                                                            "[alarms] shelve_max).")] = None,
+                                                            "alarms.shelve_max in the config).")] = None,
     until_clear: Annotated[bool, typer.Option("--until-clear", help="Shelve until the alarm next returns to "
                                                                    "normal (one-shot).")] = False,
     comment: Annotated[str, typer.Option("--comment", "-m", help="Why (required).")] = "",
