@@ -10,7 +10,7 @@ import dataclasses
 from datetime import UTC, datetime
 from typing import Any
 
-from spanwatch.connectors.history.queries import episodes_in_window
+from spanwatch.connectors.history.queries import episodes_in_window, hidden_raises
 from spanwatch.rules import kpi as K
 from spanwatch.rules.kpi import AlarmKpis, Episodes
 from spanwatch.rules.values import iso
@@ -20,8 +20,10 @@ from sqlalchemy.engine import Engine
 def load_episodes(engine: Engine, start: float, end: float, line_name: str | None = None) -> Episodes:
     """The episodes of the history ``engine`` active during ``[start, end)`` (epoch s), of one line if given."""
     rows = episodes_in_window(engine, start, end, line_name)
+    hidden = hidden_raises(engine, [int(r["id"]) for r in rows])
     return Episodes.of([r["alarm_key"] for r in rows], [r["kind"] for r in rows], [r["object_id"] for r in rows],
-                       [r["priority"] for r in rows], [r["raised_t"] for r in rows], [r["cleared_t"] for r in rows])
+                       [r["priority"] for r in rows], [r["raised_t"] for r in rows], [r["cleared_t"] for r in rows],
+                       [int(r["id"]) in hidden for r in rows])
 
 
 def parse_time(text: str) -> float:
@@ -59,7 +61,9 @@ def kpi_text(k: AlarmKpis, width: int = 80) -> str:
     th = k.thresholds
     ops = f"{k.operators} operator position" + ("s" if k.operators != 1 else "")
     out = [f"Alarm KPIs {_when(k.start)} to {_when(k.end)} ({_hours(k.end - k.start)})",
-           f"{ops}; annunciated raises {k.raises} (advisory {k.advisory_raises}, not counted)",
+           f"{ops}; annunciated raises {k.raises}",
+           f"not counted: {k.advisory_raises} advisory, {k.hidden_raises} raised while shelved, suppressed or "
+           "out of service",
            f"{'':30}{'measured':>12}{'acceptable':>12}{'manageable':>12}"]
 
     def row(name: str, value: str, good: str = "", ok: str = "") -> None:

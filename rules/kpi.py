@@ -25,7 +25,9 @@ What counts:
   during the window counts only for staleness.
 * **Advisory** alarms are not annunciated to an operator: they are left out of every operator metric (rates,
   floods, top contributors, chattering, fleeting, stale, priority distribution), and reported separately
-  (:attr:`AlarmKpis.advisory_raises`, and in :attr:`AlarmKpis.per_key`, the full inventory).
+  (:attr:`AlarmKpis.advisory_raises`, and in :attr:`AlarmKpis.per_key`, the full inventory). So are raises of
+  alarms that were shelved, suppressed by design or out of service at the time (:attr:`AlarmKpis.hidden_raises`):
+  the operator did not see them (ANSI/ISA-18.2-2016 counts annunciated alarms; from memory).
 * **Per operator**: the line's counts are divided by ``operators`` (the number of operator positions), as if
   the load were shared evenly; the flood thresholds apply to that per-operator rate.
 * **Slots**: 10-min (and 1-h) slots start at ``start``: slot ``i`` is ``[start + 600 i, start + 600 (i + 1))``;
@@ -94,12 +96,14 @@ class Episodes:
     priority: np.ndarray
     raised_t: np.ndarray
     cleared_t: np.ndarray
+    hidden: np.ndarray | None = None  # raised while shelved, suppressed or out of service (not annunciated)
 
     @classmethod
     def of(cls, key: Sequence[str], kind: Sequence[str], object_id: Sequence[str], priority: Sequence[str],
-           raised_t: Sequence[float], cleared_t: Sequence[float | None]) -> Episodes:
-        """Arrays from sequences (None in ``cleared_t`` = still active); refuses unequal lengths and unknown
-        priorities."""
+           raised_t: Sequence[float], cleared_t: Sequence[float | None],
+           hidden: Sequence[bool] | None = None) -> Episodes:
+        """Arrays from sequences (None in ``cleared_t`` = still active; ``hidden``: raised while shelved, suppressed
+        or out of service); refuses unequal lengths and unknown priorities."""
         cols = [np.asarray(list(c), dtype=object) for c in (key, kind, object_id, priority)]
         r = np.asarray(list(raised_t), dtype=float)
         c = np.asarray([np.nan if x is None else x for x in cleared_t], dtype=float)
@@ -108,7 +112,10 @@ class Episodes:
         bad = sorted({str(p) for p in cols[3]} - set(PRIORITIES))
         if bad:
             raise ValueError(f"episodes: priority expected one of {', '.join(PRIORITIES)}, got {bad[0]!r}")
-        return cls(*(a.astype(str) if len(a) else np.array([], dtype=str) for a in cols), r, c)
+        h = np.zeros(len(r), dtype=bool) if hidden is None else np.asarray(list(hidden), dtype=bool)
+        if len(h) != len(r):
+            raise ValueError("episodes: every column needs the same length")
+        return cls(*(a.astype(str) if len(a) else np.array([], dtype=str) for a in cols), r, c, h)
 
     def __len__(self) -> int:
         return len(self.raised_t)
@@ -183,6 +190,7 @@ class AlarmKpis:
     stale: tuple[StaleAlarm, ...]
     priorities: tuple[PriorityShare, ...]
     per_key: tuple[KeyCount, ...] = field(default=())  # every raise in the window, advisory included
+    hidden_raises: int = 0  # raised while shelved, suppressed by design or out of service: not annunciated
 
 
 def chattering_mask(keys: np.ndarray, raised_t: np.ndarray, count: int = 3, window: float = 60.0) -> np.ndarray:
@@ -293,7 +301,9 @@ def alarm_kpis(ep: Episodes, start: float, end: float, *, operators: int = 1,
         raise ValueError(f"operators: expected 1 or more, got {operators}")
     dur = end - start
     in_win = (ep.raised_t >= start) & (ep.raised_t < end)
-    annunciated = ep.priority != "advisory"
+    hidden = ep.hidden if ep.hidden is not None else np.zeros(len(ep), dtype=bool)
+    advisory = ep.priority == "advisory"
+    annunciated = ~advisory & ~hidden
     sel = in_win & annunciated
     r, keys = ep.raised_t[sel], ep.key[sel]
     n = int(sel.sum())
@@ -328,7 +338,8 @@ def alarm_kpis(ep: Episodes, start: float, end: float, *, operators: int = 1,
 
     return AlarmKpis(
         start=float(start), end=float(end), operators=operators, thresholds=th, raises=n,
-        advisory_raises=int((in_win & ~annunciated).sum()),
+        advisory_raises=int((in_win & advisory).sum()),
+        hidden_raises=int((in_win & hidden & ~advisory).sum()),
         slot_counts=tuple(int(x) for x in slots),
         avg_per_10min=n / operators / (dur / SLOT_S), max_per_10min=float(per_op.max()),
         share_slots_over_1=float(np.mean(per_op > PER_10MIN_ACCEPTABLE)),

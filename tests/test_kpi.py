@@ -249,3 +249,18 @@ def test_properties(times, length, durations, prios, keys, operators):
     assert k.chattering_raises <= k.raises and k.fleeting <= k.raises
     # the busiest slot holds at least its even share
     assert k.max_per_10min * len(k.slot_counts) >= k.raises / operators - 1e-9
+
+
+def test_raises_hidden_by_shelving_or_suppression_are_not_annunciated():
+    # The 13 raises of the flood example, of which 3 (the 2nd, 3rd and 4th) came while their alarms were shelved
+    # or suppressed: the operator saw 10 in the first 10 minutes, which is not "more than 10" (no flood;
+    # EEMUA 191 3rd ed. (2013) and ANSI/ISA-18.2-2016 count annunciated alarms; from memory).
+    base = flood_example()
+    hidden = [i in (1, 2, 3) for i in range(len(FLOOD_TIMES))]
+    ep = Episodes.of(base.key, base.kind, base.object_id, base.priority, base.raised_t,
+                     [float(c) for c in base.cleared_t], hidden)
+    k = alarm_kpis(ep, T0, T0 + HOUR)
+    assert k.raises == 10 and k.hidden_raises == 3 and k.advisory_raises == 0
+    assert k.floods == ()
+    assert k.slot_counts[0] == 9  # 12 raised in the first slot, 3 of them hidden
+    assert alarm_kpis(base, T0, T0 + HOUR).floods != ()  # the same raises all annunciated: a flood

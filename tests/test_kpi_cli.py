@@ -142,7 +142,8 @@ def test_text_report_fits_80_columns(db):
     assert max(len(line) for line in lines) <= 80
     text = res.stdout
     assert lines[0] == "Alarm KPIs 2026-03-02 06:00:00Z to 2026-03-02 07:00:00Z (1.0 h)"
-    assert lines[1].startswith("1 operator position; annunciated raises 16 (advisory 0")
+    assert lines[1] == "1 operator position; annunciated raises 16"
+    assert lines[2].startswith("not counted: 0 advisory, 0 raised while shelved")
     row = next(line for line in lines if line.startswith("alarms per 10 min, average"))
     assert row.split()[-3:] == ["2.67", "~1", "~2"]
     assert "largest: 2026-03-02 06:05:00Z to 06:13:30Z, 12 alarms" in text
@@ -183,3 +184,24 @@ def test_usage_errors_exit_2(db, args, message):
 def test_missing_database_exits_2(tmp_path):
     res = kpi("--db", str(tmp_path / "none.db"), "--since", SINCE, "--until", UNTIL)
     assert res.exit_code == 2 and "no such database" in res.stderr
+
+
+def test_a_raise_while_shelved_is_not_counted_as_annunciated(tmp_path):
+    """Replayed through spanwatch's own pipeline lifecycle: a shelved alarm's raise is recorded (episode, journal)
+    but the operator never saw it, so the KPIs leave it out of the rates (ANSI/ISA-18.2-2016 counts annunciated
+    alarms; from memory)."""
+    from spanwatch.rules.lifecycle import Lifecycle
+
+    path = tmp_path / "h.db"
+    h = History(sqlite_url(str(path)))
+    h.start_run(mode="daemon", line_name=LINE_A, config_file="a.toml", config_hash="ha", started_at=T0)
+    life = Lifecycle([TR_WARN.key, SLIP.key])
+    shelve = life.act(T0 + 10, SLIP.key, "shelve", user="op", comment="known", until=T0 + 3000)
+    h.record([], lifecycle=[shelve], states=dict(life.records))
+    for tr in transitions([(TR_WARN, 100, 200), (SLIP, 300, 400), (SLIP, 500, 600)]):
+        e = life.condition(tr.t, tr.key, tr.event)
+        h.record([tr], lifecycle=[e], states={tr.key: life.records[tr.key]})
+    h.finish_run(input_rows=[])
+    h.engine.dispose()
+    k = kpi_json(str(path))
+    assert k["raises"] == 1 and k["hidden_raises"] == 2

@@ -249,7 +249,7 @@ def episodes_in_window(engine: Engine, start: float, end: float, line_name: str 
     """Every episode active during ``[start, end)``: raised before ``end`` and cleared after ``start`` or not
     cleared; of the runs of ``line_name`` only if given. Oldest raise first, as plain dicts (alarm_key, kind,
     object_id, level, priority, raised_t, cleared_t — None while active)."""
-    q = (select(AlarmEpisode.alarm_key, AlarmEpisode.kind, AlarmEpisode.object_id, AlarmEpisode.level,
+    q = (select(AlarmEpisode.id, AlarmEpisode.alarm_key, AlarmEpisode.kind, AlarmEpisode.object_id, AlarmEpisode.level,
                 AlarmEpisode.priority, AlarmEpisode.raised_t, AlarmEpisode.cleared_t)
          .where(AlarmEpisode.raised_t < end,
                 or_(AlarmEpisode.cleared_t.is_(None), AlarmEpisode.cleared_t > start))
@@ -257,8 +257,26 @@ def episodes_in_window(engine: Engine, start: float, end: float, line_name: str 
     if line_name is not None:
         q = q.join(Run, Run.id == AlarmEpisode.run_id).where(Run.line_name == line_name)
     with Session(engine) as s:
-        return [{"alarm_key": k, "kind": kind, "object_id": o, "level": str(lv), "priority": str(p), "raised_t": r,
-                 "cleared_t": c} for k, kind, o, lv, p, r, c in s.execute(q).all()]
+        return [{"id": i, "alarm_key": k, "kind": kind, "object_id": o, "level": str(lv), "priority": str(p),
+                 "raised_t": r, "cleared_t": c} for i, k, kind, o, lv, p, r, c in s.execute(q).all()]
+
+
+HIDDEN_STATES = ("shelved", "suppressed", "out_of_service")
+
+
+def hidden_raises(engine: Engine, ids: list[int]) -> set[int]:
+    """The episodes among ``ids`` raised while their alarm was shelved, suppressed by design or out of service (the
+    state after their raise in ``alarm_actions``): recorded, never shown to the operator. Empty before the lifecycle."""
+    out: set[int] = set()
+    with Session(engine) as s:
+        if not ids or not inspect(s.connection()).has_table("alarm_actions"):
+            return out
+        for i in range(0, len(ids), 500):
+            part = ids[i:i + 500]
+            out.update(s.scalars(select(AlarmAction.episode_id).where(
+                AlarmAction.episode_id.in_(part), AlarmAction.action == "raise",
+                AlarmAction.state_after.in_(HIDDEN_STATES))))
+    return out
 
 
 def _values(cls: type[enum.StrEnum]) -> set[str]:
