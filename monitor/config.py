@@ -162,6 +162,8 @@ class RollerSection(Strict):
     covering: str = "steel"
     air_film_factor: Fraction = 1.0
     speed_tag: TagName | None = None
+    # the drive's fault bit or fault word (dimensionless; non-zero: the drive reports a fault); driven rollers only
+    fault_tag: TagName | None = None
     # speed above the web, as a fraction: a slow-down of 90 % to a machine-direction orienter's stretch of
     # about 7x (draw 6) (from memory)
     draw: Annotated[float, between(U.DIMENSIONLESS, -0.9, 10.0, low_included=True)] = 0.0

@@ -269,7 +269,7 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                 id=e.id, diameter=sec.diameter, wrap=sec.wrap, cof=sec.cof, roughness=sec.roughness,
                 driven=sec.driven, draw=sec.draw, safety_factor=sec.safety_factor,
                 air_film_factor=sec.air_film_factor, has_encoder=sec.speed_tag is not None,
-                runout_check=sec.runout_check)
+                runout_check=sec.runout_check, has_fault_tag=sec.fault_tag is not None)
         else:
             none = (0.0, 0.0)
             winders[e.id] = Winder(
@@ -405,6 +405,10 @@ def _check_tag_refs(cfg: LineConfig, tags: dict[str, TagInfo], elements: dict[st
     refs: list[tuple[str, str | None, str]] = [("line.speed_tag", cfg.line.speed_tag, "speed")]
     for i, r in enumerate(cfg.rollers):
         refs.append((f"rollers[{i}].speed_tag", r.speed_tag, "speed"))
+        refs.append((f"rollers[{i}].fault_tag", r.fault_tag, "flag"))
+        if r.fault_tag is not None and not r.driven:
+            err.add(f"rollers[{i}].fault_tag", f"expected a fault tag only on a driven roller (driven = true): "
+                                               f"{r.id!r} is an idler, got {r.fault_tag!r}")
     for i, w in enumerate(cfg.winders):
         refs += [(f"winders[{i}].diameter_tag", w.diameter_tag, "diameter"),
                  (f"winders[{i}].rpm_tag", w.rpm_tag, "rpm"),
@@ -488,6 +492,8 @@ def _signals(cfg: LineConfig, elements: dict[str, Element], zones: tuple[Zone, .
         sec = e.section
         if isinstance(sec, RollerSection) and sec.speed_tag is not None:
             out.append(speed_spec(f"speed/{e.id}", sec.speed_tag, sec.diameter))
+        if isinstance(sec, RollerSection) and sec.fault_tag is not None:
+            out.append(SignalSpec(f"drive_fault/{e.id}", sec.fault_tag))
     wsf = cfg.line.web_speed_from
     if wsf is not None:
         sec = elements[wsf].section

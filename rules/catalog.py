@@ -9,6 +9,7 @@ builds every check a line supports with :func:`checks_for`.
 from __future__ import annotations
 
 from spanwatch.rules.base import Check, CheckKind
+from spanwatch.rules.drivefault import DriveFaultCheck
 from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
 from spanwatch.rules.runout import RollerRunoutCheck, RunoutCheck
@@ -23,6 +24,7 @@ CHECK_CLASSES: tuple[CheckKind, ...] = (
     NoDriveCheck,
     SlipCheck,
     IdlerLagCheck,
+    DriveFaultCheck,
     DrawCheck,
     RollDiameterCheck,
     SpeedDiameterCheck,

@@ -61,6 +61,7 @@ class Roller:
     air_film_factor: float  # venting by grooves or covering
     has_encoder: bool  # a speed tag of its own
     runout_check: bool
+    has_fault_tag: bool = False  # a fault bit or word of its drive (signal ``drive_fault/<id>``)
 
 
 @dataclass(frozen=True)

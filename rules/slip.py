@@ -95,6 +95,7 @@ class SlipCheck:
         self.object_id = object_id
         self.speed = f"speed/{object_id}"
         self.inputs = (self.speed, "speed/web")
+        self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
         self.draw, self.min_speed = draw, min_speed
 
     @classmethod

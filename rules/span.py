@@ -124,6 +124,7 @@ class DrawCheck:
         self.object_id = object_id
         self.names = (f"tension/{zone_up}", f"tension/{object_id}", f"speed/{roller_up}", f"speed/{roller_down}")
         self.inputs = self.names
+        self.drives = (roller_up, roller_down)  # the drives that set its draw (a fault of either suppresses it)
         self.et, self.modulus_tol, self.ratio_tol = et, modulus_tol, ratio_tol
         self.t1_acc, self.t2_acc = t1_acc, t2_acc
         self.min_speed = min_speed

@@ -16,7 +16,12 @@ the alarms matching any ``suppress`` pattern are suppressed. Patterns are fnmatc
 2. a stale tag suppresses the other plausibility alarms of that tag (frozen, quality, range):
    one dropped tag raises one alarm, not both stale and frozen;
 3. any plausibility alarm of a tag suppresses the physics alarms whose check reads that tag
-   (a check's ``inputs`` are signal names; ``signal_tags`` says which tags each signal reads).
+   (a check's ``inputs`` are signal names; ``signal_tags`` says which tags each signal reads);
+4. a drive fault of a roller (``drive_fault``, :mod:`spanwatch.rules.drivefault`) suppresses the
+   alarms of every check that assumes that drive holds its speed or torque: the checks whose
+   ``drives`` attribute (a tuple of roller ids, optional on a check) names the roller, i.e. its
+   traction, no-drive and slip checks and the draw checks of the zones it bounds (ANSI/ISA-18.2-2016,
+   designed suppression based on the state of other equipment; from memory).
 
 Rules are tried in order (the derived ones first, then the configured ones); an alarm
 suppressed by several active alarms is reported with the first rule's reason.
@@ -30,12 +35,14 @@ from fnmatch import fnmatchcase
 
 from spanwatch.rules.alarms import AlarmPoint
 from spanwatch.rules.base import Check
+from spanwatch.rules.drivefault import DriveFaultCheck
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
 from spanwatch.rules.sourcehealth import SourceLostCheck
 
 PLAUSIBILITY_KINDS = (TagStaleCheck.kind, TagFrozenCheck.kind, TagQualityCheck.kind, TagRangeCheck.kind)
 STALE_KIND = TagStaleCheck.kind
 SOURCE_LOST_KIND = SourceLostCheck.kind
+DRIVE_FAULT_KIND = DriveFaultCheck.kind
 
 
 @dataclass(frozen=True)
@@ -59,7 +66,8 @@ def matches(pattern: str, point: AlarmPoint) -> bool:
 
 def derived_rules(checks: Iterable[Check], tag_sources: Mapping[str, str | None],
                   signal_tags: Mapping[str, tuple[str, ...]]) -> list[SuppressionRule]:
-    """The suppression rules that follow from the line: source lost > tag plausibility > physics.
+    """The suppression rules that follow from the line: source lost > tag plausibility > physics, then a
+    drive fault over the checks that assume its drive (``drives``).
 
     ``tag_sources``: tag name -> its live source (None: a recording). ``signal_tags``: signal
     name -> the tags it is computed from (``tag/<name>`` reads tag ``name`` and needs no entry).
@@ -94,6 +102,12 @@ def derived_rules(checks: Iterable[Check], tag_sources: Mapping[str, str | None]
             targets = tuple(readers[tag])
             for k in kinds:
                 out.append(SuppressionRule(f"{k}:{tag}", targets, f"tag {tag} implausible ({k})"))
+    for c in checks:
+        if c.kind == DRIVE_FAULT_KIND:
+            targets = tuple(f"{o.kind}:{o.object_id}" for o in checks
+                            if o.kind != DRIVE_FAULT_KIND and c.object_id in getattr(o, "drives", ()))
+            if targets:
+                out.append(SuppressionRule(f"{c.kind}:{c.object_id}", targets, f"drive of {c.object_id} faulted"))
     return out
 
 

@@ -138,6 +138,7 @@ class TractionCheck:
         self.t_down = f"tension/{zone_down}"
         self.roller_speed = roller_speed or "speed/web"
         self.inputs = (self.t_up, self.t_down, "speed/web", self.roller_speed)
+        self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
         self.mu, self.wrap, self.radius, self.sigma = mu, wrap, radius, sigma
         self.film_factor, self.sf, self.min_t = film_factor, safety_factor, min_drive_tension
         self.viscosity, self.air_model, self.convention, self.floor = viscosity, air_model, convention, floor
@@ -194,6 +195,7 @@ class NoDriveCheck:
         self.t_up = f"tension/{zone_up}"
         self.t_down = f"tension/{zone_down}"
         self.inputs = (self.t_up, self.t_down)
+        self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
         self.min_t = min_drive_tension
 
     @classmethod

@@ -139,7 +139,8 @@ class SimulatedLine:
             self.tension[i] = (self.et * (v2 - v1) + v1 * t_up) / v2
 
     def _map_tags(self) -> dict[str, tuple[str, str, float]]:
-        """tag -> (quantity, object, factor); quantity in speed_ref, speed, tension, diameter, rpm, length, core."""
+        """tag -> (quantity, object, factor); quantity in speed_ref, speed, tension, diameter, rpm, length, core,
+        drive_fault."""
         out: dict[str, tuple[str, str, float]] = {}
         cfg = self.line.config
         out[cfg.line.speed_tag] = ("speed_ref", "", 1.0)
@@ -148,6 +149,8 @@ class SimulatedLine:
             if isinstance(s, RollerSection) and s.speed_tag:
                 rot = self.line.tags[s.speed_tag].kind is not U.SPEED
                 out[s.speed_tag] = ("speed", el.id, 1.0 / (math.pi * s.diameter) if rot else 1.0)
+            if isinstance(s, RollerSection) and s.fault_tag:
+                out[s.fault_tag] = ("drive_fault", el.id, 1.0)
             if isinstance(s, WinderSection):
                 for tag, q in ((s.diameter_tag, "diameter"), (s.rpm_tag, "rpm"), (s.length_tag, "length"),
                                (s.core_change_tag, "core")):
@@ -337,6 +340,8 @@ class SimulatedLine:
             return self.count_u if obj == self.unwind.id else self.count_r
         if quantity == "core":
             return 1.0 if self.t < self.core_flag_until else 0.0
+        if quantity == "drive_fault":
+            return 1.0 if self._active("drive_fault", obj) is not None else 0.0
         raise KeyError(quantity)
 
     def _idler_speed(self, idler: str) -> float:

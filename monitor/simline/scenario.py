@@ -37,6 +37,8 @@ caliper_change            winder                      relative change of the eff
 stuck_sensor              tag                         (unused) the tag holds its value
 length_undercount         length tag                  share of length not counted, e.g. "3 %"
 tag_dropout               tag                         (unused) the tag stops updating
+drive_fault               driven roller (fault_tag)   (unused) its drive's fault bit reads 1; the plant
+                                                      is unchanged (pair it with cof_drop for a consequence)
 ========================  ==========================  ===============================================
 """
 
@@ -60,7 +62,7 @@ from spanwatch.monitor.config import (
 )
 
 FAULT_KINDS = ("cof_drop", "speed_ramp", "loadcell_drift", "out_of_round", "caliper_change", "stuck_sensor",
-               "length_undercount", "tag_dropout")
+               "length_undercount", "tag_dropout", "drive_fault")
 
 Speed = Annotated[float, BeforeValidator(lambda v: U.to_si(v, U.SPEED))]
 
@@ -106,7 +108,7 @@ class RollChange(Strict):
 
 class Fault(Strict):
     kind: Literal["cof_drop", "speed_ramp", "loadcell_drift", "out_of_round", "caliper_change", "stuck_sensor",
-                  "length_undercount", "tag_dropout"]
+                  "length_undercount", "tag_dropout", "drive_fault"]
     target: str = ""
     start: Duration
     end: Duration
