@@ -1,9 +1,10 @@
 """The check seam: every registered check kind keeps the contract the pipeline and the alarm engine rely on.
 
 A check kind is one class registered once in ``spanwatch.rules.catalog``. These tests hold every
-registered kind to the protocol (``spanwatch.rules.base.Check``) on the example line, with blocks
-of frames from the simulated line: it builds itself from the core line model, states its alarm
-defaults, and ``reset`` returns it to the state of a fresh object.
+registered kind to the protocol (``spanwatch.rules.base.Check``) on the example line (with a fault
+tag on each pull roll's drive, which the example itself does not have), with blocks of frames from
+the simulated line: it builds itself from the core line model, states its alarm defaults, and
+``reset`` returns it to the state of a fresh object.
 """
 
 from __future__ import annotations
@@ -24,14 +25,28 @@ CONFIG = ROOT / "config" / "quillmere-q2.toml"
 
 
 @pytest.fixture(scope="module")
-def line():
-    return load_line(CONFIG)
+def fault_config(tmp_path_factory) -> Path:
+    """The example line with a fault tag on the drives of pull_1 and pull_2 (the simulator serves them as 0)."""
+    text = CONFIG.read_text(encoding="utf-8")
+    for r in ("pull_1", "pull_2"):
+        old = f'speed_tag = "q2.{r}.speed"\n'
+        assert text.count(old) == 1, "the example config changed"
+        text = text.replace(old, f'{old}fault_tag = "q2.{r}.fault"\n')
+        text += f'\n[tags."q2.{r}.fault"]\nunit = ""\nsample_period = "100 ms"\n'
+    path = tmp_path_factory.mktemp("contract") / "line.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
 
 
 @pytest.fixture(scope="module")
-def blocks(line) -> list[Block]:
+def line(fault_config):
+    return load_line(fault_config)
+
+
+@pytest.fixture(scope="module")
+def blocks(line, fault_config) -> list[Block]:
     """Consecutive blocks (at most 10 s each) over 80 s of the line at 400 m/min, a roll change near the end."""
-    data = {"scenario": {"name": "contract", "config": str(CONFIG), "duration": "2 min", "seed": 3},
+    data = {"scenario": {"name": "contract", "config": str(fault_config), "duration": "2 min", "seed": 3},
             "speed": [{"at": "0 s", "to": "400 m/min"}],
             "roll_change": [{"at": "112 s", "winder": "rewind"}]}
     sc, cfg = parse_scenario(data, ROOT / "config" / "scenarios" / "contract.toml")
@@ -73,8 +88,11 @@ def test_the_example_line_gets_every_kind(line):
     checks = checks_for(line.model)
     # a recording has no live source; the same line read over OPC UA gets the source's own check
     assert {c.kind for c in checks} == set(CHECK_KINDS) - {"source_lost"}
+    # the example without fault tags gets no drive-fault check, and nothing else missing
+    plain = {c.kind for c in checks_for(load_line(CONFIG).model)}
+    assert plain == set(CHECK_KINDS) - {"source_lost", "drive_fault"}
     live = checks_for(load_line(ROOT / "config" / "quillmere-q2-opcua.toml").model)
-    assert {c.kind for c in live} == set(CHECK_KINDS)
+    assert {c.kind for c in live} == set(CHECK_KINDS) - {"drive_fault"}
     assert [c.object_id for c in live if c.kind == "source_lost"] == ["plc"]
     keys = [(c.kind, c.object_id) for c in checks]
     assert len(keys) == len(set(keys)), "one check per kind and object"
