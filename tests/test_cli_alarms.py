@@ -27,8 +27,9 @@ from typer.testing import CliRunner
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config" / "quillmere-q2.toml"
-COLUMNS = ["raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
-           "unit", "line_state", "run", "config_hash"]
+COLUMNS = ["id", "raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
+           "unit", "line_state", "run", "config_hash", "state", "first_out", "chattering", "cause", "consequence",
+           "corrective_action", "response_time"]
 DROPOUT_TAG = "q2.unwind.rpm"
 
 SCENARIO = f"""
@@ -145,6 +146,10 @@ def test_json_rows_are_complete_and_well_formed(rows):
         assert r["value"] is None or isinstance(r["value"], float)
         assert r["run"] == 1
         assert r["config_hash"]
+        # the lifecycle state it was left in by the replay (nobody acknowledges in a replay: ANSI/ISA-18.2-2016
+        # state B or D, unacknowledged; from memory) and the rationalization configured for it
+        assert r["state"] == ("unack" if r["cleared"] is None else "rtn_unack")
+        assert r["cause"] and r["corrective_action"] and r["response_time"] > 0
 
 
 def test_stale_alarm_matches_the_simulated_dropout(recording, rows):
