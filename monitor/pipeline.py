@@ -271,10 +271,10 @@ class Pipeline:
             if self.on_committed is not None and events else None
         if self.history is not None:
             self.history.record(transitions, lifecycle=events, states=self.states_of(events), after=after)
-        elif after is not None:
-            after()
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float(t[-1])))
+        elif after is not None:
+            after()
         if self.on_transition is not None:
             for tr in transitions:
                 self.on_transition(tr)
