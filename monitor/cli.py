@@ -624,7 +624,7 @@ def _show_alarm(episode_id: int, db: str, db_password: str | None, fmt: str, db_
     out = [f"alarm {d['id']}: {d['check']} {d['object']} {d['level']} ({d['priority']} priority)",
            f"  raised   {d['raised']}  value {fmt_value(d['value'], unit)}",
            f"  cleared  {d['cleared'] or 'active'}" + (f"  peak {fmt_value(d['peak'], unit)}" if d["cleared"] else ""),
-           f"  limit    {d['limit']:g} ({unit}); line state {d['line_state']}; run {d['run']}; "
+           f"  limit    {fmt_value(d['limit'], unit)}; line state {d['line_state']}; run {d['run']}; "
            f"config {str(d['config_hash'])[:12]}"]
     flags = [name for name in ("first_out", "chattering") if d.get(name)]
     if flags:

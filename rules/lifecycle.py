@@ -175,7 +175,7 @@ class LifecycleEvent:
 
 
 def _refuse(key: str, rec: Record, why: str) -> ActionRefused:
-    return ActionRefused(f"{key}: {why} (it is {STATE_TEXT[rec.state]})")
+    return ActionRefused(f"{key}: {why} (state: {STATE_TEXT[rec.state]})")
 
 
 def _revealed(rec: Record) -> Record:
