@@ -425,7 +425,8 @@ def alarms_cmd(
     """List alarms from a history database, with filters; or show one: spanwatch alarms show ID."""
     import csv
     import json
-    from datetime import datetime
+
+    from spanwatch.rules.values import parse_iso
 
     if what:
         if len(what) != 2 or what[0] != "show" or not what[1].isdigit():
@@ -447,17 +448,10 @@ def alarms_cmd(
     _one_of(level, [v.value for v in Level], "--level")
 
     def when(text: str | None, opt: str) -> float | None:
-        if text is None:
-            return None
         try:
-            dt = datetime.fromisoformat(text)
-        except ValueError:
-            err_console.print(f"{opt}: expected an ISO 8601 time such as 2026-03-02T06:00:00+01:00, got {text!r}")
-            raise typer.Exit(2) from None
-        if dt.tzinfo is None:
-            err_console.print(f"{opt}: expected a time with a UTC offset (e.g. +01:00 or Z), got {text!r}")
-            raise typer.Exit(2)
-        return dt.timestamp()
+            return parse_iso(text) if text is not None else None
+        except ValueError as exc:
+            fail(f"{opt}: {exc}")
 
     since_t, until_t = when(since, "--since"), when(until, "--until")
     url, _shown = _history_url(db, db_password, reading=True)
@@ -506,14 +500,15 @@ def kpi_cmd(
     import json
     import time
 
-    from spanwatch.monitor.kpireport import kpi_dict, kpi_text, load_episodes, parse_time
+    from spanwatch.monitor.kpireport import kpi_dict, kpi_text, load_episodes
     from spanwatch.rules.kpi import alarm_kpis
+    from spanwatch.rules.values import parse_iso
 
     _one_of(fmt, ("text", "json"), "--format")
 
     def when(text: str | None, opt: str, default: float) -> float:
         try:
-            return parse_time(text) if text is not None else default
+            return parse_iso(text) if text is not None else default
         except ValueError as exc:
             fail(f"{opt}: {exc}")
 
@@ -574,13 +569,13 @@ def _kept_alarm_points(db: str, db_password: str | None, line_name: str | None, 
     import time
 
     from spanwatch.connectors.history import config_at
-    from spanwatch.monitor.kpireport import parse_time
     from spanwatch.rules.alarms import AlarmPoint
+    from spanwatch.rules.values import parse_iso
 
     if not line_name:
         fail("--line: with --db, name the line (spanwatch alarms lists runs and their lines)")
     try:
-        t = parse_time(at) if at is not None else time.time()
+        t = parse_iso(at) if at is not None else time.time()
     except ValueError as exc:
         fail(f"--at: {exc}")
     url, shown = _history_url(db, db_password, reading=True)

@@ -8,7 +8,6 @@ is not running, or far behind): the request stays queued and is carried out when
 """
 
 
-import getpass
 from pathlib import Path
 from typing import Annotated
 
@@ -29,13 +28,6 @@ TARGET = "The alarm: its id (as spanwatch alarms lists it), or kind:object[:leve
 USER = "Who does it (default: your login name)."
 
 
-def _login() -> str:
-    try:
-        return getpass.getuser()
-    except Exception:
-        return ""
-
-
 def _send(action: str, target: str, *, user: str | None, comment: str, until: float | None, one_shot: bool,
           config: Path | None, db: str | None, db_password: str | None, line: str | None, wait: float,
           db_timeout: float) -> None:
@@ -44,13 +36,13 @@ def _send(action: str, target: str, *, user: str | None, comment: str, until: fl
     from spanwatch.connectors.history.database import make_engine
     from spanwatch.connectors.history.requests import submit, wait_answer
     from spanwatch.connectors.history.schema import upgrade
-    from spanwatch.monitor.operate import NoLine, line_for, parse_target
+    from spanwatch.monitor.operate import NoLine, line_for, login_name, parse_target
 
     try:
         episode_id, key = parse_target(target)
     except ValueError as exc:
         fail(f"TARGET: {exc}")
-    who = (user if user is not None else _login()).strip()
+    who = (user if user is not None else login_name()).strip()
     if not who:
         fail("--user: expected the name of who does it, got nothing")
     ln = open_line(config) if config is not None else None

@@ -30,6 +30,7 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from prometheus_client import CollectorRegistry, generate_latest
 from spanwatch.connectors.history import History
@@ -47,6 +48,9 @@ from spanwatch.monitor.sources import build_connectors
 from spanwatch.rules.alarms import AlarmEngine, Transition
 from spanwatch.rules.lifecycle import Lifecycle, LifecycleEvent, Record
 from spanwatch.rules.samples import SampleBatch
+
+if TYPE_CHECKING:
+    from spanwatch.connectors.mqtt import ActionMessage, MqttActionListener
 
 log = logging.getLogger("spanwatch.daemon")
 
@@ -330,19 +334,16 @@ class Daemon:
                 out.append(listener)
         return out
 
-    def _mqtt_answer(self, listener: object, msg: object) -> None:
+    def _mqtt_answer(self, listener: MqttActionListener, msg: ActionMessage) -> None:
         """Carry out an action that came over MQTT (on the event loop) and answer on the result topic."""
-        target = str(msg.alarm)  # type: ignore[attr-defined]
+        target = msg.alarm
         if target.isdigit():
             target = self.actions.key_of_episode(int(target)) or f"episode {target}"
-        until = msg.until  # type: ignore[attr-defined]
-        out = self.act(target, msg.action.value, user=msg.user, comment=msg.comment or "",  # type: ignore[attr-defined]
-                       until=None if until is None or until == float("inf") else until,
-                       one_shot=bool(msg.one_shot))  # type: ignore[attr-defined]
-        log.info("mqtt action by %s: %s %s: %s: %s", msg.user, msg.action.value, target,  # type: ignore[attr-defined]
-                 out.status, out.answer)
-        states = {e.key: e.after.value for e in out.events}
-        listener.reply(msg, out.status == "applied", out.answer, state=states)  # type: ignore[attr-defined]
+        until = None if msg.until is None or msg.until == float("inf") else msg.until
+        out = self.act(target, msg.action.value, user=msg.user, comment=msg.comment or "", until=until,
+                       one_shot=msg.one_shot)
+        log.info("mqtt action by %s: %s %s: %s: %s", msg.user, msg.action.value, target, out.status, out.answer)
+        listener.reply(msg, out.status == "applied", out.answer, state={e.key: e.after.value for e in out.events})
 
     # reasons a sample was not used as it should have been (malformed payloads are counted by the connectors)
     TROUBLE = ("out of order", "duplicate timestamp", "late", "future time", "malformed", "unknown tag")
@@ -488,7 +489,7 @@ def restore_lifecycle(lifecycle: Lifecycle, states: dict[str, Record], engine: A
         active = engine.state[key].active
         if rec.active != active:
             rec = replace(rec, active=active, acked=rec.acked and not active)
-        lifecycle.records[key] = rec
+        lifecycle.set(key, rec)
         n += 1
     return n
 

@@ -80,14 +80,10 @@ def config_text(cfg: LineConfig, points: list[Any] | None = None) -> str:
 
 def remember_config(history: Any, line: Any, points: list[Any]) -> None:
     """Save the line's config and its alarm points in the history once per version (who: this process's login)."""
-    import getpass
+    from spanwatch.monitor.operate import login_name
 
-    try:
-        who = getpass.getuser()
-    except Exception:
-        who = ""
     history.save_config_version(line_name=line.name, config_hash=line.config_hash, config_file=line.file,
-                                content=config_text(line.config, points), saved_by=who)
+                                content=config_text(line.config, points), saved_by=login_name())
 
 
 def inline_secrets(cfg: LineConfig) -> list[str]:

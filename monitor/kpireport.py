@@ -26,21 +26,6 @@ def load_episodes(engine: Engine, start: float, end: float, line_name: str | Non
                        [int(r["id"]) in hidden for r in rows])
 
 
-def parse_time(text: str) -> float:
-    """An ISO 8601 time with a UTC offset -> epoch s; ValueError says what was expected.
-
-    >>> parse_time("2026-03-02T06:00:00+01:00")
-    1772427600.0
-    """
-    try:
-        dt = datetime.fromisoformat(text)
-    except ValueError:
-        raise ValueError(f"expected an ISO 8601 time such as 2026-03-02T06:00:00+01:00, got {text!r}") from None
-    if dt.tzinfo is None:
-        raise ValueError(f"expected a time with a UTC offset (e.g. +01:00 or Z), got {text!r}")
-    return dt.timestamp()
-
-
 def _when(t: float) -> str:
     """Epoch s -> ``2026-03-02 06:05:00Z``."""
     return datetime.fromtimestamp(t, UTC).strftime("%Y-%m-%d %H:%M:%SZ")

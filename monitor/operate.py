@@ -101,20 +101,12 @@ class ActionInbox:
         self.last_error = ""
 
     def poll(self) -> list[Pending]:
-        from spanwatch.connectors.history.models import AlarmEpisode
         from spanwatch.connectors.history.requests import pending
-        from sqlalchemy import select
-        from sqlalchemy.orm import Session
 
         try:
             reqs = pending(self.engine, self.line_name, after_id=self.after)
             out = []
-            ids = [r.episode_id for r in reqs if r.episode_id is not None]
-            key_of: dict[int, str] = {}
-            if ids:
-                with Session(self.engine) as s:
-                    key_of = dict(s.execute(select(AlarmEpisode.id, AlarmEpisode.alarm_key)
-                                            .where(AlarmEpisode.id.in_(ids))).tuples().all())
+            key_of = self._keys_of([r.episode_id for r in reqs if r.episode_id is not None])
         except Exception as exc:  # the database unavailable: try again at the next poll
             self.errors += 1
             self.last_error = f"{type(exc).__name__}: {exc}"
@@ -126,16 +118,23 @@ class ActionInbox:
             out.append(Pending(r.id, target, r.action, r.user, r.comment or "", r.until, bool(r.one_shot)))
         return out
 
-    def key_of_episode(self, episode_id: int) -> str | None:
-        """The alarm key of an episode (an action that names the alarm by its id), None when unknown."""
+    def _keys_of(self, episode_ids: list[int]) -> dict[int, str]:
+        """Episode id -> its alarm key, for the ids the history has."""
         from spanwatch.connectors.history.models import AlarmEpisode
         from sqlalchemy import select
         from sqlalchemy.orm import Session
 
+        if not episode_ids:
+            return {}
+        with Session(self.engine) as s:
+            return dict(s.execute(select(AlarmEpisode.id, AlarmEpisode.alarm_key)
+                                  .where(AlarmEpisode.id.in_(episode_ids))).tuples().all())
+
+    def key_of_episode(self, episode_id: int) -> str | None:
+        """The alarm key of an episode (an action that names the alarm by its id), None when unknown."""
         try:
-            with Session(self.engine) as s:
-                return s.scalar(select(AlarmEpisode.alarm_key).where(AlarmEpisode.id == episode_id))
-        except Exception:
+            return self._keys_of([episode_id]).get(episode_id)
+        except Exception:  # the database unavailable: the action is refused as naming no alarm
             return None
 
     def close(self) -> None:
@@ -143,6 +142,16 @@ class ActionInbox:
 
 
 # --- the operator's side: send a request, wait for the daemon's answer -------------------------------------------
+
+
+def login_name() -> str:
+    """Who runs this process (the default user of an operator's action, who saved a config), or "" if unknown."""
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except Exception:  # no user name in the environment or the password database
+        return ""
 
 
 class NoLine(ValueError):

@@ -274,6 +274,7 @@ class Lifecycle:
         self.records: dict[str, Record] = {k: Record() for k in keys}
         self.latched = frozenset(latched)
         self.shelve_max = shelve_max
+        self._shelved: set[str] = set()  # keys with a shelve, so that expire() looks at those only
 
     def _do(self, t: float, key: str, action: Action, *, user: str = "", comment: str = "",
             until: float | None = None, request: int | None = None) -> LifecycleEvent:
@@ -281,9 +282,17 @@ class Lifecycle:
         if rec is None:
             raise ActionRefused(f"{key}: no such alarm on this line")
         new = apply(rec, action, key=key, t=t, latched=key in self.latched, user=user, comment=comment, until=until)
-        self.records[key] = new
+        self.set(key, new)
         return LifecycleEvent(t=t, key=key, action=action, before=rec.state, after=new.state, user=user,
                               comment=comment, until=until, request=request)
+
+    def set(self, key: str, rec: Record) -> None:
+        """Put ``rec`` as the record of ``key`` (an action's result, or one restored from the history)."""
+        self.records[key] = rec
+        if rec.shelved:
+            self._shelved.add(key)
+        else:
+            self._shelved.discard(key)
 
     def condition(self, t: float, key: str, event: str) -> LifecycleEvent | None:
         """A raise or clear from the condition engine (None for a key this lifecycle does not have)."""
@@ -308,7 +317,7 @@ class Lifecycle:
 
     def expire(self, t: float) -> list[LifecycleEvent]:
         """End every timed shelve whose time has run out at ``t``."""
-        due = [k for k, r in self.records.items() if r.shelved_until is not None and r.shelved_until <= t]
+        due = sorted(k for k in self._shelved if self.records[k].shelved_until <= t)  # type: ignore[operator]
         return [self._do(t, k, Action.SHELVE_EXPIRED) for k in due]
 
     def suppress(self, t: float, suppressed: dict[str, str]) -> list[LifecycleEvent]:

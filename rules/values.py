@@ -24,3 +24,18 @@ def iso(t: float | None) -> str:
     if t is None:
         return ""
     return datetime.fromtimestamp(t, UTC).isoformat(timespec="milliseconds")
+
+
+def parse_iso(text: str) -> float:
+    """An ISO 8601 time with a UTC offset -> epoch s; ValueError says what was expected.
+
+    >>> parse_iso("2026-03-02T06:00:00+01:00")
+    1772427600.0
+    """
+    try:
+        dt = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(f"expected an ISO 8601 time such as 2026-03-02T06:00:00+01:00, got {text!r}") from None
+    if dt.tzinfo is None:
+        raise ValueError(f"expected a time with a UTC offset (e.g. +01:00 or Z), got {text!r}")
+    return dt.timestamp()

@@ -66,12 +66,11 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from paho.mqtt.subscribeoptions import SubscribeOptions
-from spanwatch.connectors.mqtt.client import describe, log, new_client, refusal
+from spanwatch.connectors.mqtt.client import background_client, describe, log, refusal
 from spanwatch.connectors.mqtt.messages import stamp
 from spanwatch.connectors.mqtt.settings import MqttSettings
 from spanwatch.connectors.mqtt.topics import check_filter
 from spanwatch.connectors.ratelog import RateLimitedLog
-from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.rules.lifecycle import OPERATOR_ACTIONS, Action
 
 RESULT_VERSION = 1
@@ -238,21 +237,12 @@ class MqttActionListener:
 
     def start(self) -> None:
         """Connect and subscribe in the background; never blocks (``state`` turns ``connected`` once subscribed)."""
-        s = self.settings
-        try:
-            password = resolve_secret(s.password)
-        except SecretError as exc:
-            self.last_error = f"password: {exc}"
-            log.error("mqtt action listener: %s; operators' actions will not be received", self.last_error)
+        client, error, self._secrets = background_client(
+            self.settings, self.client_id, who="mqtt action listener",
+            without="operators' actions will not be received", clean=True)
+        if client is None:
+            self.last_error = error
             return
-        self._secrets = (password, s.password)
-        try:
-            client = new_client(s, self.client_id, password, clean=True, reconnect_on_failure=True)
-        except Exception as exc:  # TLS files that cannot be read, ...
-            self.last_error = redact(f"cannot set up the client: {describe(exc)}", *self._secrets)
-            log.error("mqtt action listener: %s; operators' actions will not be received", self.last_error)
-            return
-        client.reconnect_delay_set(s.reconnect_min, s.reconnect_max)  # type: ignore[arg-type]
         client.on_connect = self._on_connect
         client.on_subscribe = self._on_subscribe
         client.on_disconnect = self._on_disconnect

@@ -37,6 +37,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 from spanwatch.connectors.mqtt.settings import MqttSettings
+from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 
 log = logging.getLogger("spanwatch.mqtt")
 
@@ -91,6 +92,32 @@ def new_client(settings: MqttSettings, client_id: str, password: str | None, *, 
     client.connect_async(settings.host, settings.port, max(1, round(settings.keepalive)),
                          clean_start=clean if v5 else FIRST_ONLY, properties=props)
     return client
+
+
+def background_client(settings: MqttSettings, client_id: str, *, who: str, without: str, clean: bool | int,
+                      max_queued: int = 0) -> tuple[mqtt.Client | None, str, tuple[str | None, ...]]:
+    """A client that paho's own loop keeps connected (the alarm publisher, the action listener), or None.
+
+    Returns ``(client, error, secrets)``: the client (None when its password reference cannot be resolved or its
+    TLS files cannot be read: ``error`` says which, once in the log as "``who``: error; ``without``"), and the
+    secrets to hide in later messages.
+    """
+    try:
+        password = resolve_secret(settings.password)
+    except SecretError as exc:
+        error = f"password: {exc}"
+        log.error("%s: %s; %s", who, error, without)
+        return None, error, (settings.password,)
+    secrets = (password, settings.password)
+    try:
+        client = new_client(settings, client_id, password, clean=clean, reconnect_on_failure=True,
+                            max_queued=max_queued)
+    except Exception as exc:  # TLS files that cannot be read, ...
+        error = redact(f"cannot set up the client: {describe(exc)}", *secrets)
+        log.error("%s: %s; %s", who, error, without)
+        return None, error, secrets
+    client.reconnect_delay_set(settings.reconnect_min, settings.reconnect_max)  # type: ignore[arg-type]
+    return client, "", secrets
 
 
 class NetworkThread:

@@ -26,7 +26,7 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.enums import MQTTErrorCode
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
-from spanwatch.connectors.mqtt.client import FIRST_ONLY, describe, log, new_client, refusal
+from spanwatch.connectors.mqtt.client import FIRST_ONLY, background_client, describe, log, refusal
 from spanwatch.connectors.mqtt.messages import (
     CONDITION_EVENTS,
     alarm_message,
@@ -35,7 +35,6 @@ from spanwatch.connectors.mqtt.messages import (
     transition_message,
 )
 from spanwatch.connectors.mqtt.settings import MqttSettings
-from spanwatch.connectors.secrets import SecretError, redact, resolve_secret
 from spanwatch.rules.alarms import AlarmPoint, Transition
 from spanwatch.rules.lifecycle import Action, AlarmState, LifecycleEvent, Record
 
@@ -79,21 +78,13 @@ class MqttAlarmPublisher:
     def start(self, active: list[AlarmPoint] | None = None) -> None:
         """Connect in the background and publish the (empty or given) active list; never blocks."""
         s = self.settings
-        try:
-            password = resolve_secret(s.password)
-        except SecretError as exc:
-            self.last_error = f"password: {exc}"
-            log.error("mqtt alarm publisher: %s; alarms will not be published", self.last_error)
+        # clean_start: the first connection only; paho's own reconnections resume the session
+        client, error, self._secrets = background_client(
+            s, self.client_id, who="mqtt alarm publisher", without="alarms will not be published",
+            clean=FIRST_ONLY if s.clean_start else False, max_queued=self.max_queued)
+        if client is None:
+            self.last_error = error
             return
-        self._secrets = (password, s.password)
-        try:  # clean_start: the first connection only; paho's own reconnections resume the session
-            client = new_client(s, self.client_id, password, clean=FIRST_ONLY if s.clean_start else False,
-                                reconnect_on_failure=True, max_queued=self.max_queued)
-        except Exception as exc:  # TLS files that cannot be read, ...
-            self.last_error = redact(f"cannot set up the client: {describe(exc)}", *self._secrets)
-            log.error("mqtt alarm publisher: %s; alarms will not be published", self.last_error)
-            return
-        client.reconnect_delay_set(s.reconnect_min, s.reconnect_max)  # type: ignore[arg-type]
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
         client.on_publish = self._on_publish
