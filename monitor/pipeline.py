@@ -247,6 +247,7 @@ class Pipeline:
     def _evaluate(self, block: Block) -> list[Transition]:
         t, frames, signals = block.t, block.tags, block.signals
         results: dict[tuple[str, str], CheckResult] = {}
+        block.results = results
         for c in self.checks:
             results[(c.kind, c.object_id)] = c.update(block)
         keys = list(results)

@@ -124,6 +124,9 @@ class Block:
     tags: TagFrames
     roll_start: dict[str, BoolArray] = field(default_factory=dict)
     roll_settling: dict[str, BoolArray] = field(default_factory=dict)
+    results: dict[tuple[str, str], CheckResult] = field(default_factory=dict)
+    """The results of this block's checks so far, by (kind, object), filled in catalog order: a check that
+    reads another check's residual (a drift detector) is registered after it and finds it here."""
 
     @property
     def n(self) -> int:
@@ -219,6 +222,12 @@ class Check(Protocol):
     def update(self, block: Block) -> CheckResult: ...
 
     def reset(self) -> None: ...
+
+
+def blames_of(check: Check) -> tuple[str, ...]:
+    """The measured things a user can go and look at when ``check`` alarms: its ``blames`` attribute where
+    it has one (a draw check names its zone, the zone's tension tag and the two rollers), else its object."""
+    return tuple(getattr(check, "blames", None) or (check.object_id,))
 
 
 class CheckKind(Protocol):
