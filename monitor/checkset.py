@@ -16,7 +16,7 @@ from dataclasses import replace
 from spanwatch.monitor.config import AlarmOverride, ConfigError
 from spanwatch.monitor.line import Line
 from spanwatch.rules.alarms import LEVELS, AlarmPoint, ChatterSettings
-from spanwatch.rules.base import AlarmSettings, Check
+from spanwatch.rules.base import AlarmSettings, Check, blames_of
 from spanwatch.rules.catalog import CHECK_KINDS, checks_for
 from spanwatch.rules.suppression import SuppressionRule, SuppressionRules, derived_rules, matches
 
@@ -73,7 +73,8 @@ def alarm_points(line: Line, checks: list[Check]) -> list[AlarmPoint]:
                 kind=c.kind, object_id=c.object_id, level=level, limit=float(limit), direction=d.direction,
                 deadband=s.deadband, on_delay=s.on_delay, off_delay=s.off_delay,
                 priority=s.level_priority(level), unit=d.unit, cause=s.cause, consequence=s.consequence,
-                action=s.action, response_time=s.response_time, latched=s.latched))
+                action=s.action, response_time=s.response_time, latched=s.latched, blames=blames_of(c),
+                detail=tuple(getattr(c, "detail", ()))))
     if order:
         items = list(order.items())
         raise ConfigError(line.file, *items[0], more=items[1:])

@@ -624,6 +624,16 @@ def _show_alarm(episode_id: int, db: str, db_password: str | None, fmt: str, db_
     flags = [name for name in ("first_out", "chattering") if d.get(name)]
     if flags:
         out.append("  marked   " + ", ".join(f.replace("_", "-") for f in flags))
+    if d.get("blames"):
+        out += textwrap.wrap("look at  " + ", ".join(d["blames"]), 78, initial_indent="  ", subsequent_indent=" " * 11)
+    if d["check"] == "drift" and d.get("detail"):
+        from spanwatch.monitor.present import drift_text
+
+        det = d["detail"]
+        out += textwrap.wrap("drift    " + drift_text(str(d["object"]), det, now=float(d["raised_t"])), 78,
+                             initial_indent="  ", subsequent_indent=" " * 11)
+        if det.get("change_time") is not None:
+            out.append(f"  changed  about {_short(iso_or(float(det['change_time'])))} (estimate)")
     for label, key in (("cause", "cause"), ("if ignored", "consequence"), ("do", "corrective_action")):
         if d.get(key):
             out += textwrap.wrap(str(d[key]), 78, initial_indent=f"  {label + ':':12}", subsequent_indent=" " * 14)

@@ -22,7 +22,7 @@ import tomllib
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, BeforeValidator, Field, ValidationError, model_validator
+from pydantic import AfterValidator, BeforeValidator, Field, ValidationError, field_validator, model_validator
 from spanwatch.monitor import units as U
 from spanwatch.monitor.schema import (
     ID_PATTERN,
@@ -395,6 +395,60 @@ class DaemonSection(Strict):
     log_level: Literal["debug", "info", "warning", "error"] = "info"
 
 
+DRIFT_DETECTORS = ("cusum", "ewma", "adwin", "page_hinkley")
+DriftDetector = Literal["cusum", "ewma", "adwin", "page_hinkley"]
+
+
+class DriftResidualSection(Strict):
+    """Overrides for one residual stream (``[drift.residuals.<name>]``, names as ``spanwatch check-config`` lists)."""
+
+    enabled: bool | None = None
+    detector: DriftDetector | None = None
+    # the shift to detect, in sigmas of the residual's batch means in good running
+    shift: Annotated[float, between(U.DIMENSIONLESS, 0.1, 10.0, low_included=True)] | None = None
+    sigma_floor: Annotated[float, between(U.DIMENSIONLESS, 0.0, 1e6, low_included=True)] | None = None
+
+
+class DriftSection(Strict):
+    """Drift detection on the physics checks' residuals (see :mod:`spanwatch.rules.driftcheck`).
+
+    Configured in the engineer's terms: the ``shift`` to detect (sigmas) and the acceptable
+    ``false_alarm_interval`` of the whole line (spread over its drift detectors); the detector
+    parameters follow from published design rules (:mod:`spanwatch.rules.drift.design`).
+    """
+
+    enabled: bool = True
+    detector: DriftDetector = "cusum"
+    # batch means of this length: the 20-50 Hz residuals are strongly autocorrelated
+    period: Annotated[float, between(U.TIME, 1.0, 600.0, low_included=True)] = 10.0
+    # good running learnt as each baseline (at least 20 batches)
+    learn: Annotated[float, between(U.TIME, 60.0, 86400.0, low_included=True)] = 600.0
+    shift: Annotated[float, between(U.DIMENSIONLESS, 0.1, 10.0, low_included=True)] = 1.0
+    false_alarm_interval: Annotated[float, between(U.TIME, 3600.0, 100 * 365 * 86400.0, low_included=True)] = (
+        90 * 86400.0)
+    # a line speed more than this share away from the current operating point is a new one (its own baseline)
+    speed_band: Annotated[float, between(U.DIMENSIONLESS, 0.01, 1.0, low_included=True)] = 0.1
+    residuals: dict[str, DriftResidualSection] = Field(default_factory=dict)
+
+    @field_validator("residuals")
+    @classmethod
+    def _known_residuals(cls, v: dict[str, DriftResidualSection]) -> dict[str, DriftResidualSection]:
+        from spanwatch.rules.driftcheck import RESIDUALS
+
+        known = [r.name for r in RESIDUALS]
+        for name in v:
+            if name not in known:
+                raise ValueError(f"expected residual names among {', '.join(known)}, got {name!r}")
+        return v
+
+    @model_validator(mode="after")
+    def _enough_batches(self) -> DriftSection:
+        if self.learn < 20 * self.period:
+            raise ValueError(f"expected learn at least 20 periods ({20 * self.period:g} s) so a baseline has 20 "
+                             f"batch means, got learn {self.learn:g} s with period {self.period:g} s")
+        return self
+
+
 class LineConfig(Strict):
     """The whole file."""
 
@@ -408,6 +462,7 @@ class LineConfig(Strict):
     sources: dict[Ident, Source] = Field(default_factory=dict)
     daemon: DaemonSection = Field(default_factory=DaemonSection)
     alarms: AlarmsSection = Field(default_factory=AlarmsSection)
+    drift: DriftSection = Field(default_factory=DriftSection)
 
 
 # --- loading --------------------------------------------------------------------------

@@ -25,7 +25,7 @@ from spanwatch.monitor.config import (
     load_config,
 )
 from spanwatch.rules.airfilm import air_viscosity, combined_roughness, effective_cof
-from spanwatch.rules.linemodel import LineModel, LineSettings, Material, Roller, Tag, Winder, Zone
+from spanwatch.rules.linemodel import DriftSettings, LineModel, LineSettings, Material, Roller, Tag, Winder, Zone
 from spanwatch.rules.traction import capstan_ratio_limit, traction_utilisation
 from spanwatch.rules.woundroll import taper_tension
 
@@ -289,7 +289,16 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                                   stale_after=t.stale_after, frozen_after=t.frozen_after,
                                   frozen_tolerance=t.frozen_tolerance, source=source_of.get(n))
               for n, t in tags.items()},
-        signals=frozenset({s.name for s in signals} | computed), sources=tuple(cfg.sources))
+        signals=frozenset({s.name for s in signals} | computed), sources=tuple(cfg.sources),
+        drift=_drift(cfg))
+
+
+def _drift(cfg: LineConfig) -> DriftSettings:
+    """The ``[drift]`` section as the core's settings (SI; per-residual overrides without unset keys)."""
+    d = cfg.drift
+    return DriftSettings(enabled=d.enabled, detector=d.detector, period=d.period, learn=d.learn, shift=d.shift,
+                         false_alarm_interval=d.false_alarm_interval, speed_band=d.speed_band,
+                         residuals={k: r.model_dump(exclude_none=True) for k, r in d.residuals.items()})
 
 
 class _Errors:

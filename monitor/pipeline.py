@@ -28,7 +28,8 @@ from spanwatch.monitor.signals import SignalDeriver
 from spanwatch.monitor.watermarks import Watermarks
 from spanwatch.rules.alarms import AlarmEngine, Transition
 from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason, Signal
-from spanwatch.rules.lifecycle import Lifecycle, LifecycleEvent
+from spanwatch.rules.driftcheck import DriftCheck
+from spanwatch.rules.lifecycle import Action, Lifecycle, LifecycleEvent
 from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
 from spanwatch.rules.samples import SampleBatch
 from spanwatch.rules.values import iso
@@ -99,6 +100,8 @@ class Pipeline:
         self.history = history
         self.on_transition = on_transition
         self.context = ContextRecorder(lw.frame_rate) if context else None
+        self._drift = [c for c in self.checks if isinstance(c, DriftCheck)]
+        self._drift_by_key = {f"drift:{c.object_id}": c for c in self._drift}
         self._inputs_of = {(c.kind, c.object_id): (c.inputs or (f"tag/{c.object_id}",)) for c in self.checks}
         self.scale = np.array([line.tags[n].scale for n in self.names])
         self.offset = np.array([line.tags[n].offset for n in self.names])
@@ -248,6 +251,8 @@ class Pipeline:
         t, frames, signals = block.t, block.tags, block.signals
         results: dict[tuple[str, str], CheckResult] = {}
         block.results = results
+        if self._drift:
+            self._hold_drift_learning()
         for c in self.checks:
             results[(c.kind, c.object_id)] = c.update(block)
         keys = list(results)
@@ -285,6 +290,16 @@ class Pipeline:
 
     # --- the lifecycle ---------------------------------------------------------------------
 
+    def _hold_drift_learning(self) -> None:
+        """A drift detector learns nothing while an alarm (other than a drift) stands on a thing it blames: a
+        baseline is never learnt while a fault is present."""
+        faulty: set[str] = set()
+        for p in self.points:
+            if p.kind != "drift" and self.engine.state[p.key].active:
+                faulty.update(p.blames or (p.object_id,))
+        for c in self._drift:
+            c.hold = bool(faulty.intersection(c.blames))
+
     def follow(self, transitions: list[Transition]) -> list[LifecycleEvent]:
         """The lifecycle's changes from the condition engine's raises and clears, in time order, each followed by
         the suppression by design that the new set of abnormal conditions calls for."""
@@ -306,7 +321,14 @@ class Pipeline:
         return {e.key: self.lifecycle.records[e.key] for e in events}
 
     def record_lifecycle(self, events: list[LifecycleEvent], answers: list[object] | None = None) -> None:
-        """Write lifecycle changes that did not come with a block (operator actions, shelves expiring)."""
+        """Write lifecycle changes that did not come with a block (operator actions, shelves expiring).
+
+        An acknowledged drift is accepted as the new normal: its detector learns its baseline again."""
+        for e in events:
+            if e.action is Action.ACK and e.key.startswith("drift:"):
+                check = self._drift_by_key.get(e.key.rsplit(":", 1)[0])
+                if check is not None:
+                    check.relearn()
         after = functools.partial(self.on_committed, events, []) if self.on_committed is not None and events else None
         if self.history is not None and (events or answers):
             self.history.record([], lifecycle=events, states=self.states_of(events), answers=answers or [],

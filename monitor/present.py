@@ -94,6 +94,29 @@ def lifecycle_line(e: LifecycleEvent, t0: float) -> str:
     return text if len(text) <= 79 else text[:76] + "..."
 
 
+def drift_text(object_id: str, detail: dict[str, float | None], now: float | None = None) -> str:
+    """What a drift alarm carries, in its residual's unit: the estimated change point and the size of the change
+    against the baseline it was learnt with.
+
+    >>> drift_text("draw.s5", {"change_time": 100.0, "shift": 3.2, "mean": 0.5, "sigma": 1.1}, now=400.0)
+    'draw residual moved by 3.200 N/m (baseline 0.500 +- 1.100 N/m), since about 5 min before'
+    """
+    from spanwatch.rules.driftcheck import residual_of
+
+    r = residual_of(object_id)
+    unit = r.unit if r is not None else ""
+    name = (r.name if r is not None else object_id).replace(".", " ")
+    text = f"{name} residual moved by {fmt_value(detail.get('shift'), unit)}"
+    mean, sigma = detail.get("mean"), detail.get("sigma")
+    if mean is not None and sigma is not None:
+        plus = fmt_value(sigma, unit)
+        text += f" (baseline {fmt_value(mean, unit).removesuffix(' ' + unit)} +- {plus})"
+    ct = detail.get("change_time")
+    if ct is not None and now is not None and math.isfinite(ct):
+        text += f", since about {max(0.0, now - ct) / 60:.0f} min before"
+    return text
+
+
 def transition_log_line(tr: Transition) -> str:
     """A transition as one log line: :func:`transition_line` without its column padding.
 

@@ -61,7 +61,9 @@ class AlarmPoint:
 
     ``latched``: an ISA-18.2 latched alarm stays annunciated after its return to normal until an
     operator resets it (the lifecycle reads the flag; the engine raises and clears as for any
-    other). ``groups``: the first-out groups the alarm belongs to.
+    other). ``groups``: the first-out groups the alarm belongs to. ``blames``: the measured things
+    a user can go and look at (:func:`spanwatch.rules.base.blames_of`). ``detail``: extras of the
+    check's result the raise carries at its frame (a drift's change time and size).
     """
 
     kind: str
@@ -80,6 +82,8 @@ class AlarmPoint:
     response_time: float
     latched: bool = False
     groups: tuple[str, ...] = ()
+    blames: tuple[str, ...] = ()
+    detail: tuple[str, ...] = ()
 
     @property
     def key(self) -> str:
@@ -103,6 +107,7 @@ class Transition:
     peak: float = float("nan")  # most abnormal value of the episode (on clear)
     first_out: bool = False
     chattering: bool = False
+    detail: tuple[tuple[str, float], ...] = ()  # on a raise: the point's detail extras at its frame
 
     @property
     def key(self) -> str:
@@ -244,7 +249,11 @@ class AlarmEngine:
                     ready = np.flatnonzero(valid[k:end])  # raise on a valid frame (beyond the limit, as on[] holds)
                     if ready.size:
                         k += int(ready[0])
-                        out.append(self._raise(p, st, float(t[k]), float(res.value[k]), int(line_state[k])))
+                        tr = self._raise(p, st, float(t[k]), float(res.value[k]), int(line_state[k]))
+                        if p.detail:
+                            tr = replace(tr, detail=tuple((f, float(res.extras[f][k])) for f in p.detail
+                                                          if f in res.extras))
+                        out.append(tr)
                         pos = k
                         continue
                 pos = end

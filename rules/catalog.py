@@ -2,13 +2,16 @@
 
 Adding a check kind is one module in ``rules/`` (its physics as pure functions and a check
 class with ``kind``, ``rests_on``, ``defaults``, ``for_line``, ``update`` and ``reset``; see
-:class:`spanwatch.rules.base.Check`) and one line in :data:`CHECK_CLASSES`. The application
+:class:`spanwatch.rules.base.Check`) and one line in :data:`CHECK_CLASSES`. A kind that reads
+other checks' results (a drift detector) goes in :data:`DERIVED_CLASSES`: its ``for_line(line,
+sources)`` receives the checks it may read, and its checks run after them. The application
 builds every check a line supports with :func:`checks_for`.
 """
 
 from __future__ import annotations
 
 from spanwatch.rules.base import Check, CheckKind
+from spanwatch.rules.driftcheck import DriftCheck
 from spanwatch.rules.drivefault import DriveFaultCheck
 from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
@@ -38,11 +41,22 @@ CHECK_CLASSES: tuple[CheckKind, ...] = (
     SourceLostCheck,
 )
 
+DERIVED_CLASSES = (DriftCheck,)
+
 CHECK_KINDS: dict[str, CheckKind] = {}
-for _cls in CHECK_CLASSES:
+for _cls in (*CHECK_CLASSES, *DERIVED_CLASSES):
     CHECK_KINDS.setdefault(_cls.kind, _cls)
 
 
-def checks_for(line: LineModel) -> list[Check]:
-    """Every check the line supports, in the order of :data:`CHECK_CLASSES` (disabled ones too)."""
+def source_checks(line: LineModel) -> list[Check]:
+    """The checks of :data:`CHECK_CLASSES` the line supports, in that order (disabled ones too)."""
     return [c for cls in CHECK_CLASSES for c in cls.for_line(line)]
+
+
+def checks_for(line: LineModel) -> list[Check]:
+    """Every check the line supports: :func:`source_checks`, then the derived kinds that read them."""
+    base = source_checks(line)
+    derived: list[Check] = []
+    if line.drift.enabled:
+        derived += DriftCheck.for_line(line, base)
+    return base + derived

@@ -9,7 +9,7 @@ accuracy divided by the web width already).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 
 @dataclass(frozen=True)
@@ -111,6 +111,23 @@ class Tag:
 
 
 @dataclass(frozen=True)
+class DriftSettings:
+    """The ``[drift]`` section in SI: which detector, how residuals are decimated and learnt, and the design
+    terms (the shift to detect in sigmas; the line's acceptable false-alarm interval, shared over every drift
+    detector of the line). ``residuals``: per residual name, overrides (``enabled``, ``detector``, ``shift``,
+    ``sigma_floor``)."""
+
+    enabled: bool = True
+    detector: str = "cusum"
+    period: float = 10.0  # s, batch-mean length
+    learn: float = 600.0  # s of valid batches to learn a baseline
+    shift: float = 1.0  # sigmas
+    false_alarm_interval: float = 90 * 86400.0  # s of running for the whole line
+    speed_band: float = 0.1  # relative width of an operating-point band of line speed
+    residuals: dict[str, dict[str, object]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
 class LineModel:
     """Everything a check kind may ask of the line, in SI."""
 
@@ -124,6 +141,7 @@ class LineModel:
     tags: dict[str, Tag]
     signals: frozenset[str]  # derived signal names available (``tension/<zone>``, ``speed/<roller>`` ...)
     sources: tuple[str, ...] = ()  # live sources (none for a recording)
+    drift: DriftSettings = field(default_factory=DriftSettings)  # the drift detectors' settings
 
     def zone_before(self, element_id: str) -> Zone | None:
         return next((z for z in self.zones if z.downstream == element_id), None)

@@ -178,6 +178,9 @@ class AlarmEpisode(Base):
     response_time: Mapped[float | None]
     first_out: Mapped[bool | None]
     chattering: Mapped[bool | None]
+    # what the raise names (comma-separated) and carries (JSON: a drift's change time and size); NULL before 0004
+    blames: Mapped[str | None]
+    detail: Mapped[str | None]
     __table_args__ = (Index("ix_episode_open", "alarm_key", "cleared_t"),)
 
     run: Mapped[Run] = relationship(back_populates="episodes")

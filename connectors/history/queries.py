@@ -6,6 +6,7 @@ windows."""
 from __future__ import annotations
 
 import enum
+import json
 from pathlib import Path
 from typing import Any
 
@@ -118,20 +119,28 @@ def _action(a: AlarmAction) -> dict[str, Any]:
 def episode_detail(engine: Engine, episode_id: int) -> dict[str, Any] | None:
     """One episode in full, or None: its row (as :func:`query_episodes`), its rationalization (``cause``,
     ``consequence``, ``corrective_action``, ``response_time`` in s; None on episodes from before they were kept),
-    its flags (``first_out``, ``chattering``), its transitions (``events``), its lifecycle changes and operator
+    its flags (``first_out``, ``chattering``), what it names (``blames``) and the values it carried at the raise
+    (``detail``: a drift's ``change_time`` (epoch s), ``shift``, ``mean`` and ``sigma`` in its residual's unit;
+    empty before revision 0004), its transitions (``events``), its lifecycle changes and operator
     actions (``actions``, oldest first) and the names of the signals kept around its raise (``context``).
 
     A one-shot shelve's ``until`` is ``inf`` in ``actions`` (``one_shot`` says so too). A history at a revision
     before the lifecycle (read as it is) gives None for those and no actions.
     """
     with Session(engine) as s:
-        lifecycle = inspect(s.connection()).has_table("alarm_actions")
+        insp = inspect(s.connection())
+        lifecycle = insp.has_table("alarm_actions")
+        detailed = "detail" in {c["name"] for c in insp.get_columns("alarm_episodes")}
         cols = (*_BASE, *(getattr(AlarmEpisode, c) for c in _RATIONALE)) if lifecycle else _BASE
+        if detailed:
+            cols = (*cols, AlarmEpisode.blames, AlarmEpisode.detail)
         e = s.scalar(select(AlarmEpisode).options(load_only(*cols)).where(AlarmEpisode.id == episode_id))
         if e is None:
             return None
         out = _episode(e)
         out.update({"key": e.alarm_key, **{c: getattr(e, c) if lifecycle else None for c in _RATIONALE}})
+        out["blames"] = e.blames.split(",") if detailed and e.blames else []
+        out["detail"] = json.loads(e.detail) if detailed and e.detail else {}
         out.update({
             "events": [{"id": ev.id, "run": ev.run_id, "t": ev.t, "time": iso(ev.t), "event": str(ev.event),
                         "value": ev.value, "limit": ev.limit, "line_state": ev.line_state} for ev in

@@ -259,7 +259,8 @@ class History:
                                       cause=p.cause, consequence=p.consequence, corrective_action=p.action,
                                       response_time=finite_or_none(p.response_time),
                                       first_out=bool(getattr(tr, "first_out", False)),
-                                      chattering=bool(getattr(tr, "chattering", False)))
+                                      chattering=bool(getattr(tr, "chattering", False)),
+                                      blames=",".join(p.blames) or None, detail=_detail(tr))
                     ev.episode = ep  # the unit of work inserts the episode first and links the event to it
                     opened[p.key] = ep
                     raised.append(ep)
@@ -475,3 +476,11 @@ class History:
 
     def close(self) -> None:
         self.engine.dispose()
+
+
+def _detail(tr: Transition) -> str | None:
+    """The raise's detail as a JSON object (non-finite values as null), or None when it carries none."""
+    items = getattr(tr, "detail", ())
+    if not items:
+        return None
+    return json.dumps({k: finite_or_none(v) for k, v in items}, sort_keys=True)

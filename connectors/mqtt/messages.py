@@ -43,6 +43,10 @@ field                      type             meaning
 ``peak``                   float|null       most abnormal value of the episode (clear only)
 ``first_out``              bool             first alarm of a burst (false when the engine does not tell)
 ``chattering``             bool             the alarm chatters (false when the engine does not tell)
+``blames``                 list of str      the measured things to look at (a zone, its tension tag, rollers)
+``detail``                 object           raise only: what the check gave at the raise (a drift's
+                                            ``change_time`` epoch s, ``shift``, ``mean``, ``sigma`` in the
+                                            residual's unit; non-finite as null); empty otherwise
 *lifecycle only*
 ``user``                   str              who did it (empty for the system)
 ``comment``                str              the operator's reason or comment; what suppresses the alarm
@@ -136,6 +140,8 @@ def alarm_message(p: AlarmPoint, *, t: float, event: str, tr: Transition | None 
             msg["peak"] = finite_or_none(tr.peak) if tr is not None else None
         msg["first_out"] = bool(getattr(tr, "first_out", False))
         msg["chattering"] = bool(getattr(tr, "chattering", False))
+        msg["blames"] = list(getattr(p, "blames", ()))
+        msg["detail"] = {k: finite_or_none(v) for k, v in getattr(tr, "detail", ())} if tr is not None else {}
     elif ev is not None:
         msg.update({"user": ev.user, "comment": ev.comment, **stamp("until", ev.until),
                     "one_shot": ev.until == math.inf, "request": ev.request})
