@@ -159,11 +159,12 @@ class Ewma:
     L sqrt(lam / (2 - lam)) is used throughout (as in Lucas & Saccucci's ARL tables).
 
     Vectorised with :func:`scipy.signal.lfilter` (imported on the first update; initial condition
-    (1 - lam) w_{i-1} carried from the previous call); ``i`` counts the samples since the last :meth:`reset`. After an update
-    :attr:`values` holds w for the samples of the call, :attr:`shift_estimate` the last w (the
-    EWMA is the chart's estimate of the current mean in sigma units; it lags a step change) and
-    :attr:`run_length` the number of consecutive samples w has kept its current sign (a change-point
-    hint: common practice, no source); :attr:`runs` the same for every sample of the call.
+    (1 - lam) w_{i-1} carried from the previous call); ``i`` counts the samples since the last
+    :meth:`reset`. After an update :attr:`values` holds w for the samples of the call,
+    :attr:`shift_estimate` the last w (the EWMA is the chart's estimate of the current mean in
+    sigma units; it lags a step change) and :attr:`run_length` the number of consecutive samples
+    w has kept its current sign (a change-point hint: common practice, no source); :attr:`runs`
+    the same for every sample of the call.
 
     Assumptions: independent, normal, standardised samples in control.
 
