@@ -18,7 +18,7 @@ from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.simline import SimulatedLine
 from spanwatch.monitor.simline.scenario import parse_scenario
 from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult
-from spanwatch.rules.catalog import CHECK_CLASSES, CHECK_KINDS, checks_for
+from spanwatch.rules.catalog import CHECK_CLASSES, CHECK_KINDS, DERIVED_CLASSES, checks_for
 
 ROOT = Path(__file__).resolve().parent.parent
 CONFIG = ROOT / "config" / "quillmere-q2.toml"
@@ -72,12 +72,13 @@ def _same(a: CheckResult, b: CheckResult) -> None:
 
 
 def test_every_kind_is_registered_once_by_name():
-    assert len(CHECK_KINDS) == len({c.kind for c in CHECK_CLASSES})
-    assert {"traction", "draw", "roll_diameter", "runout", "tag_stale"} <= set(CHECK_KINDS)
+    everything = (*CHECK_CLASSES, *DERIVED_CLASSES)
+    assert len(CHECK_KINDS) == len({c.kind for c in everything})
+    assert {"traction", "draw", "roll_diameter", "runout", "tag_stale", "drift"} <= set(CHECK_KINDS)
 
 
 def test_every_kind_states_its_contract():
-    for cls in CHECK_CLASSES:
+    for cls in (*CHECK_CLASSES, *DERIVED_CLASSES):
         assert isinstance(cls.defaults, AlarmDefaults), cls
         assert cls.defaults.direction in ("high", "low", "abs"), cls
         assert cls.rests_on.strip(), f"{cls.__name__} must say which assumption it rests on"

@@ -389,9 +389,9 @@ def test_upgrade_of_a_0002_history_keeps_its_rows(db_url):
     engine = make_engine(db_url)
     try:
         with engine.connect() as c:
-            assert c.execute(text("select version_num from alembic_version")).scalar_one() == head() == "0003"
+            assert c.execute(text("select version_num from alembic_version")).scalar_one() == head() == "0004"
             assert c.execute(text("select cause, consequence, corrective_action, response_time, first_out, "
-                                  "chattering from alarm_episodes")).all() == [(None,) * 6]
+                                  "chattering, blames, detail from alarm_episodes")).all() == [(None,) * 8]
         assert _dump(engine) == before
         assert [e["event"] for e in episode_detail(engine, ep)["events"]] == ["raise", "clear"]
         # the widened CHECK on both tables: "urgent" and "advisory" pass, an unknown value is refused; the other
