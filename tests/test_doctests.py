@@ -28,7 +28,8 @@ MODULES = _modules()
 
 def test_every_package_is_walked():
     # The walk must reach the physics, the adapters and the application, or the doctests below prove nothing.
-    assert {"spanwatch.rules.traction", "spanwatch.connectors.recording", "spanwatch.monitor.cli"} <= set(MODULES)
+    assert {"spanwatch.rules.traction", "spanwatch.rules.drift.design", "spanwatch.connectors.recording",
+            "spanwatch.monitor.cli"} <= set(MODULES)
 
 
 @pytest.mark.parametrize("name", MODULES)

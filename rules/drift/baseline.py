@@ -52,6 +52,23 @@ class Baseline:
         D = shift_z scale / (1 - rho)."""
         return shift_z * self.scale / (1.0 - self.rho_used)
 
+    def step_size(self, shift_z: float | np.ndarray, n: int | np.ndarray) -> float | np.ndarray:
+        """A step in the stream's own unit from a CUSUM's estimate over a run of ``n`` prediction errors.
+
+        A step D in x before the first of n prediction errors moves their sum by
+        (D / s) (1 + (n - 1)(1 - rho)) (the first error takes the whole step, the others D (1 - rho)),
+        and the CUSUM's estimate of their mean is shift_z = k + C/n (Montgomery 9.1.4), so
+        D = s n shift_z / (1 + (n - 1)(1 - rho)); with rho = 0 this is s shift_z. 0 where n is 0.
+
+        >>> Baseline(mean=0.0, sigma=1.0, rho=0.0, n=100).step_size(1.5, 4)
+        1.5
+        """
+        r = self.rho_used
+        n = np.asarray(n, dtype=float)
+        den = np.where(n > 0, 1.0 + (n - 1.0) * (1.0 - r), 1.0)
+        out = np.where(n > 0, self.scale * n * np.asarray(shift_z, dtype=float) / den, 0.0)
+        return float(out) if out.ndim == 0 else out
+
 
 def learn_baseline(x: np.ndarray, *, sigma_floor: float = 0.0) -> Baseline:
     """The baseline of samples ``x`` (batch means in time order; NaN marks a missing sample).

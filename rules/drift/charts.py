@@ -158,7 +158,7 @@ class Ewma:
     per sample (above 1.0: signal). With ``exact_limits=False`` the asymptotic limit
     L sqrt(lam / (2 - lam)) is used throughout (as in Lucas & Saccucci's ARL tables).
 
-    Vectorised with :func:`scipy.signal.lfilter` (imported on the first update; initial condition
+    Vectorised with :func:`scipy.signal.lfilter` (imported when a chart is built; initial condition
     (1 - lam) w_{i-1} carried from the previous call); ``i`` counts the samples since the last
     :meth:`reset`. After an update :attr:`values` holds w for the samples of the call,
     :attr:`shift_estimate` the last w (the EWMA is the chart's estimate of the current mean in
@@ -187,6 +187,9 @@ class Ewma:
         self.lam = float(lam)
         self.L = float(L)
         self.exact_limits = exact_limits
+        from scipy.signal import lfilter  # here, not at import: scipy.signal takes most of a second to import
+
+        self._lfilter = lfilter
         self.reset()
 
     def reset(self) -> None:
@@ -214,11 +217,9 @@ class Ewma:
         n = z.shape[-1]
         if n == 0:
             return np.zeros(z.shape)
-        from scipy.signal import lfilter  # here, not at import: scipy.signal takes most of a second to import
-
         lead = z.shape[:-1]
         zi = (1.0 - self.lam) * np.broadcast_to(self._w, lead)[..., None]
-        w, _ = lfilter([self.lam], [1.0, -(1.0 - self.lam)], z, axis=-1, zi=zi)
+        w, _ = self._lfilter([self.lam], [1.0, -(1.0 - self.lam)], z, axis=-1, zi=zi)
         i = np.arange(self._i + 1, self._i + n + 1)
         stat = np.abs(w) / (self.L * self.sigma_w(i))
         sign = np.sign(w)

@@ -71,10 +71,10 @@ def cusum_arl(k: float, h: float, shift: float = 0.0, *, two_sided: bool = True,
 
     ``method="siegmund"``: Siegmund's approximation, one side
     ARL = (exp(-2 D b) + 2 D b - 1) / (2 D^2) with D = shift - k and b = h + 1.166
-    (D = 0: ARL = b^2). Within about 1 % of the exact values for k = 1/2, h = 4..5 in control,
-    closer for shifts (D. Siegmund, *Sequential Analysis: Tests and Confidence Intervals*,
-    Springer 1985; as given by D. C. Montgomery, *Introduction to Statistical Quality Control*,
-    ch. 9).
+    (D = 0: ARL = b^2). Within about 1 % of the exact values for k = 1/2, h = 4..5 and shifts up
+    to 1 sigma; short for large shifts (1.44 against 1.71 at 4 sigma, h = 4). Source:
+    D. Siegmund, *Sequential Analysis: Tests and Confidence Intervals*, Springer 1985; as given by
+    D. C. Montgomery, *Introduction to Statistical Quality Control*, ch. 9.
 
     ``method="markov"``: the Markov chain of Brook & Evans: the interval [0, h] in ``states``
     states of width w = 2h / (2 states - 1), state i at C = i w (state 0 holds every C <= w/2),

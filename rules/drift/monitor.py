@@ -49,7 +49,9 @@ class DriftOutput:
     give 1.0 at the batch they report a drift and 0.0 otherwise; NaN while learning or gated), ``state``
     (``OK`` 0, ``GATED`` 1: the frame was not usable, ``LEARNING`` 4: no statistic yet), ``change_time``
     (epoch s: the estimated change point, the end of the last batch before the signalling side's run began),
-    ``shift`` (the estimated size of the change in the stream's own unit, signed; NaN for river's detectors),
+    ``shift`` (the estimated size of the change in the stream's own unit, signed: for the CUSUM
+    :meth:`~spanwatch.rules.drift.baseline.Baseline.step_size` of its run, for the EWMA its current value, which lags a
+    step; NaN for river's detectors),
     ``mean`` and ``sigma`` (the baseline's)."""
 
     value: np.ndarray
@@ -234,13 +236,15 @@ class DriftMonitor:
         else:
             value = self._chart.update(z)
             runs = self._chart.runs
-            size_z = self._chart.shifts if isinstance(self._chart, TabularCusum) else self._chart.values
+            if isinstance(self._chart, TabularCusum):
+                size = np.asarray(base.step_size(self._chart.shifts, runs), dtype=float)
+            else:  # the EWMA's own estimate of the current mean (it lags a step)
+                size = np.asarray(base.to_units(self._chart.values), dtype=float)
             # the change is placed after the last batch before the run: detector batch j - run (index + 1 in _ends)
             k = j - runs - self._ends_offset + 1
             kept = self._ends[np.clip(k, 0, self._ends.shape[0] - 1)]
             change = np.where(k >= 0, kept, ends - runs * self.period)  # beyond the kept history: on the grid
             change = np.where(runs > 0, change, math.nan)
-            size = np.asarray(base.to_units(size_z), dtype=float)
         return {"value": value, "change_time": change, "shift": size,
                 "mean": np.full(n, base.mean), "sigma": np.full(n, base.sigma)}
 
@@ -260,8 +264,9 @@ class DriftMonitor:
         else:
             batches = (np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros(0, np.int64))
         bs, sums, cnts, close = batches
-        need = 0.5 * (self.period / self._dt) if self._dt else 1.0
-        keep = cnts >= max(1.0, need - 1e-9)
+        # frames a batch should have: period / grid step, rounded (epoch times carry rounding of ~1e-7 s)
+        expected = max(1, round(self.period / self._dt)) if self._dt else 1
+        keep = cnts >= max(1.0, 0.5 * expected)
         bs, means, close = bs[keep], sums[keep] / np.maximum(cnts[keep], 1), close[keep]
         if bs.size and self.baseline is None:
             used = self._learn(bs, means)
