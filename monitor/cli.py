@@ -187,12 +187,36 @@ def check_config(
     for col in ("check", "objects", "rests on"):
         kt.add_column(col)
     for kind, objs in kinds.items():
-        shown = ", ".join(objs) if len(objs) <= 4 else f"{len(objs)} tags"
+        shown = ", ".join(objs) if len(objs) <= 4 else f"{len(objs)} {'tags' if kind.startswith('tag_') else 'objects'}"
         kt.add_row(kind, shown, rests[kind])
     console.print(kt)
+    _print_drift_design(checks, line)
     for w in line.warnings:  # what the config exposes (spanwatch.monitor.exposure); spanwatch run logs them too
         console.print(f"WARNING: {w}", style="bold yellow", highlight=False, markup=False, soft_wrap=True)
     console.print(f"[dim]{SAFETY_NOTE}[/]")
+
+
+def _print_drift_design(checks: list, line: Line) -> None:
+    """The drift detectors of ``check-config``: per residual, the design from the engineer's terms."""
+    from rich.table import Table
+    from spanwatch.monitor.driftreport import drift_designs
+
+    designs = drift_designs(checks)
+    if not designs:
+        console.print("drift detection: off ([drift] enabled = false)")
+        return
+    d = line.config.drift
+    console.print(f"drift detection: batch means of {d.period:g} s, baselines from {d.learn / 60:g} min of good "
+                  f"running per operating point; one false alarm per {d.false_alarm_interval / 86400:g} days of "
+                  f"running over the {sum(len(x.objects) for x in designs)} detectors", highlight=False)
+    dt = Table(title="Drift detectors", title_justify="left")
+    for col in ("residual", "objects", "detector", "shift", "design", "delay"):
+        dt.add_column(col)
+    for x in designs:
+        objs = ", ".join(x.objects) if len(x.objects) <= 2 else f"{len(x.objects)} objects"
+        delay = f"{x.delay / 60:.0f} min" if x.delay is not None else "-"
+        dt.add_row(x.residual, objs, x.detector, f"{x.shift:g} sigma", x.params, delay)
+    console.print(dt)
 
 
 @app.command("simulate")

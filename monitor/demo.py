@@ -27,7 +27,14 @@ from spanwatch.monitor.exposure import remember_config
 from spanwatch.monitor.line import Line, load_line
 from spanwatch.monitor.operate import Outcome, carry_out
 from spanwatch.monitor.pipeline import Pipeline
-from spanwatch.monitor.present import fmt_value, lifecycle_line, mmss, quiet_suppression, transition_line
+from spanwatch.monitor.present import (
+    drift_text,
+    fmt_value,
+    lifecycle_line,
+    mmss,
+    quiet_suppression,
+    transition_line,
+)
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
 from spanwatch.rules.alarms import Transition
 from spanwatch.rules.base import state_name
@@ -211,6 +218,9 @@ class _Printer:
         if tr.event == "raise":
             self.raised.append(tr)
             p = tr.point
+            if p.kind == "drift" and tr.detail:
+                short = textwrap.shorten(drift_text(p.object_id, dict(tr.detail), now=tr.t), 74, placeholder=" ...")
+                self.console.print(f"    {short}", style="dim", highlight=False, markup=False)
             if p.kind not in self._told:
                 self._told.add(p.kind)
                 for label, text in (("why", p.cause), (f"do within {p.response_time:g} s", p.action)):

@@ -121,9 +121,12 @@ def transition_log_line(tr: Transition) -> str:
     """A transition as one log line: :func:`transition_line` without its column padding.
 
     Source time, RAISE or clear, priority, check and object, level, the value (raise) or peak (clear)
-    in its unit, the limit and the line state.
+    in its unit, the limit and the line state; a drift's raise adds what moved, by how much and since when.
     """
-    return " ".join(transition_line(tr)[0].split())
+    text = " ".join(transition_line(tr)[0].split())
+    if tr.event == "raise" and tr.point.kind == "drift" and tr.detail:
+        text += "; " + drift_text(tr.point.object_id, dict(tr.detail), now=tr.t)
+    return text
 
 
 def mmss(seconds: float) -> str:
