@@ -12,8 +12,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from spanwatch.rules.base import Check
-from spanwatch.rules.driftcheck import DriftCheck
 from spanwatch.rules.drift.design import cusum_arl, ewma_arl
+from spanwatch.rules.driftcheck import DriftCheck
 
 
 @dataclass(frozen=True)
