@@ -164,7 +164,7 @@ BROKEN = {
 # stated with its reason in monitor/config.py.
 S2_ACC = 'accuracy = 4.0                     # N, load-cell pair after calibration'
 UNWIND_FROZEN = 'frozen_after = "60 s"\nfrozen_tolerance = 0.0'
-TRACTION = 'warning = 0.8                      # share of the safe capacity (capacity / safety factor)\nalarm = 1.0'
+TRACTION = 'warning = 0.8                      # share of the capacity at the current speed (1.0: the roller slips)\nalarm = 1.0'
 S2 = 'tags."q2.s2.tension"'
 
 
