@@ -219,6 +219,7 @@ class DrawCheck:
         self._steady = RollingMean(self.window_frames)
         self._x = RollingMean(self.window_frames)  # speed ratio - 1
         self._xx = RollingMean(self.window_frames)
+        self._xprev = RollingMean(self.window_frames)  # x_k-1
         self._xlag = RollingMean(self.window_frames)  # x_k x_k-1
         self._prev = Lagged(1)
 
@@ -230,13 +231,15 @@ class DrawCheck:
         ok = v1.ok & v2.ok & np.isfinite(x)
         x = np.where(ok, x, 0.0)
         prev, ok_prev = self._prev.update(x, ok)
+        prev = np.where(ok_prev, prev, 0.0)
         m, _ = self._x.update(x, ok)
+        m_prev, _ = self._xprev.update(prev, ok_prev)
         mm, _ = self._xx.update(x * x, ok)
-        ml, _ = self._xlag.update(x * np.where(ok_prev, prev, 0.0), ok & ok_prev)
+        ml, _ = self._xlag.update(x * prev, ok & ok_prev)
         n = self.window_frames
         with np.errstate(all="ignore"):
             var = np.maximum(mm - m * m, 0.0) * n / max(n - 1, 1)
-            cov = ml - m * m
+            cov = ml - m * m_prev  # the two means differ by the window's end samples: not m * m
             r1 = np.where(var > 0, cov / var, 0.0)
         return mean_ratio_uncertainty(var, r1, n)
 
