@@ -19,7 +19,15 @@ from hostile import ANY_FLOAT, any_array, no_runtime_warning, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
-from spanwatch.rules.span import draw_band, draw_for_tension, span_tension_rate, steady_span_tension
+from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
+from spanwatch.rules.span import (
+    DrawCheck,
+    draw_band,
+    draw_for_tension,
+    mean_ratio_uncertainty,
+    span_tension_rate,
+    steady_span_tension,
+)
 
 # Example web: 1.2 mil BOPP, E = 2.2 GPa -> Et = E * caliper per unit width.
 ET = 2.2e9 * 1.2 * 25.4e-6
@@ -194,6 +202,7 @@ PURE = {
     "steady_span_tension": (steady_span_tension, 4),
     "draw_for_tension": (draw_for_tension, 3),
     "draw_band": (_draw_band, 8),
+    "mean_ratio_uncertainty": (lambda v, r, n: mean_ratio_uncertainty(v, r, n), 3),
 }
 
 
@@ -203,7 +212,7 @@ def _call_and_check(name, args):
         out = func(*args)
     assert isinstance(out, np.ndarray)
     assert out.shape == np.broadcast_shapes(*(np.shape(a) for a in args))
-    if name == "draw_band":
+    if name in ("draw_band", "mean_ratio_uncertainty"):
         assert np.all(np.isnan(out) | (out >= 0))
 
 
@@ -228,9 +237,6 @@ def test_pure_functions_any_float(name, data):
 
 
 # --- the draw check's averaging and its speed ratio (rules/span.py DrawCheck) ---------------------------------
-
-from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames  # noqa: E402
-from spanwatch.rules.span import DrawCheck, mean_ratio_uncertainty  # noqa: E402
 
 
 @pytest.mark.parametrize("rho", [0.0, 0.5, 0.9])

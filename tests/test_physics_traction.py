@@ -29,7 +29,13 @@ from spanwatch.rules.airfilm import (
     traction_derating,
 )
 from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
-from spanwatch.rules.traction import UTILISATION_CAP, TractionCheck, capstan_ratio_limit, traction_utilisation
+from spanwatch.rules.traction import (
+    UTILISATION_CAP,
+    TractionCheck,
+    capstan_ratio_limit,
+    demonstrated_cof,
+    traction_utilisation,
+)
 
 # --- capstan equation -------------------------------------------------------------------------
 # Independent reference: the web wrapped around the roller as n short straight segments, each in force
@@ -485,6 +491,7 @@ PURE = {
     "combined_roughness": (combined_roughness, 2, lambda o: nan_or(o, o >= 0)),
     "capstan_ratio_limit": (capstan_ratio_limit, 2, lambda o: nan_or(o, o >= 0)),
     "traction_utilisation": (traction_utilisation, 4, lambda o: nan_or(o, (o >= 0) & (o <= UTILISATION_CAP))),
+    "demonstrated_cof": (demonstrated_cof, 3, lambda o: nan_or(o, o >= 0)),
     "surface_speed": (slip.surface_speed, 2, None),
     "slip_ratio": (lambda a, b, c: slip.slip_ratio(a, b, c), 3, None),
 }
