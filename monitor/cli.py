@@ -207,7 +207,8 @@ def _print_design_margins(line: Line) -> None:
                title_justify="left")
     for col in ("roller", "where", "speed", "ratio", "capacity", "share used", "margin", "safe share"):
         dt.add_column(col, justify="left" if col in ("roller", "where") else "right")
-    labels = {"standstill": "at rest (dry COF)", "end of roll": "end of roll (taper end)"}
+    labels = {"standstill": "at rest (dry COF)", "end of roll": "end of roll (taper end)",
+              "end of roll at top speed": "end of roll, top speed"}
     last = None
     for m in margins:
         u = m.utilisation

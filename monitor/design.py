@@ -10,7 +10,7 @@ driven roller use
   top speed),
 - at the top speed (``line.max_speed``),
 - at the end of a roll at normal speed (unwind nearly empty, rewind full: the zone tensions at
-  the taper's end),
+  the taper's end), and at the end of a roll at top speed (the worst of the points),
 
 and is that within the safe share 1/SF of its safety factor SF?
 
@@ -33,7 +33,7 @@ from spanwatch.rules.linemodel import Zone
 from spanwatch.rules.traction import capstan_ratio_limit
 from spanwatch.rules.woundroll import taper_tension
 
-POINTS = ("standstill", "normal speed", "top speed", "end of roll")
+POINTS = ("standstill", "normal speed", "top speed", "end of roll", "end of roll at top speed")
 
 
 @dataclass(frozen=True)
@@ -124,11 +124,12 @@ def roller_margin(line: Line, roller_id: str, point: str) -> RollerMargin | None
     cfg = line.config
     lw, mat = cfg.line, cfg.material
     speed = {"standstill": 0.0, "normal speed": normal_speed(cfg), "top speed": lw.max_speed,
-             "end of roll": normal_speed(cfg)}[point]
+             "end of roll": normal_speed(cfg), "end of roll at top speed": lw.max_speed}[point]
+    end = point.startswith("end of roll")
     zb, za = line.zone_before(roller_id), line.zone_after(roller_id)
     if zb is None or za is None:
         return None
-    t_up, t_down = zone_tension(line, zb, point == "end of roll"), zone_tension(line, za, point == "end of roll")
+    t_up, t_down = zone_tension(line, zb, end), zone_tension(line, za, end)
     if t_up is None or t_down is None or t_up <= 0 or t_down <= 0:
         return None
     sigma = float(combined_roughness(mat.roughness, sec.roughness))

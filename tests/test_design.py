@@ -82,6 +82,8 @@ def test_end_of_roll_uses_the_taper_end():
     assert start.demanded_ratio == pytest.approx(1.25, rel=1e-9)
     assert end.demanded_ratio == pytest.approx(1 / 0.657417, rel=1e-5)
     assert end.speed == start.speed == normal_speed(line.config)
+    worst = roller_margin(line, "pull_2", "end of roll at top speed")
+    assert worst.demanded_ratio == end.demanded_ratio and worst.speed == line.config.line.max_speed
 
 
 def test_normal_speed_default_and_configured(tmp_path):
