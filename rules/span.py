@@ -273,10 +273,12 @@ class DrawCheck:
         et_eff = np.where(np.abs(ratio - 1.0) > 1e-4 * np.abs(ratio), et_eff, np.nan)
         with np.errstate(invalid="ignore"):
             slack = ~(pred > 0)
+            # the window's means and the rollers now: a long window must not judge a line that has just stopped
+            slow = (np.fmin(v1, v2) <= self.min_speed) | ~(np.fmin(sig[2].value, sig[3].value) > self.min_speed)
         reason = combine_reasons(
             (~steady, Reason.LINE_STATE),
             (~(ok1 & ok2 & okv1 & okv2), Reason.INPUT_BAD),
-            ((v1 <= self.min_speed) | (v2 <= self.min_speed) | slack, Reason.OUT_OF_DOMAIN),
+            (slow | slack, Reason.OUT_OF_DOMAIN),
             n=block.n,
         )
         with np.errstate(invalid="ignore", divide="ignore"):
