@@ -158,6 +158,7 @@ def check_config(
     console.print(ct)
     console.print(f"air model: {lw.air_film_model}, speed convention: {lw.air_speed_convention}, "
                   f"air viscosity {line.viscosity:.4g} Pa s at {lw.air_temperature - 273.15:.1f} degC")
+    _print_design_margins(line)
 
     if cfg.sources:
         from spanwatch.monitor.sources import SOURCE_KINDS
@@ -217,6 +218,37 @@ def _print_drift_design(checks: list, line: Line) -> None:
         delay = f"{x.delay / 60:.0f} min" if x.delay is not None else "-"
         dt.add_row(x.residual, objs, x.detector, f"{x.shift:g} sigma", x.params, delay)
     console.print(dt)
+
+
+def _print_design_margins(line: Line) -> None:
+    """check-config's design-margin table (spanwatch.monitor.design) and what it finds, in plain sentences."""
+    from rich.table import Table
+    from spanwatch.monitor.design import design_findings, design_margins
+
+    margins = design_margins(line)
+    dt = Table(title="Design margin of each driven roller at its setpoints: share of its capacity used against "
+                     "the safe share 1/SF (the live traction alarm watches the share of capacity)",
+               title_justify="left")
+    for col in ("roller", "where", "speed", "ratio", "capacity", "share used", "margin", "safe share"):
+        dt.add_column(col, justify="left" if col in ("roller", "where") else "right")
+    labels = {"standstill": "at rest (dry COF)", "end of roll": "end of roll (taper end)",
+              "end of roll at top speed": "end of roll, top speed"}
+    last = None
+    for m in margins:
+        u = m.utilisation
+        colour = "red" if m.slips else "yellow" if not m.within_design else "green"
+        dt.add_row(m.roller if m.roller != last else "", labels.get(m.point, m.point), f"{m.speed * 60:.0f} m/min",
+                   f"{m.demanded_ratio:.2f}", f"{m.capacity_ratio:.2f}",
+                   f"[{colour}]{'lifted' if u == float('inf') else f'{u:.0%}'}[/]",
+                   f"{m.margin:.2f}", f"{m.safe_share:.0%}")
+        last = m.roller
+    console.print(dt)
+    findings = design_findings(margins)
+    for f in findings:
+        console.print(f"DESIGN: {f}", style="bold yellow", highlight=False, markup=False, soft_wrap=True)
+    if not findings:
+        console.print("design: every driven roller stays within its safe share 1/SF in ordinary running.",
+                      highlight=False, markup=False, soft_wrap=True)
 
 
 @app.command("simulate")

@@ -75,6 +75,8 @@ Delay = Annotated[float, between(U.TIME, 0.0, DURATION_MAX, low_included=True)]
 # a surface roughness (Rq) above a millimetre is no roller face or web (common practice, no source)
 Roughness = Annotated[float, between(U.LENGTH, 0.0, 1e-3, low_included=True)]
 MAX_WINDOW_FRAMES = 100_000  # frames in one window of one signal (800 kB of float64): bounds check memory
+# a line that is not said otherwise normally runs at 80 % of its top speed (common practice, no source)
+NORMAL_SPEED_SHARE = 0.8
 
 
 # --- the line -----------------------------------------------------------------------
@@ -111,6 +113,18 @@ class LineSection(Strict):
     encoder_ratio_tolerance: Fraction = 1e-4
     # the checks' averaging window: seconds; more than ten minutes is no longer a running check
     check_window: Annotated[float, between(U.TIME, 0.0, 600.0)] = 2.0
+    # the draw check's averaging window: a slow drift of a few N/m shows only once the encoder-ratio noise of the
+    # 2 s window is averaged away; 10 to 30 s is still short against a load-cell drift of minutes (common
+    # practice, no source)
+    draw_window: Annotated[float, between(U.TIME, 0.0, 600.0)] = 20.0
+    # the speed the line normally runs at, for the design margins of check-config; default: NORMAL_SPEED_SHARE
+    # of max_speed
+    normal_speed: LineSpeed | None = None
+    # traction is not judged while tensions build after a start: until both tensions at a driven roller are
+    # within startup_band of their setpoints, at most startup_settle after the line leaves STOPPED (common
+    # practice, no source)
+    startup_settle: Delay = 30.0
+    startup_band: Fraction = 0.2
     roll_settle_time: Delay = 10.0
     # a longer stretch without any sample is a gap: frames skip it and the checks start afresh (common practice,
     # no source: longer than any sample period or stale limit, shorter than a roll change)
@@ -120,7 +134,10 @@ class LineSection(Strict):
 
     @model_validator(mode="after")
     def _windows(self) -> LineSection:
-        for name in ("check_window", "accel_window"):
+        if self.normal_speed is not None and self.normal_speed > self.max_speed:
+            raise ValueError(f"expected normal_speed at most max_speed ({self.max_speed:g} m/s), got "
+                             f"{self.normal_speed:g} m/s")
+        for name in ("check_window", "accel_window", "draw_window"):
             frames = getattr(self, name) * self.frame_rate
             if frames > MAX_WINDOW_FRAMES:
                 raise ValueError(f"expected {name} times frame_rate at most {MAX_WINDOW_FRAMES} frames, got "

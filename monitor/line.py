@@ -235,9 +235,23 @@ def build_line(cfg: LineConfig, file: str = "<config>", config_hash: str = "") -
     err.raise_if_any()
     zones = tuple(replace(z, tension_accuracy=_per_width(cfg, tags[z.tension_tag])) if z.tension_tag else z
                   for z in zones)
+    zones = tuple(replace(z, setpoint_range=_setpoint_range(elements, z)) for z in zones)
     signals = _signals(cfg, elements, zones, tags)
     model = _model(cfg, path, elements, zones, tags, signals)
     return Line(cfg, file, config_hash, path, elements, zones, tags, signals, model)
+
+
+def _setpoint_range(elements: dict[str, Element], zone: Zone) -> tuple[float, float] | None:
+    """Lowest and highest tension setpoint of a zone over a roll, N/m (a winder's taper moves it)."""
+    if zone.setpoint is None:
+        return None
+    for eid, kind in ((zone.downstream, "rewind"), (zone.upstream, "unwind")):
+        w = elements[eid].section
+        if isinstance(w, WinderSection) and w.kind == kind and w.taper is not None:
+            ends = taper_tension(np.array([w.core_diameter, w.max_diameter]), zone.setpoint, w.taper.k,
+                                 w.core_diameter, w.max_diameter, w.taper.model)
+            return float(np.min(ends)), float(np.max(ends))
+    return zone.setpoint, zone.setpoint
 
 
 def _per_width(cfg: LineConfig, info: TagInfo) -> tuple[float, float]:
@@ -255,11 +269,12 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
         check_window=lw.check_window, encoder_ratio_tolerance=lw.encoder_ratio_tolerance,
         air_film_model=lw.air_film_model, air_speed_convention=lw.air_speed_convention,
         air_traction_floor=lw.air_traction_floor, air_viscosity=float(air_viscosity(lw.air_temperature)),
-        web_speed_from=lw.web_speed_from)
+        web_speed_from=lw.web_speed_from, draw_window=lw.draw_window, startup_settle=lw.startup_settle,
+        startup_band=lw.startup_band)
     material = Material(caliper=mat.caliper, width=mat.width, modulus=mat.modulus,
                         modulus_tolerance=mat.modulus_tolerance, roughness=mat.roughness,
                         air_film_factor=mat.air_film_factor, stack_factor=mat.stack_factor,
-                        caliper_drift=mat.caliper_drift)
+                        caliper_drift=mat.caliper_drift, stack_factor_tolerance=mat.stack_factor_tolerance)
     rollers: dict[str, Roller] = {}
     winders: dict[str, Winder] = {}
     for e in elements.values():
@@ -269,7 +284,8 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                 id=e.id, diameter=sec.diameter, wrap=sec.wrap, cof=sec.cof, roughness=sec.roughness,
                 driven=sec.driven, draw=sec.draw, safety_factor=sec.safety_factor,
                 air_film_factor=sec.air_film_factor, has_encoder=sec.speed_tag is not None,
-                runout_check=sec.runout_check, has_fault_tag=sec.fault_tag is not None)
+                runout_check=sec.runout_check, has_fault_tag=sec.fault_tag is not None, speed_tag=sec.speed_tag,
+                draw_configured="draw" in sec.model_fields_set)
         else:
             none = (0.0, 0.0)
             winders[e.id] = Winder(
@@ -279,7 +295,8 @@ def _model(cfg: LineConfig, path: tuple[str, ...], elements: dict[str, Element],
                 has_length=sec.length_tag is not None,
                 diameter_accuracy=tags[sec.diameter_tag].accuracy if sec.diameter_tag else none,
                 length_accuracy=tags[sec.length_tag].accuracy if sec.length_tag else none,
-                runout_check=sec.runout_check)
+                runout_check=sec.runout_check, diameter_tag=sec.diameter_tag, rpm_tag=sec.rpm_tag,
+                length_tag=sec.length_tag)
     computed = {f"diameter/{w.id}" for w in winders.values() if not w.has_diameter_sensor and w.has_rpm}
     only = next(iter(cfg.sources)) if len(cfg.sources) == 1 else None
     source_of = {n: (t.source or only) for n, t in cfg.tags.items()}

@@ -26,6 +26,9 @@ class LineSettings:
     air_traction_floor: float
     air_viscosity: float  # Pa s at the configured air temperature
     web_speed_from: str | None  # roller whose encoder gives the web speed (None: the line-speed tag)
+    draw_window: float = 20.0  # s: averaging window of the draw check
+    startup_settle: float = 30.0  # s: longest wait after the line leaves STOPPED for tensions to reach setpoint
+    startup_band: float = 0.2  # relative: tensions within this share of their setpoints end the start-up wait
 
     def frames(self, seconds: float) -> int:
         """A duration as a whole number of frames (at least one)."""
@@ -44,6 +47,7 @@ class Material:
     air_film_factor: float  # multiplier on the air-film height (venting of a permeable web)
     stack_factor: float  # effective stack caliper / single-ply caliper (a prior)
     caliper_drift: float  # relative
+    stack_factor_tolerance: float = 0.1  # relative: a roll's calibrated caliper may depart this far from nominal
 
 
 @dataclass(frozen=True)
@@ -62,6 +66,8 @@ class Roller:
     has_encoder: bool  # a speed tag of its own
     runout_check: bool
     has_fault_tag: bool = False  # a fault bit or word of its drive (signal ``drive_fault/<id>``)
+    speed_tag: str | None = None  # the tag of its encoder (what a user can go and look at)
+    draw_configured: bool = False  # ``draw`` was set in the line file (a commanded speed ratio), not defaulted
 
 
 @dataclass(frozen=True)
@@ -79,6 +85,9 @@ class Winder:
     diameter_accuracy: tuple[float, float]  # (m, relative)
     length_accuracy: tuple[float, float]  # (m, relative)
     runout_check: bool
+    diameter_tag: str | None = None
+    rpm_tag: str | None = None
+    length_tag: str | None = None
 
 
 @dataclass(frozen=True)
@@ -94,6 +103,7 @@ class Zone:
     tension_span: str | None
     setpoint: float | None
     tension_accuracy: tuple[float, float] = (0.0, 0.0)  # (N/m, relative) of its load cell, per width
+    setpoint_range: tuple[float, float] | None = None  # N/m: lowest and highest setpoint over a roll (taper)
 
 
 @dataclass(frozen=True)
@@ -154,6 +164,14 @@ class LineModel:
 
     def is_winder(self, element_id: str) -> bool:
         return element_id in self.winders
+
+    def tension_tag_of(self, zone_id: str) -> str | None:
+        """The tag of the load cell that measures a zone's tension (None: the zone has none)."""
+        return next((z.tension_tag for z in self.zones if z.id == zone_id), None)
+
+    def zone_blames(self, zone: Zone) -> tuple[str, ...]:
+        """What a user can look at for a zone's tension: the zone, its load cell's tag and the span it is on."""
+        return tuple(x for x in (zone.id, zone.tension_tag, zone.tension_span) if x)
 
     @property
     def driven_rollers(self) -> list[Roller]:

@@ -91,11 +91,12 @@ class SlipCheck:
                                "commanded draw; diameter of the roller is its configured value")
     defaults: ClassVar[AlarmDefaults] = SLIP_DEFAULTS
 
-    def __init__(self, object_id: str, *, draw: float, min_speed: float) -> None:
+    def __init__(self, object_id: str, *, draw: float, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.speed = f"speed/{object_id}"
         self.inputs = (self.speed, "speed/web")
         self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
+        self.blames = blames or (object_id,)  # the roller and its encoder's tag
         self.draw, self.min_speed = draw, min_speed
 
     @classmethod
@@ -103,7 +104,8 @@ class SlipCheck:
         """One per driven roller with an encoder of its own (not the one that gives the web speed)."""
         for r in line.rollers_in_path:
             if r.driven and r.has_encoder and r.id != line.settings.web_speed_from:
-                yield cls(r.id, draw=r.draw, min_speed=line.settings.thread_speed)
+                yield cls(r.id, draw=r.draw, min_speed=line.settings.thread_speed,
+                          blames=tuple(x for x in (r.id, r.speed_tag) if x))
 
     def reset(self) -> None:
         """Nothing is carried from one block to the next."""
@@ -127,10 +129,11 @@ class IdlerLagCheck:
     rests_on: ClassVar[str] = "idler diameter is its configured value; web speed reference is true web speed"
     defaults: ClassVar[AlarmDefaults] = LAG_DEFAULTS
 
-    def __init__(self, object_id: str, *, min_speed: float) -> None:
+    def __init__(self, object_id: str, *, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.speed = f"speed/{object_id}"
         self.inputs = (self.speed, "speed/web")
+        self.blames = blames or (object_id,)  # the idler and its encoder's tag
         self.min_speed = min_speed
 
     @classmethod
@@ -138,7 +141,8 @@ class IdlerLagCheck:
         """One per idler with an encoder (not the one that gives the web speed)."""
         for r in line.rollers_in_path:
             if not r.driven and r.has_encoder and r.id != line.settings.web_speed_from:
-                yield cls(r.id, min_speed=line.settings.thread_speed)
+                yield cls(r.id, min_speed=line.settings.thread_speed,
+                          blames=tuple(x for x in (r.id, r.speed_tag) if x))
 
     def reset(self) -> None:
         """Nothing is carried from one block to the next."""

@@ -14,9 +14,18 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.base import (
+    AlarmDefaults,
+    Block,
+    CheckResult,
+    LineState,
+    Reason,
+    Signal,
+    combine_reasons,
+    finalise,
+)
 from spanwatch.rules.linemodel import LineModel
-from spanwatch.rules.windows import RollingMean
+from spanwatch.rules.windows import Lagged, RollingMean
 
 
 def span_tension_rate(t2: ArrayLike, t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike,
@@ -68,11 +77,14 @@ def draw_for_tension(t1: ArrayLike, t2: ArrayLike, et: ArrayLike) -> np.ndarray:
 
 
 def draw_band(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike, *, modulus_tol: float,
-              ratio_tol: float, t1_acc: ArrayLike, t2_acc: ArrayLike) -> np.ndarray:
+              ratio_tol: float, t1_acc: ArrayLike, t2_acc: ArrayLike, ratio_random: ArrayLike = 0.0) -> np.ndarray:
     """Tolerance band of the steady-state prediction, N/m (root sum of squares of the bounds).
 
-    Terms: modulus uncertainty ``modulus_tol * Et (V2 - V1) / V2``; encoder ratio
-    uncertainty ``Et * ratio_tol``; the two load-cell accuracies (T1 scaled by V1 / V2).
+    Terms: modulus uncertainty ``modulus_tol * Et (V2 - V1) / V2``; the speed ratio's
+    systematic uncertainty ``Et * ratio_tol`` (encoder or drive calibration: averaging does
+    not shrink it) and its random part ``Et * ratio_random`` (the noise left in an averaged
+    ratio, see :func:`mean_ratio_uncertainty`; 0 for a commanded ratio); the two load-cell
+    accuracies (T1 scaled by V1 / V2).
 
     Source: the law of propagation of uncertainty for uncorrelated inputs (JCGM 100:2008,
     the GUM, eq. 10) applied to :func:`steady_span_tension`, with the ratio term's
@@ -83,7 +95,36 @@ def draw_band(t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike, *, mod
     with np.errstate(all="ignore"):
         e_mod = modulus_tol * et * (v2 - v1) / v2
         e_t1 = np.asarray(t1_acc, dtype=float) * v1 / v2
-        return np.sqrt(e_mod**2 + (et * ratio_tol) ** 2 + e_t1**2 + np.asarray(t2_acc, dtype=float) ** 2)
+        e_ratio = et * np.hypot(ratio_tol, np.asarray(ratio_random, dtype=float))
+        return np.sqrt(e_mod**2 + e_ratio**2 + e_t1**2 + np.asarray(t2_acc, dtype=float) ** 2)
+
+
+def mean_ratio_uncertainty(variance: ArrayLike, lag1: ArrayLike, n: ArrayLike, coverage: float = 2.0) -> np.ndarray:
+    """Random uncertainty of the mean of ``n`` autocorrelated samples: ``k s / sqrt(n_eff)``.
+
+    ``variance`` s^2 of the samples, ``lag1`` their lag-one autocorrelation r1; the effective
+    number of independent samples of a first-order autoregressive series is
+    ``n_eff = n (1 - r1) / (1 + r1)`` (at most n, at least 1). ``coverage`` k = 2 (about 95 %)
+    puts the random part on the footing of the tolerance bounds it is combined with.
+
+    Sources: the experimental standard deviation of the mean, s / sqrt(n) (JCGM 100:2008, the
+    GUM, 4.2.3), which the GUM warns does not hold for correlated observations (4.2.7); the
+    effective sample size of an AR(1) series, Bayley & Hammersley, "The effective number of
+    independent observations in an autocorrelated time series", J. R. Stat. Soc. Suppl. 8(2),
+    1946 (from memory; the same form is in Wilks, *Statistical Methods in the Atmospheric
+    Sciences*). Treating the ratio as AR(1) is common practice, no source.
+
+    >>> round(float(mean_ratio_uncertainty(4.0, 0.0, 100)), 3)
+    0.4
+    >>> round(float(mean_ratio_uncertainty(4.0, 0.5, 100)), 3)
+    0.693
+    """
+    var, r1, n = (np.asarray(x, dtype=float) for x in (variance, lag1, n))
+    with np.errstate(all="ignore"):
+        r1 = np.clip(r1, -0.999, 0.999)
+        n_eff = np.clip(n * (1.0 - r1) / (1.0 + r1), 1.0, np.maximum(n, 1.0))
+        out = coverage * np.sqrt(var / n_eff)
+    return np.where((var >= 0) & (n >= 1) & np.isfinite(out), out, np.nan)
 
 
 DEFAULTS = AlarmDefaults(
@@ -96,39 +137,60 @@ DEFAULTS = AlarmDefaults(
     off_delay=10.0,
     priority="medium",
     warning_priority="low",
-    cause="Measured span tension departs from what the draw predicts: a roller slipping, a modulus "
-    "different from the configured one (new web lot), a load cell out of calibration, or an encoder fault.",
+    cause="Measured span tension departs from what the draw predicts: the zone's load cell (or the one "
+    "upstream) out of calibration or drifting, a roller slipping, a modulus different from the configured "
+    "one (new web lot), or an encoder fault.",
     consequence="Tension control is not doing what the draw settings say; slip or a wrong tension "
     "leads to wrinkles, neck-in or a web break.",
-    action="Compare with the traction and slip checks; verify the load cell with a calibration weight; "
-    "confirm the web lot's modulus.",
+    action="Compare with the traction and slip checks; verify the zone's load cell with a calibration weight "
+    "(the extra ratio, measured over predicted tension, shows a gain drift); confirm the web lot's modulus.",
 )
 
 
 class DrawCheck:
     """Draw-versus-tension residual of a tension zone bounded by two driven rollers.
 
-    Inputs are averaged over ``window`` seconds; valid only after the line has run
-    steadily (RUNNING, which includes the settle time after a speed change) for a
-    whole window.
+    Inputs are averaged over ``window`` seconds (the line's ``draw_window``); valid only after
+    the line has run steadily (RUNNING, which includes the settle time after a speed change)
+    for a whole window.
+
+    The speed ratio V2/V1: where the line file commands a draw on either roller (its ``draw``
+    key), the drives are commanded to hold V2/V1 = (1 + draw2) / (1 + draw1); while the
+    averaged encoder ratio agrees with that within the encoder tolerance (plus the random
+    uncertainty of its mean) the commanded ratio replaces it (no encoder noise; extra
+    ``commanded`` = 1). Otherwise, and on lines without a commanded draw, the averaged encoder
+    ratio is used and its random uncertainty (:func:`mean_ratio_uncertainty`, from the
+    variance and lag-one autocorrelation of the ratio over the window) widens the band. The
+    systematic encoder tolerance stays in the band either way (averaging does not shrink it).
+
+    A predicted tension at or below zero (V2 so far below V1 that the span would go slack) is
+    outside the span equation: OUT_OF_DOMAIN. Extras: ``residual`` (N/m, measured - predicted),
+    ``band`` (N/m), ``predicted`` (N/m), ``ratio`` (measured / predicted tension: a load cell's
+    gain drift reads as a ratio away from 1), ``speed_ratio`` (the V2/V1 used),
+    ``ratio_random`` (its random uncertainty), ``commanded`` (1: the commanded ratio was used),
+    ``stiffness_eff`` (N/m, the Et that would explain the measurement).
     """
 
     kind: ClassVar[str] = "draw"
     rests_on: ClassVar[str] = ("steady state, no slip at either bounding roller, linear elastic web with "
-                               "the configured modulus and nominal caliper, idlers without drag")
+                               "the configured modulus and nominal caliper, idlers without drag, load cells "
+                               "of this zone and the zone upstream reading true")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
 
     def __init__(self, object_id: str, *, zone_up: str, roller_up: str, roller_down: str, et: float,
                  modulus_tol: float, ratio_tol: float, t1_acc: tuple[float, float],
-                 t2_acc: tuple[float, float], window_frames: int, min_speed: float) -> None:
+                 t2_acc: tuple[float, float], window_frames: int, min_speed: float,
+                 commanded_ratio: float | None = None, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.names = (f"tension/{zone_up}", f"tension/{object_id}", f"speed/{roller_up}", f"speed/{roller_down}")
         self.inputs = self.names
         self.drives = (roller_up, roller_down)  # the drives that set its draw (a fault of either suppresses it)
+        self.blames = blames or (object_id, roller_up, roller_down)
         self.et, self.modulus_tol, self.ratio_tol = et, modulus_tol, ratio_tol
         self.t1_acc, self.t2_acc = t1_acc, t2_acc
         self.min_speed = min_speed
         self.window_frames = window_frames
+        self.commanded_ratio = commanded_ratio
         self.reset()
 
     @classmethod
@@ -143,15 +205,43 @@ class DrawCheck:
                 continue
             if not (line.has_signal(f"speed/{z.upstream}") and line.has_signal(f"speed/{z.downstream}")):
                 continue
+            r1, r2 = line.rollers[z.upstream], line.rollers[z.downstream]
+            commanded = (1.0 + r2.draw) / (1.0 + r1.draw) if (r1.draw_configured or r2.draw_configured) else None
             yield cls(z.id, zone_up=zb.id, roller_up=z.upstream, roller_down=z.downstream,
                       et=mat.modulus * mat.caliper, modulus_tol=mat.modulus_tolerance,
                       ratio_tol=s.encoder_ratio_tolerance, t1_acc=zb.tension_accuracy, t2_acc=z.tension_accuracy,
-                      window_frames=s.frames(s.check_window), min_speed=s.thread_speed)
+                      window_frames=s.frames(s.draw_window), min_speed=s.thread_speed, commanded_ratio=commanded,
+                      blames=(*line.zone_blames(z), z.upstream, z.downstream))
 
     def reset(self) -> None:
         """Forget the averaging windows (the next window must fill again)."""
         self._means = [RollingMean(self.window_frames) for _ in range(4)]
         self._steady = RollingMean(self.window_frames)
+        self._x = RollingMean(self.window_frames)  # speed ratio - 1
+        self._xx = RollingMean(self.window_frames)
+        self._xprev = RollingMean(self.window_frames)  # x_k-1
+        self._xlag = RollingMean(self.window_frames)  # x_k x_k-1
+        self._prev = Lagged(1)
+
+    def _ratio_noise(self, v1: Signal, v2: Signal) -> np.ndarray:
+        """Random uncertainty of the window's mean speed ratio (coverage 2), from its variance and lag-one
+        autocorrelation over the window."""
+        with np.errstate(all="ignore"):
+            x = v2.value / v1.value - 1.0
+        ok = v1.ok & v2.ok & np.isfinite(x)
+        x = np.where(ok, x, 0.0)
+        prev, ok_prev = self._prev.update(x, ok)
+        prev = np.where(ok_prev, prev, 0.0)
+        m, _ = self._x.update(x, ok)
+        m_prev, _ = self._xprev.update(prev, ok_prev)
+        mm, _ = self._xx.update(x * x, ok)
+        ml, _ = self._xlag.update(x * prev, ok & ok_prev)
+        n = self.window_frames
+        with np.errstate(all="ignore"):
+            var = np.maximum(mm - m * m, 0.0) * n / max(n - 1, 1)
+            cov = ml - m * m_prev  # the two means differ by the window's end samples: not m * m
+            r1 = np.where(var > 0, cov / var, 0.0)
+        return mean_ratio_uncertainty(var, r1, n)
 
     def update(self, block: Block) -> CheckResult:
         sig = [block.signal(n) for n in self.names]
@@ -159,21 +249,41 @@ class DrawCheck:
         (t1, ok1), (t2, ok2), (v1, okv1), (v2, okv2) = avg
         running = block.line_state == int(LineState.RUNNING)
         _, steady = self._steady.update(running.astype(float), running)
-        pred = steady_span_tension(t1, v1, v2, self.et)
+        noise = self._ratio_noise(sig[2], sig[3])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            measured = v2 / v1
+        if self.commanded_ratio is not None:
+            r_cmd = self.commanded_ratio
+            with np.errstate(invalid="ignore"):
+                agree = np.abs(measured - r_cmd) <= self.ratio_tol * r_cmd + np.nan_to_num(noise, nan=0.0)
+            ratio = np.where(agree, r_cmd, measured)
+            random = np.where(agree, 0.0, noise)
+        else:
+            agree = np.zeros(block.n, dtype=bool)
+            ratio, random = measured, noise
+        pred = steady_span_tension(t1, 1.0, ratio, self.et)
         acc1 = self.t1_acc[0] + self.t1_acc[1] * np.abs(t1)
         acc2 = self.t2_acc[0] + self.t2_acc[1] * np.abs(t2)
-        band = draw_band(t1, v1, v2, self.et, modulus_tol=self.modulus_tol, ratio_tol=self.ratio_tol,
-                         t1_acc=acc1, t2_acc=acc2)
+        band = draw_band(t1, 1.0, ratio, self.et, modulus_tol=self.modulus_tol, ratio_tol=self.ratio_tol,
+                         t1_acc=acc1, t2_acc=acc2, ratio_random=random)
         resid = t2 - pred
         with np.errstate(invalid="ignore", divide="ignore"):
-            et_eff = (t2 * v2 - v1 * t1) / (v2 - v1)
-        et_eff = np.where(np.abs(v2 - v1) > 1e-4 * np.abs(v2), et_eff, np.nan)
+            et_eff = (t2 * ratio - t1) / (ratio - 1.0)
+            gain = t2 / pred
+        et_eff = np.where(np.abs(ratio - 1.0) > 1e-4 * np.abs(ratio), et_eff, np.nan)
+        with np.errstate(invalid="ignore"):
+            slack = ~(pred > 0)
+            # the window's means and the rollers now: a long window must not judge a line that has just stopped
+            slow = (np.fmin(v1, v2) <= self.min_speed) | ~(np.fmin(sig[2].value, sig[3].value) > self.min_speed)
         reason = combine_reasons(
             (~steady, Reason.LINE_STATE),
             (~(ok1 & ok2 & okv1 & okv2), Reason.INPUT_BAD),
-            ((v1 <= self.min_speed) | (v2 <= self.min_speed), Reason.OUT_OF_DOMAIN),
+            (slow | slack, Reason.OUT_OF_DOMAIN),
             n=block.n,
         )
         with np.errstate(invalid="ignore", divide="ignore"):
             value = resid / band
-        return finalise(value, reason, residual=resid, band=band, predicted=pred, stiffness_eff=et_eff)
+        valid = reason == int(Reason.OK)
+        return finalise(value, reason, residual=resid, band=band, predicted=pred,
+                        ratio=np.where(valid, gain, np.nan), speed_ratio=ratio, ratio_random=random,
+                        commanded=agree.astype(float), stiffness_eff=et_eff)

@@ -9,8 +9,14 @@ so the share of its capacity that the measured tensions demand is the utilisatio
 
     u = |ln(T_down / T_up)| / (mu_eff * theta)
 
-and the check reports ``u * SF``: the share of the *safe* capacity used (1.0 means
-the margin has shrunk to exactly the configured safety factor SF).
+The live check reports ``u`` itself: the share of the real capacity at the current
+speed (mu_eff derated for the air film), so 1.0 means the roller is at the point of
+slipping. Its defaults warn at 0.85 and alarm at 0.95 of that capacity: close enough
+to slip that an operator has to act, far enough from a line running normally within
+its capacity not to fire on it (common practice, no source). The safety factor SF is
+a design criterion (a roller is *designed* to use at most 1/SF of its capacity); it
+is reported by the design margins of :mod:`spanwatch.monitor.design` (``spanwatch
+check-config``) and as the extra ``share_of_safe`` (u * SF), not alarmed on.
 
 Sources: the Euler–Eytelwein belt-friction (capstan) equation; ASTM G143, "Standard
 Test Method for Measurement of Web/Roller Friction Characteristics", measures the COF
@@ -36,8 +42,12 @@ from spanwatch.rules.base import (
     finalise,
 )
 from spanwatch.rules.linemodel import LineModel
+from spanwatch.rules.slip import SLIP_DEFAULTS, slip_ratio
+from spanwatch.rules.windows import forward_fill_index
 
 UTILISATION_CAP = 1e3
+# a roller whose surface runs this far from the web slips (the slip check's default warning limit)
+SLIPPING = SLIP_DEFAULTS.warning if SLIP_DEFAULTS.warning is not None else SLIP_DEFAULTS.alarm
 
 
 def capstan_ratio_limit(mu: ArrayLike, wrap: ArrayLike) -> np.ndarray:
@@ -83,22 +93,65 @@ def traction_utilisation(t_up: ArrayLike, t_down: ArrayLike, mu_eff: ArrayLike, 
     return np.where(ok, u, np.nan)
 
 
+def demonstrated_cof(t_a: ArrayLike, t_b: ArrayLike, wrap: ArrayLike) -> np.ndarray:
+    """The COF a roller has proven by holding the ratio of ``t_a`` and ``t_b`` without slip: ``|ln(T_b/T_a)| / theta``.
+
+    A roller that grips at the ratio T_high / T_low has mu_eff >= ln(T_high / T_low) / theta
+    (capstan equation solved for mu), so the value is a lower bound on the effective COF while
+    the roller does not slip, and an estimate of it at the moment it slips (the ratio is then
+    held at the capstan limit). NaN where a tension is not positive or not finite, or the wrap is
+    not positive. Source: Euler–Eytelwein capstan equation; ASTM G143 derives the COF this way.
+
+    >>> round(float(demonstrated_cof(100.0, 256.6, np.pi)), 3)
+    0.3
+    """
+    a, b = np.asarray(t_a, dtype=float), np.asarray(t_b, dtype=float)
+    w = np.asarray(wrap, dtype=float)
+    with np.errstate(all="ignore"):
+        mu = np.abs(np.log(b / a)) / w
+        ok = (a > 0) & (b > 0) & np.isfinite(a) & np.isfinite(b) & (w > 0) & np.isfinite(mu)
+    return np.where(ok, mu, np.nan)
+
+
+def settled_after_start(t: np.ndarray, stopped: np.ndarray, within: np.ndarray, settle: float,
+                        carried: tuple[bool, float]) -> tuple[np.ndarray, tuple[bool, float]]:
+    """Per frame: has the line settled since it last stood still? And the state to carry to the next block.
+
+    A start ends at the first frame after the last STOPPED frame where ``within`` holds (the
+    tensions have reached their setpoints) or ``settle`` seconds have passed since that stop.
+    ``carried`` is (settled at the end of the previous block, time of its last stopped frame);
+    a check that has never seen the line stop starts settled (it joined a running line).
+    """
+    was_settled, stop_t = carried
+    last_stop = forward_fill_index(stopped)
+    since = np.where(last_stop >= 0, t[np.maximum(last_stop, 0)], stop_t)
+    with np.errstate(invalid="ignore"):
+        cond = ~stopped & (within | (t - since >= settle))
+    last_cond = forward_fill_index(cond)
+    settled = (last_cond > last_stop) | ((last_stop < 0) & was_settled)
+    if t.size == 0:
+        return settled, carried
+    return settled, (bool(settled[-1]), float(since[-1]))
+
+
 DEFAULTS = AlarmDefaults(
     direction="high",
-    unit="share of safe capacity",
-    warning=0.8,
-    alarm=1.0,
+    unit="share of capacity",
+    warning=0.85,
+    alarm=0.95,
     deadband=0.05,
     on_delay=1.0,
     off_delay=5.0,
     priority="high",
     warning_priority="medium",
-    cause="Tension ratio across the driven roller approaches what friction over its wrap can hold: "
-    "COF lower than assumed (contamination, slip additive, worn covering), air film at speed, "
-    "or a tension setpoint change that raised the ratio.",
+    cause="Tension ratio across the driven roller approaches what friction over its wrap can hold at this "
+    "speed: COF lower than assumed (contamination, slip additive, worn covering), air film at speed, "
+    "a tension setpoint change that raised the ratio, or a load cell on either side reading wrong "
+    "(a drifting tension tag makes the ratio look larger or smaller than it is).",
     consequence="Roller slips against the web: scratches, tension upsets downstream, wrinkles, web break.",
     action="Lower the tension ratio across the roller or the line speed; check the roller covering, "
-    "nip or vacuum; clean the roller; verify the COF of this web lot.",
+    "nip or vacuum; clean the roller; verify the COF of this web lot; compare both load cells with a "
+    "calibration weight if the ratio looks implausible.",
     response_time=60.0,
 )
 
@@ -121,27 +174,52 @@ NO_DRIVE_DEFAULTS = AlarmDefaults(
 
 
 class TractionCheck:
-    """Streaming traction margin of one driven roller (stateless between blocks)."""
+    """Streaming traction utilisation of one driven roller: the share of its capacity at the current speed.
+
+    Valid while the line moves in production (not stopped, not threading) and, after a start, once
+    both tensions have come within ``startup_band`` of their setpoints or ``startup_settle`` seconds
+    have passed (a driven roller transmits no meaningful ratio while tensions build). A web lifted
+    off the roller by its air film (no traction left, a ratio demanded) is OUT_OF_DOMAIN with the
+    extra ``lifted`` = 1: the capstan equation has no capacity left to compare with (the slip
+    check sees the consequence).
+
+    Extras per frame: ``utilisation`` (= the value), ``share_of_safe`` (u * SF, the design view),
+    ``margin`` (1/u), ``mu_eff``, ``air_film`` (m), ``lifted`` and ``no_drive`` flags,
+    ``mu_demonstrated`` (ln(T_high/T_low)/theta while the roller does not slip: the lowest COF the
+    data prove; a drift detector can watch the highest ratio held), ``slip`` (relative, from the
+    roller's own encoder where it has one) and ``mu_at_slip`` (the same ratio on frames where that
+    slip is beyond the slip check's warning limit: an estimate of the actual mu_eff).
+    """
 
     kind: ClassVar[str] = "traction"
     rests_on: ClassVar[str] = (
         "capstan equation with a constant, measured COF (ASTM G143); steady state; air film from "
-        "Knox–Sweeney with the configured speed convention, derated against combined roughness")
+        "Knox–Sweeney with the configured speed convention, derated against combined roughness; "
+        "both load cells read true (a drifting load cell moves the ratio)")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
 
     def __init__(self, object_id: str, *, zone_up: str, zone_down: str, mu: float, wrap: float,
                  radius: float, sigma: float, film_factor: float, safety_factor: float,
                  min_drive_tension: float, viscosity: float, air_model: str, convention: str,
-                 floor: float, roller_speed: str | None) -> None:
+                 floor: float, roller_speed: str | None, draw: float = 0.0, min_speed: float = 0.0,
+                 setpoints: tuple[tuple[float, float] | None, tuple[float, float] | None] = (None, None),
+                 startup_settle: float = 0.0, startup_band: float = 0.2,
+                 blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.t_up = f"tension/{zone_up}"
         self.t_down = f"tension/{zone_down}"
+        self.has_encoder = roller_speed is not None
         self.roller_speed = roller_speed or "speed/web"
         self.inputs = (self.t_up, self.t_down, "speed/web", self.roller_speed)
         self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
+        self.blames = blames or (object_id,)
         self.mu, self.wrap, self.radius, self.sigma = mu, wrap, radius, sigma
         self.film_factor, self.sf, self.min_t = film_factor, safety_factor, min_drive_tension
         self.viscosity, self.air_model, self.convention, self.floor = viscosity, air_model, convention, floor
+        self.draw, self.min_speed = draw, min_speed
+        self.setpoints = setpoints
+        self.settle, self.band = startup_settle, startup_band
+        self.reset()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[TractionCheck]:
@@ -152,15 +230,30 @@ class TractionCheck:
             if zb is None or za is None:
                 continue
             speed = f"speed/{r.id}" if line.has_signal(f"speed/{r.id}") else None
+            blames = tuple(x for x in (r.id, zb.tension_tag, za.tension_tag) if x)
             yield cls(r.id, zone_up=zb.id, zone_down=za.id, mu=r.cof, wrap=r.wrap, radius=r.diameter / 2,
                       sigma=float(combined_roughness(mat.roughness, r.roughness)),
                       film_factor=r.air_film_factor * mat.air_film_factor, safety_factor=r.safety_factor,
                       min_drive_tension=s.min_drive_tension, viscosity=s.air_viscosity,
                       air_model=s.air_film_model, convention=s.air_speed_convention, floor=s.air_traction_floor,
-                      roller_speed=speed)
+                      roller_speed=speed, draw=r.draw, min_speed=s.thread_speed,
+                      setpoints=(zb.setpoint_range, za.setpoint_range), startup_settle=s.startup_settle,
+                      startup_band=s.startup_band, blames=blames)
 
     def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
+        """Forget the start-up state: a check that joins a running line judges it at once."""
+        self._start: tuple[bool, float] = (True, -np.inf)
+
+    def _within_setpoints(self, up: np.ndarray, down: np.ndarray) -> np.ndarray:
+        """Both tensions within the start-up band of their zone's setpoint range (a zone without one: True)."""
+        out = np.ones(up.shape, dtype=bool)
+        for x, sp in zip((up, down), self.setpoints, strict=True):
+            if sp is None:
+                continue
+            lo, hi = sp
+            with np.errstate(invalid="ignore"):
+                out &= (x >= lo * (1.0 - self.band)) & (x <= hi * (1.0 + self.band))
+        return out
 
     def update(self, block: Block) -> CheckResult:
         up, down = block.signal(self.t_up), block.signal(self.t_down)
@@ -170,17 +263,34 @@ class TractionCheck:
                                   viscosity=self.viscosity, film_factor=self.film_factor,
                                   model=self.air_model, convention=self.convention, floor=self.floor)
         u = traction_utilisation(up.value, down.value, mu_eff, self.wrap)
-        no_drive = np.fmax(up.value, down.value) < self.min_t
+        mu_shown = demonstrated_cof(up.value, down.value, self.wrap)
+        with np.errstate(invalid="ignore"):
+            no_drive = np.fmax(up.value, down.value) < self.min_t
+            lifted = (np.asarray(mu_eff) * self.wrap <= 0) & (mu_shown > 0)
+        stopped = block.line_state == int(LineState.STOPPED)
+        settled, self._start = settled_after_start(block.t, stopped, self._within_setpoints(up.value, down.value),
+                                                   self.settle, self._start)
         reason = combine_reasons(
-            (block.line_state == int(LineState.STOPPED), Reason.LINE_STATE),
+            (stopped | (block.line_state == int(LineState.THREADING)) | ~settled, Reason.LINE_STATE),
             (~(up.ok & down.ok & vw.ok & vr.ok), Reason.INPUT_BAD),
-            (no_drive | (lower <= 0), Reason.OUT_OF_DOMAIN),
+            (no_drive | (lower <= 0) | lifted, Reason.OUT_OF_DOMAIN),
             n=block.n,
         )
+        valid = reason == int(Reason.OK)
+        if self.has_encoder:
+            s = slip_ratio(vr.value, vw.value, self.draw, self.min_speed)
+            with np.errstate(invalid="ignore"):
+                slipping = np.abs(s) >= SLIPPING
+        else:  # no encoder of its own: slip is not seen here, the bound is reported as if it grips
+            s = np.full(block.n, np.nan)
+            slipping = np.zeros(block.n, dtype=bool)
         with np.errstate(divide="ignore"):
             margin = np.where(u > 0, 1.0 / u, np.inf)
-        return finalise(u * self.sf, reason, mu_eff=mu_eff, air_film=h, utilisation=u,
-                        margin=margin, no_drive=no_drive.astype(float))
+        return finalise(u, reason, mu_eff=mu_eff, air_film=h, utilisation=np.where(valid, u, np.nan),
+                        share_of_safe=np.where(valid, u * self.sf, np.nan), margin=margin,
+                        no_drive=no_drive.astype(float), lifted=lifted.astype(float),
+                        mu_demonstrated=np.where(valid & ~slipping, mu_shown, np.nan),
+                        mu_at_slip=np.where(valid & slipping, mu_shown, np.nan), slip=s)
 
 
 class NoDriveCheck:
@@ -190,12 +300,14 @@ class NoDriveCheck:
     rests_on: ClassVar[str] = "load cells read true near zero; a driven roller needs tension to transmit drive"
     defaults: ClassVar[AlarmDefaults] = NO_DRIVE_DEFAULTS
 
-    def __init__(self, object_id: str, *, zone_up: str, zone_down: str, min_drive_tension: float) -> None:
+    def __init__(self, object_id: str, *, zone_up: str, zone_down: str, min_drive_tension: float,
+                 blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.t_up = f"tension/{zone_up}"
         self.t_down = f"tension/{zone_down}"
         self.inputs = (self.t_up, self.t_down)
         self.drives = (object_id,)  # the drive it assumes healthy (a drive fault suppresses it)
+        self.blames = blames or (object_id,)
         self.min_t = min_drive_tension
 
     @classmethod
@@ -204,7 +316,8 @@ class NoDriveCheck:
         for r in line.driven_rollers:
             zb, za = line.zone_before(r.id), line.zone_after(r.id)
             if zb is not None and za is not None:
-                yield cls(r.id, zone_up=zb.id, zone_down=za.id, min_drive_tension=line.settings.min_drive_tension)
+                yield cls(r.id, zone_up=zb.id, zone_down=za.id, min_drive_tension=line.settings.min_drive_tension,
+                          blames=tuple(x for x in (r.id, zb.tension_tag, za.tension_tag) if x))
 
     def reset(self) -> None:
         """Nothing is carried from one block to the next."""

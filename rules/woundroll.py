@@ -185,6 +185,45 @@ LENGTH_RATE_DEFAULTS = AlarmDefaults(
 )
 
 
+# A calibrated effective caliper outside these multiples of the single-ply caliper is no stack of this web: a
+# wound stack is a little thicker than its plies (air between wraps), never half or three times (the range the
+# line file allows for stack_factor; common practice, no source). Such a calibration comes from a frozen
+# diameter or a miscounting length, and the roll is not judged on it.
+PLAUSIBLE_STACK = (0.5, 3.0)
+ROLL_HISTORY = 20  # calibrated calipers of earlier rolls kept per winder
+MAX_LOCAL_SAMPLES = 100_000  # samples kept for the local slope (bounds memory on a very slow line)
+
+
+def local_slope(x: np.ndarray, y: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Least-squares slope of y on x over the samples ``start[k] .. k`` for every k (prefix sums).
+
+    The local d(D^2)/dL of a roll: over a window of the last N metres it is ``+-4 t_local / pi``,
+    so its ratio to the calibrated slope is the ratio of the local effective caliper to the
+    calibrated one (:func:`wound_length`, same source). NaN where the window holds fewer than
+    three samples or no spread in x.
+
+    >>> xs = np.arange(10.0); [round(float(v), 6) for v in local_slope(xs, 3 * xs + 1, np.zeros(10, int))[2:4]]
+    [3.0, 3.0]
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    if x.size == 0:
+        return np.zeros(0)
+    xc, yc = x - x[0], y - y[0]
+    def prefix(v: np.ndarray) -> np.ndarray:
+        return np.concatenate([[0.0], np.cumsum(v)])
+    s1, sx, sy, sxx, sxy = (prefix(v) for v in (np.ones_like(xc), xc, yc, xc * xc, xc * yc))
+    end = np.arange(1, x.size + 1)
+    st = np.asarray(start, dtype=int)
+    n = s1[end] - s1[st]
+    ax, ay = sx[end] - sx[st], sy[end] - sy[st]
+    axx, axy = sxx[end] - sxx[st], sxy[end] - sxy[st]
+    with np.errstate(all="ignore"):
+        det = n * axx - ax * ax
+        slope = (n * axy - ax * ay) / det
+    return np.where((n >= 3) & (det > 1e-12 * np.maximum(n * axx, 1e-300)) & np.isfinite(slope), slope, np.nan)
+
+
 class RollDiameterCheck:
     """Measured roll diameter against the diameter predicted from wound length (calibrated caliper).
 
@@ -194,6 +233,23 @@ class RollDiameterCheck:
     that the fit is frozen and the check reports ``(D_meas - D_pred) / band`` where the
     band combines the caliper uncertainty (calibration plus an allowed drift), the
     diameter sensor accuracy and the length counter accuracy.
+
+    What the calibration and the roll say beyond the residual (extras, per frame):
+
+    - ``implausible`` = 1: the calibrated caliper is outside :data:`PLAUSIBLE_STACK` times the
+      single-ply caliper (a frozen diameter or a miscounting length calibrated it): the roll is
+      OUT_OF_DOMAIN, never judged on it.
+    - ``past_empty`` = 1: the predicted D^2 falls below the core's (an unwind whose length counter
+      has paid out more than the roll held): OUT_OF_DOMAIN, not a prediction of zero.
+    - ``caliper_nominal_dev``: calibrated caliper / (caliper x stack_factor) - 1;
+      ``caliper_history_dev``: calibrated caliper / median of the earlier rolls on this winder - 1
+      (NaN for the first roll); ``caliper_flag`` = 1 where either departs by more than the
+      material's ``stack_factor_tolerance``. The history is the check's state: kept from roll to
+      roll, forgotten by ``reset`` (a gap, a new run); it assumes one grade per run.
+    - ``caliper_ratio``: the local effective caliper (least-squares slope of D^2 against length over
+      the last ``local_length`` metres, :func:`local_slope`) over the calibrated one: 1 while the
+      roll builds as calibrated; a caliper change within the roll moves it (a drift detector can
+      watch it).
     """
 
     kind: ClassVar[str] = "roll_diameter"
@@ -203,14 +259,20 @@ class RollDiameterCheck:
 
     def __init__(self, object_id: str, *, rewind: bool, core_diameter: float, nominal_caliper: float,
                  stack_factor: float, calibration_length: float, caliper_drift: float,
-                 diameter_acc: tuple[float, float], length_acc: tuple[float, float]) -> None:
+                 diameter_acc: tuple[float, float], length_acc: tuple[float, float],
+                 stack_factor_tolerance: float = 0.1, local_length: float | None = None,
+                 blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.d_name, self.l_name = f"diameter/{object_id}", f"length/{object_id}"
         self.inputs = (self.d_name, self.l_name)
+        self.blames = blames or (object_id,)
         self.sign = 1.0 if rewind else -1.0
         self.core = core_diameter
+        self.single_ply = nominal_caliper
         self.t_prior = nominal_caliper * stack_factor
+        self.tolerance = stack_factor_tolerance
         self.cal_len = calibration_length
+        self.local_len = local_length if local_length is not None else calibration_length
         self.drift = caliper_drift
         self.d_acc, self.l_acc = diameter_acc, length_acc
         self.reset()
@@ -224,13 +286,26 @@ class RollDiameterCheck:
                 yield cls(w.id, rewind=w.rewind, core_diameter=w.core_diameter, nominal_caliper=mat.caliper,
                           stack_factor=mat.stack_factor, calibration_length=w.calibration_length,
                           caliper_drift=mat.caliper_drift, diameter_acc=w.diameter_accuracy,
-                          length_acc=w.length_accuracy)
+                          length_acc=w.length_accuracy, stack_factor_tolerance=mat.stack_factor_tolerance,
+                          blames=tuple(x for x in (w.id, w.diameter_tag or w.rpm_tag, w.length_tag) if x))
 
     def reset(self) -> None:
-        """Start a new roll: forget the calibration."""
+        """Forget everything: this roll's calibration and the calipers of the earlier rolls."""
+        self.history: list[float] = []
+        self.fit: tuple[float, float, float] | None = None
+        self._new_roll()
+
+    def _new_roll(self) -> None:
+        """Start a new roll: keep the last roll's plausible calibration in the history, forget the rest."""
+        if self.fit is not None and not self.implausible:
+            self.history = [*self.history, self.sign * self.fit[1] * np.pi / 4.0][-ROLL_HISTORY:]
         self.l0: float | None = None
         self.sums = np.zeros(5)  # n, sum x, sum y, sum xx, sum xy   (x = dL, y = D^2)
-        self.fit: tuple[float, float, float] | None = None  # a = D0^2, b = slope, sigma_t
+        self.fit = None  # a = D0^2, b = slope, sigma_t
+        self.implausible = False
+        self.devs = (np.nan, np.nan, 0.0)  # nominal, history, flag
+        self._tx = np.zeros(0)  # the roll's last samples (x, y) for the local slope
+        self._ty = np.zeros(0)
 
     @property
     def caliper(self) -> tuple[float, float] | None:
@@ -247,10 +322,9 @@ class RollDiameterCheck:
         finite = np.isfinite(d.value) & np.isfinite(ln.value)
         with np.errstate(invalid="ignore"):
             usable = d.ok & ln.ok & finite & ~settling & (d.value > 0)
-        value = np.full(n, np.nan)
-        resid = np.full(n, np.nan)
-        band = np.full(n, np.nan)
-        t_eff = np.full(n, np.nan)
+        out = {k: np.full(n, np.nan) for k in ("value", "residual", "band", "caliper_eff", "caliper_ratio",
+                                               "caliper_nominal_dev", "caliper_history_dev", "caliper_flag")}
+        flags = {k: np.zeros(n, dtype=bool) for k in ("implausible", "past_empty")}
         warming = np.ones(n, dtype=bool)
         # Split at roll starts; each segment continues the state of the one before it.
         cuts = np.flatnonzero(starts)
@@ -258,21 +332,36 @@ class RollDiameterCheck:
         with np.errstate(all="ignore"):  # huge but finite inputs give inf, marked invalid by finalise
             for lo, hi in itertools.pairwise(bounds):
                 if starts[lo]:
-                    self.reset()
-                self._segment(slice(lo, hi), block.t, d.value, ln.value, usable, value, resid, band, t_eff,
-                              warming)
+                    self._new_roll()
+                self._segment(slice(lo, hi), d.value, ln.value, usable, out, flags, warming)
         reason = combine_reasons(
             (settling, Reason.ROLL_CHANGE),
             (~(d.ok & ln.ok & finite), Reason.INPUT_BAD),
-            (~usable, Reason.OUT_OF_DOMAIN),
+            (~usable | flags["implausible"] | flags["past_empty"], Reason.OUT_OF_DOMAIN),
             (warming, Reason.WARMING_UP),
             n=n,
         )
-        return finalise(value, reason, residual=resid, band=band, caliper_eff=t_eff)
+        value = out.pop("value")
+        return finalise(value, reason, **out, implausible=flags["implausible"].astype(float),
+                        past_empty=flags["past_empty"].astype(float))
 
-    def _segment(self, sl: slice, t: np.ndarray, d: np.ndarray, ln: np.ndarray, usable: np.ndarray,
-                 value: np.ndarray, resid: np.ndarray, band: np.ndarray, t_eff: np.ndarray,
-                 warming: np.ndarray) -> None:
+    def _local_ratio(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """caliper_ratio for the new samples (x, y): local slope over the last ``local_len`` metres / calibrated."""
+        xs, ys = np.concatenate([self._tx, x]), np.concatenate([self._ty, y])
+        ax = np.abs(xs)
+        start = np.searchsorted(ax, ax - self.local_len, side="left")
+        m = self._tx.size
+        full = ax[m:] - ax[start[m:]] >= 0.9 * self.local_len
+        slope = local_slope(xs, ys, start)[m:]
+        keep = int(start[-1]) if xs.size else 0
+        keep = max(keep, xs.size - MAX_LOCAL_SAMPLES)
+        self._tx, self._ty = xs[keep:], ys[keep:]
+        if self.fit is None or self.implausible:
+            return np.full(x.size, np.nan)
+        return np.where(full, slope / self.fit[1], np.nan)
+
+    def _segment(self, sl: slice, d: np.ndarray, ln: np.ndarray, usable: np.ndarray, out: dict[str, np.ndarray],
+                 flags: dict[str, np.ndarray], warming: np.ndarray) -> None:
         idx = np.flatnonzero(usable[sl]) + sl.start
         if idx.size == 0:
             return
@@ -286,14 +375,25 @@ class RollDiameterCheck:
             k = int(done[0]) if done.size else idx.size
             xs, ys = x[:k], y[:k]
             self.sums += [k, xs.sum(), ys.sum(), (xs * xs).sum(), (xs * ys).sum()]
+            self._local_ratio(xs, ys)  # the calibration's samples start the local window
             if not done.size:
                 return
             self._fit(float(d[idx[k]]), abs(float(x[k])))
-            idx, x = idx[k:], x[k:]
+            idx, x, y = idx[k:], x[k:], y[k:]
+        out["caliper_ratio"][idx] = self._local_ratio(x, y)
         a, b, sig_t = self.fit  # type: ignore[misc]
-        with np.errstate(invalid="ignore"):
-            pred = np.sqrt(np.maximum(a + b * x, 0.0))
         t_cal = self.sign * b * np.pi / 4.0
+        out["caliper_eff"][idx] = t_cal
+        out["caliper_nominal_dev"][idx], out["caliper_history_dev"][idx], out["caliper_flag"][idx] = self.devs
+        warming[idx] = False
+        if self.implausible:
+            flags["implausible"][idx] = True
+            return
+        arg = a + b * x
+        past = arg < (self.core**2 if self.sign < 0 else 0.0)  # an unwind paid out past its core
+        flags["past_empty"][idx] = past
+        with np.errstate(invalid="ignore"):
+            pred = np.sqrt(np.where(past, np.nan, arg))
         sig_total = np.hypot(sig_t, self.drift * t_cal)
         with np.errstate(invalid="ignore", divide="ignore"):
             dd_dt = 2.0 * np.abs(x) / (np.pi * pred)
@@ -302,10 +402,9 @@ class RollDiameterCheck:
         sl_ = self.l_acc[0] + self.l_acc[1] * np.abs(x)
         bnd = np.sqrt((dd_dt * sig_total) ** 2 + sd**2 + (dd_dl * sl_) ** 2)
         r = d[idx] - pred
-        resid[idx], band[idx], t_eff[idx] = r, bnd, t_cal
+        out["residual"][idx], out["band"][idx] = r, bnd
         with np.errstate(invalid="ignore", divide="ignore"):
-            value[idx] = r / bnd
-        warming[idx] = False
+            out["value"][idx] = r / bnd
 
     def _fit(self, d_end: float, span: float) -> None:
         n, sx, sy, sxx, sxy = self.sums
@@ -324,6 +423,16 @@ class RollDiameterCheck:
         t_cal = abs(b) * np.pi / 4.0
         sig_t = float(np.hypot(sig_t, t_cal * (self.l_acc[1] + self.l_acc[0] / span)))
         self.fit = (float(a), float(b), sig_t)
+        self._judge(self.sign * float(b) * np.pi / 4.0)
+
+    def _judge(self, t_cal: float) -> None:
+        """Plausibility of the calibrated caliper, and how far it is from nominal and from the earlier rolls."""
+        lo, hi = PLAUSIBLE_STACK
+        self.implausible = not (lo * self.single_ply <= t_cal <= hi * self.single_ply)
+        nominal = t_cal / self.t_prior - 1.0
+        history = t_cal / float(np.median(self.history)) - 1.0 if self.history else np.nan
+        flag = abs(nominal) > self.tolerance or (np.isfinite(history) and abs(history) > self.tolerance)
+        self.devs = (nominal, history, float(flag))
 
 
 class SpeedDiameterCheck:
@@ -334,10 +443,12 @@ class SpeedDiameterCheck:
                                "surface speed in steady running")
     defaults: ClassVar[AlarmDefaults] = SPEED_DIAMETER_DEFAULTS
 
-    def __init__(self, object_id: str, *, window_frames: int, min_rev_per_s: float) -> None:
+    def __init__(self, object_id: str, *, window_frames: int, min_rev_per_s: float,
+                 blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.names = (f"diameter/{object_id}", f"rotation/{object_id}", "speed/web")
         self.inputs = self.names
+        self.blames = blames or (object_id,)
         self.window_frames = window_frames
         self.min_n = min_rev_per_s
         self.reset()
@@ -349,7 +460,8 @@ class SpeedDiameterCheck:
         for w in line.winders_in_path:
             if w.has_diameter_sensor and w.has_rpm:
                 yield cls(w.id, window_frames=s.frames(s.check_window),
-                          min_rev_per_s=s.thread_speed / (np.pi * w.max_diameter))
+                          min_rev_per_s=s.thread_speed / (np.pi * w.max_diameter),
+                          blames=tuple(x for x in (w.id, w.diameter_tag, w.rpm_tag) if x))
 
     def reset(self) -> None:
         """Forget the averaging windows."""
@@ -381,10 +493,11 @@ class LengthRateCheck:
     rests_on: ClassVar[str] = "web speed reference is true web speed at the length counter"
     defaults: ClassVar[AlarmDefaults] = LENGTH_RATE_DEFAULTS
 
-    def __init__(self, object_id: str, *, window_frames: int, min_speed: float) -> None:
+    def __init__(self, object_id: str, *, window_frames: int, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
         self.names = (f"length/{object_id}", "speed/web")
         self.inputs = self.names
+        self.blames = blames or (object_id,)
         self.window_frames = window_frames
         self.min_speed = min_speed
         self.reset()
@@ -395,7 +508,8 @@ class LengthRateCheck:
         s = line.settings
         for w in line.winders_in_path:
             if line.has_signal(f"length/{w.id}"):
-                yield cls(w.id, window_frames=s.frames(s.check_window), min_speed=s.thread_speed)
+                yield cls(w.id, window_frames=s.frames(s.check_window), min_speed=s.thread_speed,
+                          blames=tuple(x for x in (w.id, w.length_tag) if x))
 
     def reset(self) -> None:
         """Forget the windows."""

@@ -96,14 +96,14 @@ def test_csv_and_json_agree_with_alarm_points(path):
 
 
 def test_values_written_in_the_example_file_come_through():
-    """Values typed by hand in config/quillmere-q2.toml ``[checks]``: traction warning 0.8, pull_2 override 0.75,
+    """Values typed by hand in config/quillmere-q2.toml ``[checks]``: traction warning 0.85, pull_2 override 0.8,
     on_delay "1 s", off_delay "5 s"; runout warning "5 %" (a fraction 0.05 shown as 5 %); roll_diameter alarm 2.0
     tolerance bands."""
     path = REPO / "config" / "quillmere-q2.toml"
     doc = {r["key"]: r for r in json.loads(listing(path, "--format", "json"))}
-    assert doc["traction:pull_1:warning"]["limit"] == 0.8
-    assert doc["traction:pull_2:warning"]["limit"] == 0.75
-    assert doc["traction:pull_2:alarm"]["limit"] == 1.0
+    assert doc["traction:pull_1:warning"]["limit"] == 0.85
+    assert doc["traction:pull_2:warning"]["limit"] == 0.8
+    assert doc["traction:pull_2:alarm"]["limit"] == 0.95
     assert (doc["traction:pull_1:alarm"]["on_delay_s"], doc["traction:pull_1:alarm"]["off_delay_s"]) == (1.0, 5.0)
     assert doc["traction:pull_1:alarm"]["cause"].startswith("Tension ratio across a pull roll")
     assert doc["runout:unwind:warning"]["limit"] == pytest.approx(0.05)

@@ -164,7 +164,7 @@ BROKEN = {
 # stated with its reason in monitor/config.py.
 S2_ACC = 'accuracy = 4.0                     # N, load-cell pair after calibration'
 UNWIND_FROZEN = 'frozen_after = "60 s"\nfrozen_tolerance = 0.0'
-TRACTION = 'warning = 0.8                      # share of the safe capacity (capacity / safety factor)\nalarm = 1.0'
+TRACTION = 'warning = 0.85                     # share of the capacity at this speed (1.0: slip)\nalarm = 0.95'
 S2 = 'tags."q2.s2.tension"'
 
 
@@ -212,11 +212,11 @@ BAD_VALUES = {
     # direction high (traction): the warning must not be above the alarm
     "warning_above_alarm_high": (_set(TRACTION, "warning = 1.2\nalarm = 1.0"), ["checks.traction.warning"]),
     # an override that puts the warning past the kind's alarm, for one object
-    "override_warning_above_alarm": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.75",
+    "override_warning_above_alarm": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.8",
                                           "[checks.traction.overrides.pull_2]\nwarning = 1.5"),
                                      ["checks.traction.overrides.pull_2.warning"]),
     # an override of the alarm alone that falls below the kind's warning
-    "override_alarm_below_warning": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.75",
+    "override_alarm_below_warning": (_set("[checks.traction.overrides.pull_2]\nwarning = 0.8",
                                           "[checks.traction.overrides.pull_2]\nalarm = 0.7"),
                                      ["checks.traction.overrides.pull_2.alarm"]),
     # direction abs (slip): |warning| must not exceed |alarm|
@@ -382,10 +382,50 @@ def test_warning_must_come_before_its_alarm(direction, warning, alarm, ok):
 def test_all_problems_of_the_limits_are_reported_once_per_table(example_text, tmp_path):
     # the kind-level pair is wrong for both pull rolls: one problem at checks.traction.warning, not two
     text = replace_once(example_text, TRACTION, "warning = 1.2\nalarm = 1.0")
-    text = replace_once(text, "[checks.traction.overrides.pull_2]\nwarning = 0.75", "")
+    text = replace_once(text, "[checks.traction.overrides.pull_2]\nwarning = 0.8", "")
     path = tmp_path / "twice.toml"
     path.write_text(text, encoding="utf-8")
     with pytest.raises(ConfigError) as info:
         line = load_line(path)
         alarm_points(line, build_checks(line))
     assert [k for k, _ in info.value.problems] == ["checks.traction.warning"]
+
+
+# --- the draw window, the normal speed and the start-up settle of the traction check --------------------------
+
+
+@pytest.mark.parametrize(("added", "key", "words"), [
+    ('normal_speed = "450 m/min"', "line", "normal_speed at most max_speed"),
+    ('draw_window = "601 s"', "line.draw_window", ""),
+    ('startup_band = "150 %"', "line.startup_band", ""),
+])
+def test_new_line_keys_are_checked(example_text, tmp_path, added, key, words):
+    text = replace_once(example_text, 'check_window = "2 s"\n', f'check_window = "2 s"\n{added}\n')
+    path = tmp_path / "line.toml"
+    path.write_text(text, encoding="utf-8")
+    result = run_cli("check-config", path)
+    message = flat(result.stderr)
+    assert result.exit_code == 2, result.stdout[:300]
+    assert str(path) in message and key in message and words in message
+
+
+def test_draw_window_in_frames_is_bounded(example_text, tmp_path):
+    # 500 s at 1 kHz is 500 000 frames per signal: more than a window may hold (MAX_WINDOW_FRAMES)
+    text = replace_once(example_text, 'frame_rate = "50 Hz"', 'frame_rate = "1000 Hz"')
+    text = replace_once(text, 'check_window = "2 s"\n', 'check_window = "2 s"\ndraw_window = "500 s"\n')
+    path = tmp_path / "line.toml"
+    path.write_text(text, encoding="utf-8")
+    result = run_cli("check-config", path)
+    assert result.exit_code == 2
+    assert "draw_window" in flat(result.stderr)
+
+
+def test_new_line_keys_reach_the_checks(example_text, tmp_path):
+    text = replace_once(example_text, 'check_window = "2 s"\n',
+                        'check_window = "2 s"\ndraw_window = "15 s"\nstartup_settle = "12 s"\nstartup_band = "10 %"\n')
+    path = tmp_path / "line.toml"
+    path.write_text(text, encoding="utf-8")
+    s = load_line(path).model.settings
+    assert (s.draw_window, s.startup_settle, s.startup_band) == (15.0, 12.0, pytest.approx(0.1))
+    draw = next(c for c in build_checks(load_line(path)) if c.kind == "draw")
+    assert draw.window_frames == 15 * 50

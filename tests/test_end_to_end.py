@@ -45,7 +45,7 @@ CASES = [
     ("cof-drop", "draw", "pull_1-pull_2", 30.0,
      "pull_1 slips at the capstan limit, so the middle zone loses the tension its draw should give"),
     ("air-entrainment", "traction", "pull_2", 30.0,
-     "Knox–Sweeney film at 700 m/min exceeds the roughness of pull_2: its capacity falls below the ratio"),
+     "Knox–Sweeney film at 780 m/min exceeds the roughness of pull_2: its capacity falls below the ratio"),
     ("loadcell-drift", "draw", "pull_1-pull_2", 90.0,
      "the s5 reading departs from the tension the draw and the upstream tension predict"),
     ("out-of-round", "runout", "unwind", 30.0, "an eccentric roll modulates tension at its rotation frequency"),

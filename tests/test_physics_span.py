@@ -19,7 +19,15 @@ from hostile import ANY_FLOAT, any_array, no_runtime_warning, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
-from spanwatch.rules.span import draw_band, draw_for_tension, span_tension_rate, steady_span_tension
+from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
+from spanwatch.rules.span import (
+    DrawCheck,
+    draw_band,
+    draw_for_tension,
+    mean_ratio_uncertainty,
+    span_tension_rate,
+    steady_span_tension,
+)
 
 # Example web: 1.2 mil BOPP, E = 2.2 GPa -> Et = E * caliper per unit width.
 ET = 2.2e9 * 1.2 * 25.4e-6
@@ -194,6 +202,7 @@ PURE = {
     "steady_span_tension": (steady_span_tension, 4),
     "draw_for_tension": (draw_for_tension, 3),
     "draw_band": (_draw_band, 8),
+    "mean_ratio_uncertainty": (lambda v, r, n: mean_ratio_uncertainty(v, r, n), 3),
 }
 
 
@@ -203,7 +212,7 @@ def _call_and_check(name, args):
         out = func(*args)
     assert isinstance(out, np.ndarray)
     assert out.shape == np.broadcast_shapes(*(np.shape(a) for a in args))
-    if name == "draw_band":
+    if name in ("draw_band", "mean_ratio_uncertainty"):
         assert np.all(np.isnan(out) | (out >= 0))
 
 
@@ -225,3 +234,106 @@ def test_pure_functions_any_float(name, data):
     if name == "draw_band":
         args[4], args[5] = data.draw(ANY_FLOAT), data.draw(ANY_FLOAT)
     _call_and_check(name, args)
+
+
+# --- the draw check's averaging and its speed ratio (rules/span.py DrawCheck) ---------------------------------
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.5, 0.9])
+def test_mean_uncertainty_of_an_autocorrelated_series_matches_monte_carlo(rho):
+    # Independent: the spread of the means of 4000 simulated AR(1) series of 1000 samples (numpy random
+    # generator), against k s / sqrt(n_eff) with n_eff = n (1 - r1) / (1 + r1) (Bayley & Hammersley 1946, from
+    # memory) fed the series' own variance and lag-one autocorrelation. k = 2 (coverage ~95 %, JCGM 100 6.2).
+    rng = np.random.default_rng(7)
+    n, m, sigma = 1000, 4000, 1.0
+    e = rng.standard_normal((m, n)) * sigma * math.sqrt(1 - rho**2)
+    x = np.empty((m, n))
+    x[:, 0] = rng.standard_normal(m) * sigma
+    for k in range(1, n):
+        x[:, k] = rho * x[:, k - 1] + e[:, k]
+    spread = x.mean(axis=1).std()
+    var = x.var(axis=1, ddof=1)
+    xc = x - x.mean(axis=1, keepdims=True)
+    r1 = (xc[:, 1:] * xc[:, :-1]).mean(axis=1) / xc.var(axis=1)
+    got = mean_ratio_uncertainty(var, r1, n) / 2.0
+    # the AR(1) form is asymptotic in n; the Monte Carlo spread is known to about 1.1 % (4000 series)
+    assert float(np.median(got)) == pytest.approx(spread, rel=0.06)
+
+
+def _draw_block(n, t1, t2, v1, v2, state=LineState.RUNNING):
+    ok = np.ones(n, dtype=bool)
+    tags = TagFrames(("x",), np.zeros((n, 1)), np.zeros((n, 1), dtype=np.int8), np.zeros((n, 1)))
+    sig = {"tension/a": Signal(np.broadcast_to(t1, n).astype(float), ok),
+           "tension/b": Signal(np.broadcast_to(t2, n).astype(float), ok),
+           "speed/r1": Signal(np.broadcast_to(v1, n).astype(float), ok),
+           "speed/r2": Signal(np.broadcast_to(v2, n).astype(float), ok)}
+    return Block(t=np.arange(n) / 50.0, signals=sig, line_state=np.full(n, int(state), dtype=np.int8), tags=tags)
+
+
+def _draw_check(commanded=None, window=500):
+    return DrawCheck("b", zone_up="a", roller_up="r1", roller_down="r2", et=ET, modulus_tol=0.15, ratio_tol=1e-4,
+                     t1_acc=(3.0, 0.0), t2_acc=(3.0, 0.0), window_frames=window, min_speed=0.3,
+                     commanded_ratio=commanded)
+
+
+def exact_steady(t1, ratio):
+    """Steady T2 from the exact mass-flow balance above: eps2 = (V2 / V1)(1 + eps1) - 1, T = Et eps."""
+    return ET * (ratio * (1 + t1 / ET) - 1)
+
+
+def test_draw_check_uses_the_commanded_ratio_while_encoders_agree():
+    # Encoders with 2e-5 relative noise around a commanded draw of 0.1064 %: the averaged ratio agrees with the
+    # command within the encoder tolerance, so the command replaces it and the encoder noise leaves the prediction.
+    rng = np.random.default_rng(1)
+    n, r = 2000, 1.001064
+    t1 = 105.0
+    t2 = exact_steady(t1, r)
+    v1 = 5.0 * (1 + 2e-5 * rng.standard_normal(n))
+    v2 = 5.0 * r * (1 + 2e-5 * rng.standard_normal(n))
+    res = _draw_check(commanded=r).update(_draw_block(n, t1, t2, v1, v2))
+    ok = res.reason == int(Reason.OK)
+    assert ok.sum() == n - 499  # valid once the 500-frame window has filled
+    np.testing.assert_array_equal(res.extras["commanded"][ok], 1.0)
+    np.testing.assert_array_equal(res.extras["speed_ratio"][ok], r)
+    # the linearised prediction against the exact balance: second order in strain and draw (Et d^2 + T1 d)
+    assert np.all(np.abs(res.extras["residual"][ok]) < 2 * (ET * (r - 1) ** 2 + t1 * (r - 1)) + 1e-9)
+    # the same without a command: the measured ratio, with its random uncertainty in the band
+    free = _draw_check().update(_draw_block(n, t1, t2, v1, v2))
+    assert np.all(free.extras["commanded"][ok] == 0.0)
+    # white noise of 2e-5 on each encoder: the ratio's noise is sqrt(2) 2e-5 per frame, its mean over 500
+    # independent frames sqrt(2) 2e-5 / sqrt(500), times the coverage factor 2 (JCGM 100 4.2.3, 6.2)
+    expected = 2 * math.sqrt(2) * 2e-5 / math.sqrt(500)
+    # (the window's own variance and lag-one autocorrelation estimate it, each with a sampling spread)
+    got = free.extras["ratio_random"][ok]
+    assert float(np.median(got)) == pytest.approx(expected, rel=0.1)
+    assert got.min() > expected / 1.5 and got.max() < expected * 1.5, (got.min(), got.max())
+
+
+def test_draw_check_falls_back_to_the_encoders_when_they_disagree_with_the_command():
+    # pull roll 2 runs 0.5 % away from its command (a drive not holding speed): beyond the 1e-4 tolerance, so the
+    # encoder ratio is used and the prediction follows what the rollers really do.
+    n, r_cmd = 1000, 1.001064
+    r_true = r_cmd * 1.005
+    t1 = 105.0
+    res = _draw_check(commanded=r_cmd).update(_draw_block(n, t1, exact_steady(t1, r_true), 5.0, 5.0 * r_true))
+    ok = res.reason == int(Reason.OK)
+    assert ok.any()
+    assert np.all(res.extras["commanded"][ok] == 0.0)
+    np.testing.assert_allclose(res.extras["speed_ratio"][ok], r_true, rtol=1e-12)
+
+
+def test_draw_check_ratio_shows_a_load_cell_gain_drift():
+    # The zone's load cell reads 8 % high: measured over predicted tension is 1.08 (up to the linearisation).
+    n, r, t1 = 800, 1.001064, 105.0
+    res = _draw_check(commanded=r).update(_draw_block(n, t1, 1.08 * exact_steady(t1, r), 5.0, 5.0 * r))
+    ok = res.reason == int(Reason.OK)
+    np.testing.assert_allclose(res.extras["ratio"][ok], 1.08, rtol=3e-3)
+
+
+def test_draw_check_slack_span_is_out_of_domain():
+    # V2 1 % below V1 at T1 = 100 N/m: the span equation predicts Et (-0.01) + 100 < 0, a slack span, where the
+    # linear elastic web model does not hold: OUT_OF_DOMAIN, no residual.
+    n = 700
+    res = _draw_check().update(_draw_block(n, 100.0, 0.0, 5.0, 4.95))
+    assert np.all(res.reason[499:] == int(Reason.OUT_OF_DOMAIN))
+    assert np.all(np.isnan(res.value))

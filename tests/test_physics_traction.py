@@ -29,7 +29,13 @@ from spanwatch.rules.airfilm import (
     traction_derating,
 )
 from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
-from spanwatch.rules.traction import UTILISATION_CAP, TractionCheck, capstan_ratio_limit, traction_utilisation
+from spanwatch.rules.traction import (
+    UTILISATION_CAP,
+    TractionCheck,
+    capstan_ratio_limit,
+    demonstrated_cof,
+    traction_utilisation,
+)
 
 # --- capstan equation -------------------------------------------------------------------------
 # Independent reference: the web wrapped around the roller as n short straight segments, each in force
@@ -345,28 +351,119 @@ def _block(n, signals, state=LineState.RUNNING):
     return Block(t=np.arange(n) / 50.0, signals=signals, line_state=np.full(n, int(state), dtype=np.int8), tags=tags)
 
 
-def test_traction_check_reports_one_at_the_safe_ratio():
-    # Capstan equation with a safety factor: the ratio the segmented wrap holds at a COF of mu / SF uses exactly
-    # the safe capacity (safety factor on the COF: common practice, no source).
+def _traction_check(mu, wrap, sf, **kw):
+    return TractionCheck("r", zone_up="a", zone_down="b", mu=mu, wrap=wrap, radius=0.1, sigma=1e-6, film_factor=1.0,
+                         safety_factor=sf, min_drive_tension=1.0, viscosity=1.8e-5,
+                         air_model=kw.pop("air_model", "linear"), convention="mean", floor=0.0,
+                         roller_speed=kw.pop("roller_speed", None), **kw)
+
+
+def test_traction_check_reports_share_of_real_capacity():
+    # Capstan equation: the ratio the segmented wrap holds at the friction limit uses the whole capacity (value 1);
+    # the ratio it holds at a COF of mu / SF uses 1 / SF of it, which is exactly the safe share (extra
+    # share_of_safe = 1; safety factor on the COF: common practice, no source).
     mu, wrap, sf = 0.5, np.pi, 1.5
     n = 5
     ok = np.ones(n, dtype=bool)
     t_up = np.full(n, 100.0)
-    t_down = t_up * segmented_capstan_ratio(mu / sf, wrap)
-    sig = {"tension/a": Signal(t_up, ok), "tension/b": Signal(t_down, ok),
-           "speed/web": Signal(np.zeros(n), ok)}
-    check = TractionCheck("r", zone_up="a", zone_down="b", mu=mu, wrap=wrap, radius=0.1, sigma=1e-6, film_factor=1.0,
-                          safety_factor=sf, min_drive_tension=1.0, viscosity=1.8e-5, air_model="linear",
-                          convention="mean", floor=0.0, roller_speed=None)
-    with no_runtime_warning():  # zero web speed: no film, and no 0/0 on the way
-        res = check.update(_block(n, sig))
-    np.testing.assert_array_equal(res.reason, int(Reason.OK))
-    np.testing.assert_allclose(res.value, 1.0, rtol=1e-6)
-    # Standing still the check is gated by the line state, whatever the tensions say.
+    check = _traction_check(mu, wrap, sf)
+    for ratio, value, safe in ((segmented_capstan_ratio(mu, wrap), 1.0, sf),
+                               (segmented_capstan_ratio(mu / sf, wrap), 1 / sf, 1.0)):
+        sig = {"tension/a": Signal(t_up, ok), "tension/b": Signal(t_up * ratio, ok),
+               "speed/web": Signal(np.zeros(n), ok)}
+        with no_runtime_warning():  # zero web speed: no film, and no 0/0 on the way
+            res = check.update(_block(n, sig))
+        np.testing.assert_array_equal(res.reason, int(Reason.OK))
+        np.testing.assert_allclose(res.value, value, rtol=1e-6)
+        np.testing.assert_allclose(res.extras["share_of_safe"], safe, rtol=1e-6)
+        # the COF the held ratio proves: mu at the limit, mu / SF at the safe ratio (a lower bound on mu)
+        np.testing.assert_allclose(res.extras["mu_demonstrated"], mu * value, rtol=1e-6)
+    # Standing still the check is gated by the line state, whatever the tensions say; so is threading.
+    for state in (LineState.STOPPED, LineState.THREADING):
+        with no_runtime_warning():
+            res = check.update(_block(n, sig, state))
+        np.testing.assert_array_equal(res.reason, int(Reason.LINE_STATE))
+        assert np.all(np.isnan(res.value))
+
+
+def test_traction_defaults_alarm_near_slip_not_at_the_design_share():
+    # A roller running at its design share 1 / SF of the capacity (SF 1.5: 67 %) is a line running normally; the
+    # live alarm is about being close to slipping (warning 0.85, alarm 0.95 of the capacity: common practice,
+    # no source). The safety factor enters only the design margin (monitor/design.py).
+    d = TractionCheck.defaults
+    assert d.unit == "share of capacity"
+    assert 1 / 1.5 < d.warning < d.alarm < 1.0
+
+
+def test_traction_lifted_web_is_out_of_domain_not_a_number():
+    # No traction left (the air film lifts the web far beyond 3 sigma; Ducotey & Good 1999) with a ratio demanded:
+    # the capstan equation has no capacity to compare with, so the frame is out of domain and flagged lifted.
+    n = 4
+    ok = np.ones(n, dtype=bool)
+    sig = {"tension/a": Signal(np.full(n, 20.0), ok), "tension/b": Signal(np.full(n, 30.0), ok),
+           "speed/web": Signal(np.full(n, 20.0), ok)}
+    check = TractionCheck("r", zone_up="a", zone_down="b", mu=0.5, wrap=np.pi, radius=0.3, sigma=0.05e-6,
+                          film_factor=1.0, safety_factor=1.5, min_drive_tension=1.0, viscosity=1.8e-5,
+                          air_model="linear", convention="mean", floor=0.0, roller_speed=None)
     with no_runtime_warning():
-        res = check.update(_block(n, sig, LineState.STOPPED))
-    np.testing.assert_array_equal(res.reason, int(Reason.LINE_STATE))
+        res = check.update(_block(n, sig))
+    np.testing.assert_array_equal(res.reason, int(Reason.OUT_OF_DOMAIN))
+    np.testing.assert_array_equal(res.extras["lifted"], 1.0)
     assert np.all(np.isnan(res.value))
+
+
+def test_traction_waits_for_tensions_after_a_start():
+    # After the line leaves STOPPED the tensions build: no judgement until both are within 20 % of their setpoints,
+    # or the settle time has passed (common practice, no source). Frames at 50 Hz: 1 s stopped, then running with
+    # the downstream tension at half its setpoint for 1 s, then at setpoint.
+    n = 150
+    ok = np.ones(n, dtype=bool)
+    up = np.full(n, 100.0)
+    down = np.where(np.arange(n) < 100, 75.0, 150.0)
+    sig = {"tension/a": Signal(up, ok), "tension/b": Signal(down, ok), "speed/web": Signal(np.zeros(n), ok)}
+    state = np.full(n, int(LineState.RUNNING), dtype=np.int8)
+    state[:50] = int(LineState.STOPPED)
+    names = ("x",)
+    tags = TagFrames(names, np.zeros((n, 1)), np.zeros((n, 1), dtype=np.int8), np.zeros((n, 1)))
+    block = Block(t=np.arange(n) / 50.0, signals=sig, line_state=state, tags=tags)
+    # settle time counted from the last stopped frame (0.98 s): 0.5 s later is frame 74
+    for settle, first_ok in ((30.0, 100), (0.5, 74)):
+        check = _traction_check(0.5, np.pi, 1.5, setpoints=((100.0, 100.0), (150.0, 150.0)), startup_settle=settle,
+                                startup_band=0.2)
+        with no_runtime_warning():
+            res = check.update(block)
+        assert int(np.argmax(res.reason == int(Reason.OK))) == first_ok
+        assert np.all(res.reason[:first_ok] == int(Reason.LINE_STATE))
+        # the same frames fed in small blocks give the same answer (the start-up state carries across blocks)
+        check.reset()
+        parts = []
+        for lo in range(0, n, 7):
+            sl = slice(lo, min(n, lo + 7))
+            b = Block(t=block.t[sl], signals={k: Signal(v.value[sl], v.ok[sl]) for k, v in sig.items()},
+                      line_state=state[sl], tags=TagFrames(names, tags.value[sl], tags.quality[sl], tags.age[sl]))
+            with no_runtime_warning():
+                parts.append(check.update(b).reason)
+        np.testing.assert_array_equal(np.concatenate(parts), res.reason)
+
+
+def test_traction_mu_at_slip_from_the_roller_encoder():
+    # A roller whose surface runs 3 % ahead of the web slips (beyond the slip check's warning of 0.5 %): the ratio
+    # it holds at that moment is the capstan limit, so ln(ratio) / theta estimates the actual COF (ASTM G143 derives
+    # the COF from the same relation). The lower bound mu_demonstrated is not reported while it slips.
+    n = 6
+    ok = np.ones(n, dtype=bool)
+    ratio = segmented_capstan_ratio(0.2, np.pi)
+    v_web = np.full(n, 5.0)
+    v_roll = np.where(np.arange(n) < 3, 5.0, 5.0 * 1.03)
+    sig = {"tension/a": Signal(np.full(n, 100.0), ok), "tension/b": Signal(np.full(n, 100.0 * ratio), ok),
+           "speed/web": Signal(v_web, ok), "speed/r": Signal(v_roll, ok)}
+    check = _traction_check(0.5, np.pi, 1.5, roller_speed="speed/r", air_model="none")  # no air film here
+    with no_runtime_warning():
+        res = check.update(_block(n, sig))
+    np.testing.assert_allclose(res.extras["mu_demonstrated"][:3], 0.2, rtol=1e-6)
+    assert np.all(np.isnan(res.extras["mu_demonstrated"][3:]))
+    np.testing.assert_allclose(res.extras["mu_at_slip"][3:], 0.2, rtol=1e-6)
+    assert np.all(np.isnan(res.extras["mu_at_slip"][:3]))
 
 
 # --- slip (rules/slip.py) ----------------------------------------------------------------------
@@ -394,6 +491,7 @@ PURE = {
     "combined_roughness": (combined_roughness, 2, lambda o: nan_or(o, o >= 0)),
     "capstan_ratio_limit": (capstan_ratio_limit, 2, lambda o: nan_or(o, o >= 0)),
     "traction_utilisation": (traction_utilisation, 4, lambda o: nan_or(o, (o >= 0) & (o <= UTILISATION_CAP))),
+    "demonstrated_cof": (demonstrated_cof, 3, lambda o: nan_or(o, o >= 0)),
     "surface_speed": (slip.surface_speed, 2, None),
     "slip_ratio": (lambda a, b, c: slip.slip_ratio(a, b, c), 3, None),
 }
