@@ -170,7 +170,7 @@ def test_the_alarm_list_kept_in_the_history_is_the_one_in_force(tmp_path):
     h.close()
     before = json.loads(listing(cfg, "--format", "json"))
     # the file changes afterwards: the kept list still gives the old limits
-    cfg.write_text(cfg.read_text(encoding="utf-8").replace("warning = 0.8 ", "warning = 0.7 ", 1),
+    cfg.write_text(cfg.read_text(encoding="utf-8").replace("warning = 0.85 ", "warning = 0.7 ", 1),
                    encoding="utf-8")
     assert json.loads(listing(cfg, "--format", "json")) != before
     r = CliRunner().invoke(app, ["alarm-list", "--db", str(db), "--line", line.name, "--format", "json"])
