@@ -2,6 +2,9 @@
 
 Usage: python benchmarks/replay_throughput.py [--minutes 60] [--keep DIR]
 
+The replay runs twice, with the drift detectors (the default) and without (``[drift] enabled = false``), so
+the cost of drift detection is measured in the same run.
+
 1. Simulates ``--minutes`` of line Q2 (steady production with a speed change) to a
    gzip CSV recording (every configured tag at its sample period, 50 Hz for most).
 2. Replays it with ``spanwatch replay`` semantics (read CSV -> align -> checks ->
@@ -60,11 +63,15 @@ def make_recording(path: Path, minutes: float) -> tuple[int, float]:
     return rows, time.perf_counter() - t
 
 
-def child_replay(recording: str, db: str) -> None:
-    """Run in a fresh process so ru_maxrss is the replay's own peak."""
+def child_replay(recording: str, db: str, drift: str) -> None:
+    """Run in a fresh process so ru_maxrss is the replay's own peak; ``drift`` "on" or "off"."""
+    from spanwatch.monitor.line import build_line
     from spanwatch.monitor.replay import replay
 
     line = load_line(CONFIG)
+    if drift == "off":
+        cfg = line.config.model_copy(update={"drift": line.config.drift.model_copy(update={"enabled": False})})
+        line = build_line(cfg, line.file, line.config_hash)
     s = replay(line, recording, f"sqlite:///{db}")
     peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     print(json.dumps({"samples": s.samples, "frames": s.frames, "seconds_of_data": s.seconds_of_data,
@@ -107,7 +114,7 @@ def numpy_reference(recording: Path) -> dict[str, float]:
                                   float(combined_roughness(mat.roughness, sec.roughness)), viscosity=line.viscosity,
                                   film_factor=sec.air_film_factor * mat.air_film_factor, model=lw.air_film_model,
                                   convention=lw.air_speed_convention, floor=lw.air_traction_floor)
-        share = traction_utilisation(t_zone[zb.id], t_zone[za.id], mu_eff, sec.wrap) * sec.safety_factor
+        share = traction_utilisation(t_zone[zb.id], t_zone[za.id], mu_eff, sec.wrap)
         out[f"traction {el.id} median"] = float(np.nanmedian(share))
     t_compute = time.perf_counter() - t1
     out["read_s"] = t_read
@@ -121,7 +128,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--minutes", type=float, default=60.0)
     ap.add_argument("--keep", type=Path, default=None, help="keep the recording and database here")
-    ap.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
+    ap.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
         child_replay(*args.child)
@@ -133,15 +140,20 @@ def main() -> None:
         rows, sim_s = make_recording(rec, args.minutes)
         print(f"simulated {args.minutes:g} min: {rows} samples in {sim_s:.1f} s -> {rec} "
               f"({rec.stat().st_size / 1e6:.1f} MB)")
-    db = work / "bench.db"
-    db.unlink(missing_ok=True)
-    proc = subprocess.run([sys.executable, __file__, "--child", str(rec), str(db)], capture_output=True, text=True,
-                          check=True)
-    r = json.loads(proc.stdout.strip().splitlines()[-1])
-    speed = r["seconds_of_data"] / r["wall"]
-    print(f"streaming replay: {r['samples']} samples, {r['frames']} frames, {r['seconds_of_data'] / 60:.1f} min of "
-          f"data in {r['wall']:.2f} s = {r['samples'] / r['wall']:,.0f} samples/s, {speed:,.0f}x real time; "
-          f"peak RSS {r['peak_mb']:.0f} MB; alarms raised {r['raised'] or 'none'}")
+    speeds, results = {}, {}
+    for drift in ("on", "off"):
+        db = work / f"bench-drift-{drift}.db"
+        db.unlink(missing_ok=True)
+        proc = subprocess.run([sys.executable, __file__, "--child", str(rec), str(db), drift], capture_output=True,
+                              text=True, check=True)
+        r = results[drift] = json.loads(proc.stdout.strip().splitlines()[-1])
+        speed = speeds[drift] = r["seconds_of_data"] / r["wall"]
+        print(f"streaming replay, drift detectors {drift}: {r['samples']} samples, {r['frames']} frames, "
+              f"{r['seconds_of_data'] / 60:.1f} min of data in {r['wall']:.2f} s = {r['samples'] / r['wall']:,.0f} "
+              f"samples/s, {speed:,.0f}x real time; peak RSS {r['peak_mb']:.0f} MB; alarms raised "
+              f"{r['raised'] or 'none'}")
+    print(f"drift detection costs {100 * (speeds['off'] / speeds['on'] - 1):.1f} % of the replay time")
+    speed, r = speeds["on"], results["on"]
     ref = numpy_reference(rec)
     ref_total = ref["read_s"] + ref["compute_s"]
     print(f"numpy reference (whole hour at once, traction only): read {ref['read_s']:.2f} s + compute "

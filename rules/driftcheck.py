@@ -65,6 +65,7 @@ class Residual:
 # The residuals watched by default. Floors: common practice, no source (about a tenth of a typical alarm band).
 RESIDUALS: tuple[Residual, ...] = (
     Residual("traction", "utilisation", "share of capacity", 0.01, label="traction"),
+    Residual("traction", "mu_demonstrated", "COF", 0.005, label="traction.mu"),
     Residual("slip", "value", "%", 2e-4),
     Residual("idler_lag", "value", "%", 2e-4),
     Residual("draw", "residual", "N/m", 1.0, label="draw"),
