@@ -84,7 +84,7 @@ class Watermarks:
             future = fin & (t > wall + self.future_horizon)
         else:  # a recording: beyond the horizon of the source's newest time (or of the batch's median at first)
             ref = sc.watermark if sc.started else float(np.median(t[fin]))
-            future = fin & (t > ref + self.future_horizon)
+            future = _ahead_of_stream(t, fin, ref, self.future_horizon)
             if future.any():  # a consistent stream after a gap, or a glitch? a glitch does not span ``confirm``
                 lo, hi = float(np.min(t[future])), float(np.max(t[future]))
                 sc._ahead_since = lo if sc._ahead_since is None else min(sc._ahead_since, lo)
@@ -158,3 +158,31 @@ class Watermarks:
         if delay is not None and delay > delay_limit:
             return "delayed", delay
         return "ok", delay
+
+
+def _ahead_of_stream(t: np.ndarray, fin: np.ndarray, ref: float, horizon: float) -> np.ndarray:
+    """Which samples of a recording's batch (in file order) jumped more than ``horizon`` beyond the newest time
+    before them: the source's watermark ``ref`` or the samples of the batch accepted before them. A batch may span
+    far more than the horizon (a reader's chunk holds minutes): only a jump ahead counts, not the batch's length.
+
+    The batch is cut where consecutive times differ by more than the horizon; a piece whose first time lies beyond
+    the newest accepted time + horizon is ahead (a glitch, or the stream after a gap: the caller tells them apart
+    by how long it goes on); the others are accepted and move the newest time.
+
+    >>> t = np.array([0.0, 30.0, 70.0, 110.0, 5000.0, 150.0, 9000.0, 9001.0])
+    >>> _ahead_of_stream(t, np.isfinite(t), 0.0, 60.0).tolist()
+    [False, False, False, False, True, False, True, True]
+    """
+    future = np.zeros(t.shape, dtype=bool)
+    idx = np.flatnonzero(fin)
+    if idx.size == 0:
+        return future
+    tf = t[idx]
+    cuts = np.flatnonzero(np.abs(np.diff(tf)) > horizon) + 1
+    newest = ref
+    for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, tf.size], strict=True):
+        if tf[lo] > newest + horizon:
+            future[idx[lo:hi]] = True
+        else:
+            newest = max(newest, float(np.max(tf[lo:hi])))
+    return future

@@ -213,3 +213,25 @@ def test_a_six_hour_gap_in_a_recording_is_skipped_in_bounded_memory(tmp_path):
                           preexec_fn=_limit_memory(1_500_000_000))
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert f"replayed {len(body_a) + len(shifted)} samples" in " ".join(proc.stdout.split())
+
+
+def test_a_recording_batch_longer_than_the_horizon_is_accepted_whole():
+    # Before: a reader's chunk (200,000 rows, about 280 s of line Q2) was judged against the watermark from before
+    # the chunk, so its last part lay "beyond the horizon": the first 5 s of it were refused as future time and
+    # every tag went stale for 2.5 s in a clean hour (found by benchmarks/replay_throughput.py).
+    from spanwatch.monitor.watermarks import Watermarks
+
+    w = Watermarks(("rec",), future_horizon=60.0, confirm=5.0)
+    t0 = 1.77e9
+    first = t0 + np.arange(0.0, 280.0, 0.02)
+    assert not w.accept("rec", first.copy(), 0.0).any()
+    second = first + 280.0
+    assert not w.accept("rec", second.copy(), 0.0).any()
+    # a glitch inside a long batch is refused alone; the samples after it are not
+    third = second + 280.0
+    third[100] += 86400.0
+    refused = w.accept("rec", third.copy(), 0.0)
+    assert refused.tolist().count(True) == 1 and refused[100]
+    # the stream after a 6 h gap, going on for more than `confirm`, is accepted (a gap, not a glitch)
+    after = third[-1] + 6 * 3600.0 + np.arange(0.0, 30.0, 0.02)
+    assert not w.accept("rec", np.r_[third[-10:] + 0.2, after], 0.0).any()
