@@ -107,18 +107,41 @@ def cusum_arl(k: float, h: float, shift: float = 0.0, *, two_sided: bool = True,
     return 1.0 / (1.0 / up + 1.0 / down)
 
 
-def _solve_increasing(f: object, target: float, lo: float, hi: float, what: str) -> float:
-    """The x in [lo, ...) where the increasing function ``f`` reaches ``target`` (log scale, Brent)."""
-    from scipy.optimize import brentq  # here, not at import: scipy.optimize takes about half a second to import
+def _solve_increasing(f: object, target: float, lo: float, hi: float, what: str, *, xtol: float = 1e-6) -> float:
+    """The x in [lo, ...) where the increasing function ``f`` reaches ``target``.
 
+    Regula falsi with the Illinois modification on log ARL (Dowell & Jarratt 1971, BIT 11) inside a bracket that
+    is widened until it holds the root: a few evaluations of ``f`` when ``lo``/``hi`` are close to the root, no
+    scipy.optimize import (about half a second).
+    """
     g = lambda x: math.log(f(x)) - math.log(target)  # noqa: E731
-    if g(lo) > 0:
+    glo = g(lo)
+    if glo > 0:
         raise ValueError(f"{what}: an ARL of {target:g} is below what the smallest limit gives")
-    while g(hi) < 0:
-        lo, hi = hi, hi * 1.5
+    ghi = g(hi)
+    while ghi < 0:
+        lo, glo, hi = hi, ghi, hi * 1.5
         if hi > 1e3:
             raise ValueError(f"{what}: no limit gives an ARL of {target:g}")
-    return float(brentq(g, lo, hi, xtol=1e-6, rtol=1e-10))
+        ghi = g(hi)
+    side = 0
+    x = lo
+    for _ in range(200):
+        x = (lo * ghi - hi * glo) / (ghi - glo)
+        gx = g(x)
+        if abs(gx) < 1e-12 or hi - lo < xtol:
+            break
+        if gx < 0:
+            lo, glo = x, gx
+            if side == -1:
+                ghi /= 2.0
+            side = -1
+        else:
+            hi, ghi = x, gx
+            if side == 1:
+                glo /= 2.0
+            side = 1
+    return float(x)
 
 
 @lru_cache(maxsize=1024)
@@ -135,6 +158,11 @@ def cusum_h(k: float, arl0: float, method: str = "markov") -> float:
     """
     if arl0 <= 1:
         raise ValueError(f"cusum_h: the in-control ARL must be above 1, got {arl0}")
+    if method == "markov":  # start from Siegmund's h: the Markov chain is then evaluated a few times only
+        h0 = _solve_increasing(lambda h: cusum_arl(k, h, method="siegmund"), float(arl0), 1e-3, 4.0, "cusum_h")
+        lo = max(1e-3, 0.9 * h0 - 0.2)
+        return _solve_increasing(lambda h: cusum_arl(k, h, method=method), float(arl0), lo, 1.1 * h0 + 0.2,
+                                 "cusum_h")
     return _solve_increasing(lambda h: cusum_arl(k, h, method=method), float(arl0), 1e-3, 4.0, "cusum_h")
 
 
