@@ -877,6 +877,49 @@ def examples_cmd(
                   "run a scenario: spanwatch demo --scenario NAME", highlight=False, markup=False)
 
 
+@app.command("evaluate")
+def evaluate_cmd(
+    set_name: Annotated[str, typer.Option("--set", help="Scenario set: full, ci, or a folder of scenario files.")]
+    = "full",
+    seeds: Annotated[int, typer.Option(help="Seeds per scenario (the scenario's seed + 0, 1, ...).")] = 3,
+    jobs: Annotated[int, typer.Option(help="Scenarios run in parallel processes.")] = 1,
+    grace: Annotated[str, typer.Option(help="After a fault's end, how long a raise still detects it.")] = "5 min",
+    interval: Annotated[str, typer.Option(help="Period of the interval-floor detector (8 h: one alarm per shift).")]
+    = "8 h",
+    csv: Annotated[Path | None, typer.Option("--csv", help="Write the tables as CSV.")] = None,
+    json_out: Annotated[Path | None, typer.Option("--json", help="Write the summary and every raise as JSON.")]
+    = None,
+    markdown: Annotated[Path | None, typer.Option("--markdown", help="Write a report (docs/detection.md style).")]
+    = None,
+    note: Annotated[str | None, typer.Option(help="A paragraph to open the markdown report with.")] = None,
+    progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+    check_targets: Annotated[bool, typer.Option(help="Exit 1 when a target is not met.")] = False,
+) -> None:
+    """Measure detection against the simulator's ground truth: found on the right object, delay, false alarms."""
+    from spanwatch.monitor import units as U
+    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.evaluate import EvaluateError, Outputs, evaluate
+
+    times = []
+    for option, text in (("--grace", grace), ("--interval", interval)):
+        try:
+            times.append(U.to_si(text, U.TIME))
+        except (ValueError, TypeError) as exc:
+            fail(f"{option}: expected a duration such as \"5 min\", got {text!r} ({exc})")
+    try:
+        summary = evaluate(set_name, seeds=seeds, jobs=jobs, grace=times[0], interval=times[1],
+                           outputs=Outputs(csv=csv, json=json_out, markdown=markdown), note=note,
+                           console=Console(width=80, highlight=False) if not sys.stdout.isatty() else console,
+                           progress_console=err_console, progress=progress,
+                           command="spanwatch " + " ".join(sys.argv[1:]))
+    except ConfigError as exc:
+        fail_config(exc)
+    except EvaluateError as exc:
+        fail(str(exc))
+    if check_targets and not all(t["met"] for t in summary["targets"]):
+        raise typer.Exit(1)
+
+
 def main() -> None:
     """Console-script entry point."""
     try:

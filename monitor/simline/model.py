@@ -554,10 +554,13 @@ class SimulatedLine:
         :mod:`spanwatch.monitor.simline.scenario`)."""
         if f.kind == "speed_ramp":
             return [d.id for d in self.driven]
+        zones = [z.id for z in self.zones if f.target in (z.upstream, z.downstream)]
+        if f.kind in ("cof_drop", "glazing"):  # a slipping roller upsets the tension of both zones it bounds
+            return [f.target, *zones]
         if f.kind == "drive_fault":
             sec = self.line.elements[f.target].section if f.target in self.line.elements else None
             tag = getattr(sec, "fault_tag", None)
-            return [f.target, *([tag] if tag else [])]
+            return [f.target, *([tag] if tag else []), *zones]
         if f.kind == "idler_drag":
             sec = self.line.elements[f.target].section if f.target in self.line.elements else None
             tag = getattr(sec, "speed_tag", None)

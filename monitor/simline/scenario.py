@@ -39,9 +39,10 @@ its check names, :func:`spanwatch.rules.base.blames_of`, or its object meet this
 =================  ====================  ========================================  ================================
 kind               target                size                                      blame
 =================  ====================  ========================================  ================================
-cof_drop           driven roller         the roller's true COF during the fault    the roller
-glazing            driven roller         relative loss of COF reached at the end,  the roller
-                                         e.g. "40 %" (slow: ramps, then holds)
+cof_drop           driven roller         the roller's true COF during the fault    the roller and the two tension
+                                                                                   zones it bounds
+glazing            driven roller         relative loss of COF reached at the end,  the roller and the two tension
+                                         e.g. "40 %" (slow: ramps, then holds)     zones it bounds
 speed_ramp         (none)                line speed to ramp to, e.g. "650 m/min"   every driven roller (air
                                                                                    entrainment)
 loadcell_drift     tension tag           zero drift: offset rate in the tag's      the tag and its zone
@@ -59,8 +60,8 @@ stuck_sensor       tag                   (unused) the tag holds its value       
                                                                                    (winder, roller or zone)
 length_undercount  length tag            share of length not counted, e.g. "3 %"   the tag and its winder
 tag_dropout        tag                   (unused) the tag stops updating           the tag and what it measures
-drive_fault        driven roller         (unused) its drive's fault bit reads 1;   the roller and its fault tag
-                   (fault_tag)           the plant is unchanged (pair it with
+drive_fault        driven roller         (unused) its drive's fault bit reads 1;   the roller, its fault tag and
+                   (fault_tag)           the plant is unchanged (pair it with      the two zones it bounds
                                          cof_drop for a consequence)
 =================  ====================  ========================================  ================================
 
