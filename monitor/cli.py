@@ -911,13 +911,30 @@ def evaluate_cmd(
                            outputs=Outputs(csv=csv, json=json_out, markdown=markdown), note=note,
                            console=Console(width=80, highlight=False) if not sys.stdout.isatty() else console,
                            progress_console=err_console, progress=progress,
-                           command="spanwatch " + " ".join(sys.argv[1:]))
+                           command=_command_line(sys.argv[1:]))
     except ConfigError as exc:
         fail_config(exc)
     except EvaluateError as exc:
         fail(str(exc))
     if check_targets and not all(t["met"] for t in summary["targets"]):
         raise typer.Exit(1)
+
+
+def _command_line(args: Sequence[str]) -> str:
+    """The command as typed, quoted for a shell, with the text of ``--note`` left out."""
+    import shlex
+
+    out, skip = [], False
+    for a in args:
+        if skip:
+            out.append("...")
+            skip = False
+        elif a == "--note":
+            out.append(a)
+            skip = True
+        else:
+            out.append("--note=..." if a.startswith("--note=") else a)
+    return shlex.join(["spanwatch", *out])
 
 
 def main() -> None:

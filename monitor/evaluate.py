@@ -343,25 +343,28 @@ def _share(k: int, n: int) -> str:
 
 def fault_table(summary: dict[str, Any]) -> Any:
     """The fault table for the terminal (rich; fits 80 columns)."""
+    from rich import box
     from rich.table import Table
 
     t = Table(title="Detection on the right object, per fault class and size", title_justify="left",
-              padding=(0, 1), pad_edge=False)
-    for col, just in (("fault", "left"), ("size", "left"), ("found", "right"), ("delay s", "right"),
-                      ("first by", "left"), ("fixed", "right"), ("floor", "right")):
-        t.add_column(col, justify=just, no_wrap=col != "first by", overflow="fold")  # type: ignore[arg-type]
+              box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False, show_edge=False, collapse_padding=True)
+    for col, just, width in (("fault", "left", 19), ("size", "left", 4), ("found", "right", 5),
+                             ("delay s", "right", 14), ("first by", "left", 14), ("fixed", "right", 5),
+                             ("floor", "right", 5)):
+        t.add_column(col, justify=just, no_wrap=True, overflow="ellipsis", max_width=width)  # type: ignore[arg-type]
     for row in summary["faults"]:
         t.add_row(_short(row["fault"]), row["severity"][:3], _share(row["right"], row["runs"]), _delays(row),
-                  ", ".join(row["first_by"][:2]) or "-", _share(row["fixed_right"], row["fixed_runs"]),
+                  (row["first_by"] or ["-"])[0], _share(row["fixed_right"], row["fixed_runs"]),
                   f"{row['floor_right_share']:.3f}")
     return t
 
 
 def false_table(summary: dict[str, Any]) -> Any:
+    from rich import box
     from rich.table import Table
 
     t = Table(title="False alarms per 8-h shift (raises outside every fault window)", title_justify="left",
-              padding=(0, 1), pad_edge=False)
+              box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False, show_edge=False, collapse_padding=True)
     for col in ("running", "hours", "all", "per shift", "annunc.", "per shift", "fixed/shift"):
         t.add_column(col, justify="left" if col == "running" else "right", no_wrap=True)
     for part, name in (("clean", "clean runs"), ("outside", "fault runs")):
@@ -500,7 +503,8 @@ def markdown_text(summary: dict[str, Any], meta: dict[str, Any]) -> str:
           + ("registered" if meta["drift"] else "not registered in this build, so the fixed-limit column is "
              "the configured line itself"),
           f"- scenario set `{meta['set']}`:", ""]
-    L += [f"  - `{s['file']}`: {s['duration_min']:g} min, " + (", ".join(s["faults"]) or "clean")
+    L += [f"  - `{s['file']}`: {s['duration_min']:g} min, " + "; ".join([*(s["faults"] or ["clean"]),
+                                                                         *s.get("extra", [])])
           for s in meta["scenarios"]]
     return "\n".join(L) + "\n"
 
@@ -514,18 +518,33 @@ def _commit() -> str | None:
     return out.stdout.strip() or None if out.returncode == 0 else None
 
 
-def meta_of(set_name: str, files: Sequence[Path], runs: Sequence[RunResult], *, seeds: int, jobs: int,
-            wall: float, command: str, note: str | None = None) -> dict[str, Any]:
-    from spanwatch import __version__
+def scenario_list(files: Sequence[Path]) -> list[dict[str, Any]]:
+    """Each scenario file: its name (relative to the shipped sets), duration and faults in words."""
     from spanwatch.monitor.simline import load_scenario
 
     root = sets_root()
-    scen = []
+    out = []
     for f in files:
         sc = load_scenario(f)[0]
         name = f.relative_to(root).as_posix() if f.is_relative_to(root) else str(f)
-        scen.append({"file": name, "duration_min": sc.scenario.duration / 60,
-                     "faults": [f"{x.label or x.kind} ({x.severity or '-'})" for x in sc.fault]})
+        faults = []
+        for x in sc.fault:
+            what = ", ".join(str(v) for v in (x.target, x.size) if v not in ("", None, 0.0))
+            faults.append(f"{x.label or x.kind} ({x.severity or '-'}: {what + ', ' if what else ''}"
+                          f"{x.start / 60:g}-{x.end / 60:.4g} min)")
+        extra = []
+        for n, what in ((len(sc.roll_change), "roll change"), (len(sc.grade_change), "grade change")):
+            if n:
+                extra.append(f"{n} {what}{'s' * (n != 1)}")
+        out.append({"file": name, "duration_min": sc.scenario.duration / 60, "faults": faults, "extra": extra})
+    return out
+
+
+def meta_of(set_name: str, files: Sequence[Path], runs: Sequence[RunResult], *, seeds: int, jobs: int,
+            wall: float, command: str, note: str | None = None) -> dict[str, Any]:
+    from spanwatch import __version__
+
+    scen = scenario_list(files)
     main = [r for r in runs if r.variant == "main"]
     return {"command": command, "version": __version__, "commit": _commit(),
             "date": datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"), "seeds": seeds, "jobs": jobs, "set": set_name,
