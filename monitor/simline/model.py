@@ -167,6 +167,7 @@ class SimulatedLine:
         # idler -> (tension zone it sits in); driven id -> index
         self._idler_zone: dict[str, int] = {}
         self._driven_idx = {d.id: j for j, d in enumerate(self.driven)}
+        self._layout()
 
     # --- set-up ------------------------------------------------------------------------
 
@@ -445,30 +446,127 @@ class SimulatedLine:
         return web * (1.0 - lag)
 
     def advance(self, seconds: float) -> SampleBatch:
-        """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit)."""
+        """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit).
+
+        Each tag is sampled at the first step at or after its next sample time; that time then moves on by
+        the tag's period (in whole steps). The plant's state is kept at the steps where some tag samples,
+        and the tags' true values are computed from those states at once.
+        """
         steps = max(1, round(seconds / self.dt)) if seconds > 0 else 0
-        tag_idx: list[int] = []
-        times: list[float] = []
-        values: list[float] = []
         tags = self.tag_names
         infos = [self.line.tags[n] for n in tags]
-        periods = [i.sample_period for i in infos]
-        sources = [self._sources.get(n) for n in tags]
-        next_t = [self._next_sample[n] for n in tags]
-        eps = 1e-9
-        for _ in range(steps):
+        s0, s1 = self.steps, self.steps + steps
+        per_tag: list[list[int]] = []
+        due = bytearray(steps + 1)
+        for k, src in enumerate(self._sources_list):
+            got: list[int] = []
+            if src is not None:
+                n, p, last = self._next_step[k], self._period_steps[k], s0
+                while True:
+                    at = n if n > last else last + 1
+                    if at > s1:
+                        break
+                    got.append(at)
+                    due[at - s0] = 1
+                    last, n = at, round(n + p)
+                self._next_step[k] = n
+            per_tag.append(got)
+        snaps: list[tuple[float, ...]] = []
+        snap_steps: list[int] = []
+        for i in range(1, steps + 1):
             self.step()
-            now = self.t
-            for k, src in enumerate(sources):
-                if src is None or now + eps < next_t[k]:
-                    continue
-                next_t[k] = round((next_t[k] + periods[k]) / self.dt) * self.dt
-                tag_idx.append(k)
-                times.append(now)
-                values.append(self._truth_value(*src))
+            if due[i]:
+                snaps.append(self._snapshot())
+                snap_steps.append(s0 + i)
         for k, n in enumerate(tags):
-            self._next_sample[n] = next_t[k]
-        return self._sensors(np.asarray(tag_idx, np.int32), np.asarray(times), np.asarray(values), infos)
+            self._next_sample[n] = self._next_step[k] * self.dt
+        state = np.array(snaps, dtype=float).reshape(len(snaps), self._snap_width)
+        at_step = np.asarray(snap_steps, dtype=np.int64)
+        ks, ss, vs = [], [], []
+        for k, got in enumerate(per_tag):
+            if not got:
+                continue
+            rows = np.searchsorted(at_step, np.asarray(got, dtype=np.int64))
+            ks.append(np.full(rows.size, k, dtype=np.int32))
+            ss.append(np.asarray(got, dtype=np.int64))
+            vs.append(self._true_values(k, state[rows]))
+        if not ks:
+            empty = np.zeros(0)
+            return self._sensors(np.zeros(0, np.int32), empty, empty, infos)
+        idx, stp, val = np.concatenate(ks), np.concatenate(ss), np.concatenate(vs)
+        order = np.lexsort((idx, stp))  # step by step, and within a step in tag order
+        idx, stp, val = idx[order], stp[order], val[order]
+        return self._sensors(idx, state[np.searchsorted(at_step, stp), 0], val, infos)
+
+    def _snapshot(self) -> tuple[float, ...]:
+        """The state the tags read, at this step (see :meth:`_layout`)."""
+        drives = tuple(1.0 if self._active("drive_fault", d.id) is not None else 0.0 for d in self.driven) \
+            if "drive_fault" in self._by_kind else self._no_drive_fault
+        return (self.t, self.v_ref, *self.tension, *(d.speed for d in self.driven), *self._w, self.d_u2, self.d_r2,
+                self._v_u_surface, self.count_u, self.count_r, 1.0 if self.t < self.core_flag_until else 0.0, *drives)
+
+    def _layout(self) -> None:
+        """Columns of a state snapshot: t, v_ref, tensions, driven speeds, web speeds (unwind, driven..., rewind),
+        D_u^2, D_r^2, unwind surface speed, counted lengths (unwind, rewind), core flag, drive faults."""
+        nz, nd = len(self.zones), len(self.driven)
+        c = {"t": 0, "v_ref": 1, "tension": 2}
+        c["speed"] = c["tension"] + nz
+        c["w"] = c["speed"] + nd
+        c["d_u2"] = c["w"] + nd + 2
+        c["d_r2"], c["v_u"], c["count_u"], c["count_r"], c["core"] = (c["d_u2"] + i for i in range(1, 6))
+        c["drive"] = c["core"] + 1
+        self._col = c
+        self._snap_width = c["drive"] + nd
+        self._no_drive_fault = (0.0,) * nd
+        tags = self.tag_names
+        self._sources_list = [self._sources.get(n) for n in tags]
+        self._period_steps = [self.line.tags[n].sample_period / self.dt for n in tags]
+        self._next_step = [round(self._next_sample[n] / self.dt) for n in tags]
+
+    def _true_values(self, k: int, m: np.ndarray) -> np.ndarray:
+        """True values of tag ``k`` (SI of the tag's kind) at the snapshot rows ``m`` (vectorised
+        :meth:`_truth_value`)."""
+        quantity, obj, factor = self._sources_list[k]  # type: ignore[misc]
+        c = self._col
+        unwind = obj == self.unwind.id
+        if quantity == "speed_ref":
+            return m[:, c["v_ref"]]
+        if quantity == "tension":
+            return m[:, c["tension"] + int(obj)] * factor
+        if quantity == "speed":
+            j = self._driven_idx.get(obj)
+            if j is not None:
+                return m[:, c["speed"] + j] * factor
+            return self._idler_speeds(obj, m) * factor
+        if quantity == "diameter":
+            return np.sqrt(m[:, c["d_u2"] if unwind else c["d_r2"]])
+        if quantity == "rpm":
+            if unwind:
+                return m[:, c["v_u"]] / (math.pi * np.sqrt(m[:, c["d_u2"]]))
+            return m[:, c["w"] + len(self.driven) + 1] / (math.pi * np.sqrt(m[:, c["d_r2"]]))
+        if quantity == "length":
+            return m[:, c["count_u"] if unwind else c["count_r"]]
+        if quantity == "core":
+            return m[:, c["core"]]
+        if quantity == "drive_fault":
+            return m[:, c["drive"] + self._driven_idx[obj]]
+        raise KeyError(quantity)
+
+    def _idler_speeds(self, idler: str, m: np.ndarray) -> np.ndarray:
+        """:meth:`_idler_speed` at the snapshot rows ``m``."""
+        self._idler_speed(idler)  # finds (and keeps) the idler's zone
+        web = m[:, self._col["w"] + self._idler_zone[idler]]
+        lag = 0.0005 + 0.02 * np.minimum(np.maximum((np.abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
+        if "idler_drag" in self._by_kind:
+            t = m[:, self._col["t"]]
+            total = np.zeros_like(t)
+            for f in self._by_kind["idler_drag"]:
+                if f.target == idler:
+                    share = np.where(t < f.start, 0.0, np.where((t >= f.end) | (f.end <= f.start), 1.0,
+                                                                (t - f.start) / max(f.end - f.start, 1e-300)))
+                    total = total + np.where(t >= f.start, f.size_si(U.DIMENSIONLESS) * share, 0.0)
+            lag = lag + total
+        return web * (1.0 - lag)
 
     def _sensors(self, idx: np.ndarray, t: np.ndarray, v: np.ndarray, infos: list) -> SampleBatch:
         noise = self.sc.noise
