@@ -468,7 +468,7 @@ class SimulatedLine:
                         break
                     got.append(at)
                     due[at - s0] = 1
-                    last, n = at, round(n + p)
+                    last, n = at, (n + p) if isinstance(p, int) else round(n + p)
                 self._next_step[k] = n
             per_tag.append(got)
         snaps: list[tuple[float, ...]] = []
@@ -520,7 +520,11 @@ class SimulatedLine:
         self._no_drive_fault = (0.0,) * nd
         tags = self.tag_names
         self._sources_list = [self._sources.get(n) for n in tags]
-        self._period_steps = [self.line.tags[n].sample_period / self.dt for n in tags]
+        # a period of whole steps as an int (the common case), else the float that each sample time rounds from
+        self._period_steps: list[int | float] = []
+        for n in tags:
+            p = self.line.tags[n].sample_period / self.dt
+            self._period_steps.append(round(p) if abs(p - round(p)) < 1e-9 else p)
         self._next_step = [round(self._next_sample[n] / self.dt) for n in tags]
 
     def _true_values(self, k: int, m: np.ndarray) -> np.ndarray:
