@@ -905,7 +905,7 @@ def evaluate_cmd(
         try:
             times.append(U.to_si(text, U.TIME))
         except (ValueError, TypeError) as exc:
-            fail(f"{option}: expected a duration such as \"5 min\", got {text!r} ({exc})")
+            fail(f"{option}: {exc}")
     try:
         summary = evaluate(set_name, seeds=seeds, jobs=jobs, grace=times[0], interval=times[1],
                            outputs=Outputs(csv=csv, json=json_out, markdown=markdown), note=note,

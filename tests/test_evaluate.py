@@ -206,7 +206,9 @@ def test_evaluate_ci_set_end_to_end(tmp_path):
     assert "## How it was produced" in md and "ci-cof-drop.toml" in md and "seeds: 2" in md
 
 
-def test_evaluate_unknown_set_is_a_one_line_error():
+def test_evaluate_option_errors_are_one_line_errors():
     res = CliRunner().invoke(app, ["evaluate", "--set", "no-such-set", "--no-progress"])
     assert res.exit_code == 2
     assert "--set" in res.output and "full" in res.output and "ci" in res.output
+    res = CliRunner().invoke(app, ["evaluate", "--set", "ci", "--grace", "5 kg", "--no-progress"])
+    assert res.exit_code == 2 and "--grace" in res.output and "duration" in res.output

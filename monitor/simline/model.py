@@ -404,33 +404,8 @@ class SimulatedLine:
 
     # --- sensors -------------------------------------------------------------------------
 
-    def _truth_value(self, quantity: str, obj: str, factor: float) -> float:
-        """True value of a tag's quantity, SI of the tag's kind."""
-        if quantity == "speed_ref":
-            return self.v_ref
-        if quantity == "tension":
-            return self.tension[int(obj)] * factor
-        if quantity == "speed":
-            j = self._driven_idx.get(obj)
-            if j is not None:
-                return self.driven[j].speed * factor
-            return self._idler_speed(obj) * factor
-        if quantity == "diameter":
-            return math.sqrt(self.d_u2 if obj == self.unwind.id else self.d_r2)
-        if quantity == "rpm":
-            if obj == self.unwind.id:
-                return self._v_u_surface / (math.pi * math.sqrt(self.d_u2))
-            return self._w[-1] / (math.pi * math.sqrt(self.d_r2))
-        if quantity == "length":
-            return self.count_u if obj == self.unwind.id else self.count_r
-        if quantity == "core":
-            return 1.0 if self.t < self.core_flag_until else 0.0
-        if quantity == "drive_fault":
-            return 1.0 if "drive_fault" in self._by_kind and self._active("drive_fault", obj) is not None else 0.0
-        raise KeyError(quantity)
-
-    def _idler_speed(self, idler: str) -> float:
-        """Idler surface speed: the web speed of its zone minus an invented speed-dependent lag."""
+    def _zone_of_idler(self, idler: str) -> int:
+        """The tension zone an idler sits in (whose upstream element's web speed it sees)."""
         zone = self._idler_zone.get(idler)
         if zone is None:
             path = self.line.path
@@ -438,12 +413,7 @@ class SimulatedLine:
             zone = next(i for i, z in enumerate(self.zones)
                         if path.index(z.upstream) < pos < path.index(z.downstream))
             self._idler_zone[idler] = zone
-        web = self._w[zone]
-        # web leaving element `zone` (unwind payout or a driven roller's web speed)
-        lag = 0.0005 + 0.02 * min(max((abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
-        if "idler_drag" in self._by_kind:
-            lag += self._slow("idler_drag", idler)
-        return web * (1.0 - lag)
+        return zone
 
     def advance(self, seconds: float) -> SampleBatch:
         """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit).
@@ -528,8 +498,7 @@ class SimulatedLine:
         self._next_step = [round(self._next_sample[n] / self.dt) for n in tags]
 
     def _true_values(self, k: int, m: np.ndarray) -> np.ndarray:
-        """True values of tag ``k`` (SI of the tag's kind) at the snapshot rows ``m`` (vectorised
-        :meth:`_truth_value`)."""
+        """True values of tag ``k`` (SI of the tag's kind) at the snapshot rows ``m``."""
         quantity, obj, factor = self._sources_list[k]  # type: ignore[misc]
         c = self._col
         unwind = obj == self.unwind.id
@@ -557,9 +526,10 @@ class SimulatedLine:
         raise KeyError(quantity)
 
     def _idler_speeds(self, idler: str, m: np.ndarray) -> np.ndarray:
-        """:meth:`_idler_speed` at the snapshot rows ``m``."""
-        self._idler_speed(idler)  # finds (and keeps) the idler's zone
-        web = m[:, self._col["w"] + self._idler_zone[idler]]
+        """Idler surface speed at the snapshot rows ``m``: the web speed of its zone (leaving the unwind or the
+        driven roller upstream) minus an invented speed-dependent lag, plus the lag of a dragging bearing
+        (:func:`ramp_share` of each ``idler_drag`` fault on it)."""
+        web = m[:, self._col["w"] + self._zone_of_idler(idler)]
         lag = 0.0005 + 0.02 * np.minimum(np.maximum((np.abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
         if "idler_drag" in self._by_kind:
             t = m[:, self._col["t"]]
