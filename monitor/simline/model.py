@@ -28,8 +28,9 @@ What it models (per unit width, SI):
 Invented, demo-only behaviour (not published physics): idlers lag the web by 0.05 %
 plus a share that grows with speed above 500 m/min (a dragging idler lags by its fault's
 share more; the zone's tension is one state, so the drag force itself is not modelled);
-the unwind roll holds a share of its zone's setpoint as wound-in tension. The model shares the air-film equations
-with the checks, so it tests the monitoring pipeline, not those equations.
+the unwind roll holds a share of its zone's setpoint as wound-in tension. The model uses
+the air-film equations of the checks (a scalar copy, tested against them), so it tests
+the monitoring pipeline, not those equations.
 """
 
 from __future__ import annotations
@@ -106,7 +107,6 @@ class SimulatedLine:
         self.rng = np.random.default_rng(sc.seed)
         mat, truth = cfg.material, scenario.truth
         self.et = mat.modulus * mat.caliper * truth.modulus_factor
-        self._cof_factor = truth.cof_factor
         self.width = mat.width
         self.viscosity = line.viscosity
         lw = cfg.line
@@ -246,7 +246,6 @@ class SimulatedLine:
             if g.modulus_factor is not None:
                 self.et = mat.modulus * mat.caliper * g.modulus_factor
             if g.cof_factor is not None:
-                self._cof_factor = g.cof_factor
                 for d in self.driven:
                     d.mu = self._cof_cfg[d.id] * g.cof_factor
 
