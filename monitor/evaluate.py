@@ -235,7 +235,8 @@ def _stats(values: Sequence[float]) -> dict[str, float | None]:
 
 
 def summarise(runs: Sequence[RunResult], *, grace: float = DEFAULT_GRACE, interval: float = SHIFT_S) -> dict[str, Any]:
-    """Score every run and aggregate: per fault class and size, per detector, false alarms, targets."""
+    """Score every run and aggregate: per fault class and size, per detector, false alarms, targets (each target's
+    ``met`` is None when the set has nothing to judge it on)."""
     scores: dict[str, list[tuple[RunResult, FaultScore]]] = {v: [] for v in VARIANTS}
     for r in runs:
         for f in r.faults:
@@ -282,14 +283,14 @@ def summarise(runs: Sequence[RunResult], *, grace: float = DEFAULT_GRACE, interv
     targets = [
         {"target": "every obvious fault detected on the right object",
          "value": f"{sum(s.right for s in obvious)}/{len(obvious)}",
-         "met": bool(obvious) and all(s.right for s in obvious)},
+         "met": all(s.right for s in obvious) if obvious else None},
         {"target": f"subtle faults detected on the right object >= {TARGET_SUBTLE:.0%}",
          "value": f"{sum(s.right for s in subtle) / len(subtle):.0%}" if subtle else "-",
-         "met": bool(subtle) and sum(s.right for s in subtle) / len(subtle) >= TARGET_SUBTLE},
+         "met": sum(s.right for s in subtle) / len(subtle) >= TARGET_SUBTLE if subtle else None},
         {"target": f"<= {TARGET_FALSE_PER_SHIFT:g} false alarm per 8-h shift of clean running (all checks "
                    "and detectors, advisory included)",
          "value": "-" if math.isnan(clean_rate) else f"{clean_rate:.2f}",
-         "met": not math.isnan(clean_rate) and clean_rate <= TARGET_FALSE_PER_SHIFT},
+         "met": None if math.isnan(clean_rate) else clean_rate <= TARGET_FALSE_PER_SHIFT},
     ]
     return {"faults": faults, "by_detector": by_kind, "false_alarms": false, "targets": targets,
             "grace_s": grace, "interval_s": interval}
@@ -391,7 +392,7 @@ def print_summary(summary: dict[str, Any], console: Any) -> None:
         console.print("clean-run raises by detector: " + ", ".join(f"{k} {n}" for k, n in clean.items()),
                       highlight=False)
     for tg in summary["targets"]:
-        mark = "[green]met[/]" if tg["met"] else "[red]not met[/]"
+        mark = {True: "[green]met[/]", False: "[red]not met[/]", None: "[dim]n/a (nothing in this set)[/]"}[tg["met"]]
         console.print(f"{mark}  {tg['target']}: {tg['value']}", highlight=False)
 
 
@@ -458,7 +459,8 @@ def markdown_text(summary: dict[str, Any], meta: dict[str, Any]) -> str:
     if meta.get("note"):
         L += [meta["note"], ""]
     L += ["## Targets", "", "| target | value | met |", "|---|---|---|"]
-    L += [f"| {t['target']} | {t['value']} | {'yes' if t['met'] else 'no'} |" for t in summary["targets"]]
+    L += [f"| {t['target']} | {t['value']} | {({True: 'yes', False: 'no'}).get(t['met'], 'n/a')} |"
+          for t in summary["targets"]]
     L += ["", "## Per fault class and size", "",
           f"Found: runs (scenario x seed) with a raise on the right object between the fault's start and "
           f"{summary['grace_s'] / 60:g} min after its end. Delay: from the fault's start to that raise, "
