@@ -943,6 +943,67 @@ def examples_cmd(
                   "run a scenario: spanwatch demo --scenario NAME", highlight=False, markup=False)
 
 
+@app.command("evaluate")
+def evaluate_cmd(
+    set_name: Annotated[str, typer.Option("--set", help="Scenario set: full, ci, or a folder of scenario files.")]
+    = "full",
+    seeds: Annotated[int, typer.Option(help="Seeds per scenario (the scenario's seed + 0, 1, ...).")] = 3,
+    jobs: Annotated[int, typer.Option(help="Scenarios run in parallel processes.")] = 1,
+    grace: Annotated[str, typer.Option(help="After a fault's end, how long a raise still detects it.")] = "5 min",
+    interval: Annotated[str, typer.Option(help="Period of the interval-floor detector (8 h: one alarm per shift).")]
+    = "8 h",
+    csv: Annotated[Path | None, typer.Option("--csv", help="Write the tables as CSV.")] = None,
+    json_out: Annotated[Path | None, typer.Option("--json", help="Write the summary and every raise as JSON.")]
+    = None,
+    markdown: Annotated[Path | None, typer.Option("--markdown", help="Write a report (docs/detection.md style).")]
+    = None,
+    note: Annotated[str | None, typer.Option(help="A paragraph to open the markdown report with.")] = None,
+    progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+    check_targets: Annotated[bool, typer.Option(help="Exit 1 when a target is not met (one the set cannot judge "
+                                                     "is not counted).")] = False,
+) -> None:
+    """Measure detection against the simulator's ground truth: found on the right object, delay, false alarms."""
+    from spanwatch.monitor import units as U
+    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.evaluate import EvaluateError, Outputs, evaluate
+
+    times = []
+    for option, text in (("--grace", grace), ("--interval", interval)):
+        try:
+            times.append(U.to_si(text, U.TIME))
+        except (ValueError, TypeError) as exc:
+            fail(f"{option}: {exc}")
+    try:
+        summary = evaluate(set_name, seeds=seeds, jobs=jobs, grace=times[0], interval=times[1],
+                           outputs=Outputs(csv=csv, json=json_out, markdown=markdown), note=note,
+                           console=Console(width=80, highlight=False) if not sys.stdout.isatty() else console,
+                           progress_console=err_console, progress=progress,
+                           command=_command_line(sys.argv[1:]))
+    except ConfigError as exc:
+        fail_config(exc)
+    except EvaluateError as exc:
+        fail(str(exc))
+    if check_targets and any(t["met"] is False for t in summary["targets"]):
+        raise typer.Exit(1)
+
+
+def _command_line(args: Sequence[str]) -> str:
+    """The command as typed, quoted for a shell, with the text of ``--note`` left out."""
+    import shlex
+
+    out, skip = [], False
+    for a in args:
+        if skip:
+            out.append("...")
+            skip = False
+        elif a == "--note":
+            out.append(a)
+            skip = True
+        else:
+            out.append("--note=..." if a.startswith("--note=") else a)
+    return shlex.join(["spanwatch", *out])
+
+
 def main() -> None:
     """Console-script entry point."""
     try:

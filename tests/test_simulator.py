@@ -104,3 +104,125 @@ def test_faults_on_sensors():
     dia = b.tag == b.tags.index("q2.rewind.diameter")
     stuck = b.value[dia & (t >= 2.1) & (t < 6)]
     assert stuck.size > 100 and np.ptp(stuck) == 0.0
+
+
+# --- the fault kinds an evaluation needs: gain, idler drag, glazing, grade change, blame ------------------------
+
+
+def _readings(batch, tag: str, t0: float, lo: float, hi: float) -> np.ndarray:
+    sel = (batch.tag == batch.tags.index(tag)) & (batch.t - t0 >= lo) & (batch.t - t0 < hi)
+    return batch.value[sel]
+
+
+def test_loadcell_gain_ramps_to_its_size_and_holds():
+    # A gain error g multiplies the reading: F_read = (1 + g) F_true. The fault asks for g = 5 % at its end,
+    # rising linearly from 0 at its start (10 s) to its end (70 s), and staying after it. The true force is
+    # the simulated tension times the web width (1300 mm); the noise is 0.4 % per sample, so a mean over
+    # ~500 samples is good to about 0.02 %.
+    sim = make_sim({"fault": [{"kind": "loadcell_gain", "target": "q2.s5.tension", "start": "10 s", "end": "70 s",
+                               "size": "5 %"}]})
+    true_force = sim.tension[1] * sim.width  # steady at 400 m/min; the gain fault does not touch the plant
+    b = sim.advance(100.0)
+    assert sim.tension[1] * sim.width == pytest.approx(true_force, rel=1e-3)
+    before = _readings(b, "q2.s5.tension", sim.t0, 0.0, 10.0).mean() / true_force
+    middle = _readings(b, "q2.s5.tension", sim.t0, 39.0, 41.0).mean() / true_force
+    after = _readings(b, "q2.s5.tension", sim.t0, 80.0, 100.0).mean() / true_force
+    assert before == pytest.approx(1.0, abs=1.5e-3)
+    assert middle == pytest.approx(1.025, abs=2e-3)  # half way through the ramp
+    assert after == pytest.approx(1.05, abs=1.5e-3)  # held after the end: a drift does not heal itself
+
+
+def test_glazing_roller_slips_once_its_capacity_falls_below_the_demanded_ratio():
+    # Euler–Eytelwein: the roller holds while T_high / T_low <= exp(mu theta). Glazing takes mu from 0.6 down by
+    # a share g rising linearly to 90 % over 10 s .. 100 s; the roller must start slipping when
+    # 0.6 (1 - g) falls to mu* = ln(T2 / T1) / theta, i.e. at g* = 1 - mu* / 0.6, not before, and keep slipping
+    # after the end (the glaze stays).
+    sim = make_sim({"fault": [{"kind": "glazing", "target": "pull_1", "start": "10 s", "end": "100 s",
+                               "size": "90 %"}]})
+    sim.advance(9.0)
+    demanded = sim.tension[1] / sim.tension[0]
+    mu_star = math.log(demanded) / math.pi
+    g_star = 1.0 - mu_star / 0.6
+    t_star = 10.0 + 90.0 * g_star / 0.9
+    sim.advance(t_star - 2.0 - sim.t)
+    assert not sim.driven[0].slipping
+    sim.advance(4.0)
+    assert sim.driven[0].slipping
+    sim.advance(110.0 - sim.t)
+    assert sim.driven[0].slipping
+    # while slipping the ratio sits on the capstan limit of the glazed COF, 0.6 (1 - 0.9)
+    assert sim.tension[1] / sim.tension[0] == pytest.approx(float(capstan_ratio_limit(0.06, math.pi)), rel=1e-3)
+
+
+def test_idler_drag_adds_its_size_to_the_lag_of_the_idler():
+    # idler_5 sits in the rewind zone, whose web moves at pull_2's speed V (1 + draw); its encoder reads rpm,
+    # so its surface speed is pi D n. Below 500 m/min the model's own lag is 0.05 %; a drag fault of 1 % at its
+    # end makes it 1.05 %, held after the end.
+    sim = make_sim({"fault": [{"kind": "idler_drag", "target": "idler_5", "start": "5 s", "end": "25 s",
+                               "size": "1 %"}]})
+    b = sim.advance(40.0)
+    d = 4 * 0.0254  # the idler's configured diameter, 4 in
+    web = 400.0 / 60.0 * (1.0 + sim.driven[1].draw)
+    rpm_before = _readings(b, "q2.idler_5.speed", sim.t0, 0.0, 5.0)
+    rpm_after = _readings(b, "q2.idler_5.speed", sim.t0, 30.0, 40.0)
+    lag_before = 1.0 - (np.pi * d * rpm_before.mean() / 60.0) / web
+    lag_after = 1.0 - (np.pi * d * rpm_after.mean() / 60.0) / web
+    assert lag_before == pytest.approx(0.0005, abs=1e-4)
+    assert lag_after == pytest.approx(0.0105, abs=1e-4)
+
+
+def test_grade_change_sets_the_new_lot_from_its_time():
+    # A new lot with stack factor 1.07: the rewind then grows by d(D^2) = 4 t dL / pi with t = 1.2 mil x 1.07
+    # (area conservation), and the truth lists the change.
+    sim = make_sim({"grade_change": [{"at": "20 s", "stack_factor": 1.07, "modulus_factor": 1.05,
+                                      "cof_factor": 0.9}]})
+    sim.advance(30.0)
+    t_new = 1.2 * 25.4e-6 * 1.07
+    assert sim.caliper == pytest.approx(t_new, rel=1e-9)
+    assert sim.driven[0].mu == pytest.approx(0.6 * 0.9)
+    d2, length = sim.d_r2, sim.len_r
+    sim.advance(60.0)
+    assert sim.d_r2 - d2 == pytest.approx(4 * t_new * (sim.len_r - length) / math.pi, rel=1e-6)
+    g = sim.truth()["grade_changes"]
+    assert len(g) == 1 and g[0]["stack_factor"] == 1.07 and g[0]["at_epoch"] == pytest.approx(sim.t0 + 20.0)
+
+
+def test_truth_names_what_an_alarm_may_blame():
+    faults = [{"kind": "cof_drop", "target": "pull_1", "start": "1 s", "end": "2 s", "size": 0.1},
+              {"kind": "speed_ramp", "start": "1 s", "end": "2 s", "size": "500 m/min"},
+              {"kind": "loadcell_gain", "target": "q2.s5.tension", "start": "1 s", "end": "2 s", "size": "3 %"},
+              {"kind": "length_undercount", "target": "q2.rewind.length", "start": "1 s", "end": "2 s",
+               "size": "1 %"},
+              {"kind": "idler_drag", "target": "idler_3", "start": "1 s", "end": "2 s", "size": "1 %"},
+              {"kind": "caliper_change", "target": "rewind", "start": "1 s", "end": "2 s", "size": "5 %",
+               "label": "caliper_change_within_roll", "severity": "subtle"}]
+    sim = make_sim({"fault": faults})
+    got = {f["kind"]: set(f["blame"]) for f in sim.truth()["faults"]}
+    zones = {z.id for z in sim.zones if "pull_1" in (z.upstream, z.downstream)}
+    assert len(zones) == 2
+    assert got["cof_drop"] == {"pull_1", *zones}
+    assert got["speed_ramp"] == {"pull_1", "pull_2"}
+    assert got["loadcell_gain"] == {"q2.s5.tension", sim.zones[1].id}
+    assert got["length_undercount"] == {"q2.rewind.length", "rewind"}
+    assert got["idler_drag"] == {"idler_3", "q2.idler_3.speed"}
+    assert got["caliper_change"] == {"rewind"}
+    cal = sim.truth()["faults"][-1]
+    assert cal["label"] == "caliper_change_within_roll" and cal["severity"] == "subtle"
+
+
+def test_scalar_air_film_matches_the_vectorised_one():
+    # The plant's scalar copy of rules.airfilm.effective_cof against the vectorised function over a grid
+    # that spans no film, the derating ramp and full lift-off, for both models and speed conventions.
+    from spanwatch.monitor.simline.model import scalar_effective_cof
+    from spanwatch.rules.airfilm import effective_cof
+
+    for model in ("linear", "none"):
+        for conv in ("mean", "sum"):
+            for speed in (0.0, 2.0, 6.67, 12.0, 30.0):
+                for tension in (1e-3, 50.0, 175.0, 600.0):
+                    for sigma in (0.0, 2e-7, 1e-6, 2e-6):
+                        want, _ = effective_cof(0.5, 0.1, tension, speed, speed * 1.001, sigma, viscosity=1.8e-5,
+                                                film_factor=0.05, model=model, convention=conv, floor=0.1)
+                        got = scalar_effective_cof(0.5, 0.1, tension, speed, speed * 1.001, sigma, viscosity=1.8e-5,
+                                                   film_factor=0.05, model=model, convention=conv, floor=0.1)
+                        assert got == pytest.approx(float(want), rel=1e-12, abs=1e-15)

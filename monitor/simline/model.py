@@ -18,13 +18,19 @@ What it models (per unit width, SI):
   caliper; roll angle and rotation from V / (pi D); an out-of-round unwind modulates
   the payout speed by ``2 e / D * sin(phase)``.
 * Sensors sampled at each tag's sample period with Gaussian noise; faults from the
-  scenario act on the plant (COF drop, speed ramp, out-of-round, caliper change) or
-  on the sensors (load-cell drift, stuck sensor, length undercount, tag dropout).
+  scenario act on the plant (COF drop, glazing, speed ramp, out-of-round, caliper change,
+  idler drag) or on the sensors (load-cell zero drift and gain error, stuck sensor, length
+  undercount, tag dropout). A grade change (a new lot) changes the true stack factor,
+  modulus and COF from its time on.
+* Slow faults (load-cell gain, idler drag, glazing) ramp linearly from nothing at their
+  start to their size at their end and hold that value until the scenario ends.
 
 Invented, demo-only behaviour (not published physics): idlers lag the web by 0.05 %
-plus a share that grows with speed above 500 m/min; the unwind roll holds a share
-of its zone's setpoint as wound-in tension. The model shares the air-film equations
-with the checks, so it tests the monitoring pipeline, not those equations.
+plus a share that grows with speed above 500 m/min (a dragging idler lags by its fault's
+share more; the zone's tension is one state, so the drag force itself is not modelled);
+the unwind roll holds a share of its zone's setpoint as wound-in tension. The model uses
+the air-film equations of the checks (a scalar copy, tested against them), so it tests
+the monitoring pipeline, not those equations.
 """
 
 from __future__ import annotations
@@ -37,18 +43,48 @@ from spanwatch.monitor import units as U
 from spanwatch.monitor.config import RollerSection, WinderSection
 from spanwatch.monitor.line import Line
 from spanwatch.monitor.simline.scenario import Fault, Scenario
-from spanwatch.rules.airfilm import combined_roughness, effective_cof
+from spanwatch.rules.airfilm import KNOX_SWEENEY_CONSTANT, combined_roughness
 from spanwatch.rules.samples import SampleBatch
-from spanwatch.rules.woundroll import taper_tension
 
 KP, KI = 2.0, 2.0  # winder tension loops, on the strain error (T_sp - T) / Et
+
+
+def scalar_effective_cof(mu: float, radius: float, tension_per_width: float, web_speed: float,
+                         roller_speed: float, sigma: float, *, viscosity: float, film_factor: float,
+                         model: str = "linear", convention: str = "mean", floor: float = 0.0) -> float:
+    """:func:`spanwatch.rules.airfilm.effective_cof` for one roller and one instant, in plain floats.
+
+    The same equations (Knox & Sweeney film height ``h = f 0.643 R (12 eta U / T)^(2/3)``, derated
+    linearly from h = sigma to h = 3 sigma after Ducotey & Good), written for scalars: the plant steps
+    a few roller states at a time, where numpy's per-call cost would dominate. The tests compare it
+    with the vectorised function over a grid of inputs.
+    """
+    vw, vr = abs(web_speed), abs(roller_speed)
+    u = 0.5 * vw + 0.5 * vr if convention == "mean" else vw + vr
+    if not (tension_per_width > 0 and radius > 0):
+        return math.nan
+    h = film_factor * KNOX_SWEENEY_CONSTANT * radius * (12.0 * viscosity * u / tension_per_width) ** (2.0 / 3.0)
+    if model == "none" or math.isnan(h):
+        return mu if not math.isnan(h) else math.nan
+    x = (1.0 if h > 0 else 0.0) if sigma <= 0 else min(max((h - sigma) / (2.0 * sigma), 0.0), 1.0)
+    return mu * (1.0 - (1.0 - floor) * x)
+
+
+def ramp_share(f: Fault, t: float) -> float:
+    """How far a slow fault has come at plant time ``t``: 0 before its start, rising linearly to 1 at its end
+    and held at 1 after it (a drift does not heal itself)."""
+    if t < f.start:
+        return 0.0
+    if t >= f.end or f.end <= f.start:
+        return 1.0
+    return (t - f.start) / (f.end - f.start)
 
 
 @dataclass
 class _Driven:
     id: str
     wrap: float
-    mu: float
+    mu: float  # true dry COF of the roller (the config's times the truth's cof_factor)
     radius: float
     sigma: float
     film: float
@@ -75,10 +111,12 @@ class SimulatedLine:
         self.viscosity = line.viscosity
         lw = cfg.line
         self.air = dict(model=lw.air_film_model, convention=lw.air_speed_convention, floor=lw.air_traction_floor)
+        self._cof_cfg: dict[str, float] = {}
         self.driven: list[_Driven] = []
         for el in line.driven_rollers:
             s = el.section
             assert isinstance(s, RollerSection)
+            self._cof_cfg[el.id] = s.cof
             self.driven.append(_Driven(el.id, s.wrap, s.cof * truth.cof_factor, s.diameter / 2,
                                        float(combined_roughness(mat.roughness, s.roughness)),
                                        s.air_film_factor * mat.air_film_factor, s.draw))
@@ -119,15 +157,31 @@ class SimulatedLine:
         self._next_sample = {name: 0.0 for name in self.tag_names}
         self._stuck: dict[str, float] = {}
         self.faults = scenario.fault
+        self._by_kind: dict[str, list[Fault]] = {}
+        for f in self.faults:
+            self._by_kind.setdefault(f.kind, []).append(f)
+        self._ecc0 = scenario.initial.unwind_eccentricity
+        self._t_in = scenario.truth.unwind_wound_in_tension * self.setpoints[0]
+        self._grades = sorted(scenario.grade_change, key=lambda g: g.at)
+        self._grades_done = 0
+        # idler -> (tension zone it sits in); driven id -> index
+        self._idler_zone: dict[str, int] = {}
+        self._driven_idx = {d.id: j for j, d in enumerate(self.driven)}
+        self._layout()
 
     # --- set-up ------------------------------------------------------------------------
 
     def _setpoint(self, i: int) -> float:
+        """Zone i's setpoint; the rewind's follows its taper (the formulas of
+        :func:`spanwatch.rules.woundroll.taper_tension`, in plain floats)."""
         sp = self.setpoints[i]
-        if i == len(self.zones) - 1 and self.rs.taper is not None:
+        taper = self.rs.taper
+        if i == len(self.zones) - 1 and taper is not None:
             d = math.sqrt(self.d_r2)
-            return float(taper_tension(d, sp, self.rs.taper.k, self.rs.core_diameter, self.rs.max_diameter,
-                                       self.rs.taper.model))
+            dc = self.rs.core_diameter
+            if taper.model == "hyperbolic":
+                return sp * (1.0 - taper.k * (1.0 - dc / d))
+            return sp * (1.0 - taper.k * (d - dc) / (self.rs.max_diameter - dc))
         return sp
 
     def _steady_start(self) -> None:
@@ -165,10 +219,35 @@ class SimulatedLine:
     # --- faults --------------------------------------------------------------------------
 
     def _active(self, kind: str, target: str | None = None) -> Fault | None:
-        for f in self.faults:
-            if f.kind == kind and f.start <= self.t < f.end and (target is None or f.target == target):
+        for f in self._by_kind.get(kind, ()):
+            if f.start <= self.t < f.end and (target is None or f.target == target):
                 return f
         return None
+
+    def _slow(self, kind: str, target: str) -> float:
+        """The size reached by the slow faults of ``kind`` on ``target`` at the current time (see
+        :func:`ramp_share`; sizes of several such faults add)."""
+        total = 0.0
+        for f in self._by_kind.get(kind, ()):
+            if f.target == target and self.t >= f.start:
+                total += f.size_si(U.DIMENSIONLESS) * ramp_share(f, self.t)
+        return total
+
+    def _grade_changes(self) -> None:
+        """A new lot from its time on: the true stack factor, modulus and COF change (within the config's
+        tolerances: the monitor is told nothing)."""
+        grades = self._grades
+        while self._grades_done < len(grades) and grades[self._grades_done].at <= self.t:
+            g = grades[self._grades_done]
+            self._grades_done += 1
+            mat = self.line.config.material
+            if g.stack_factor is not None:
+                self.caliper = mat.caliper * g.stack_factor
+            if g.modulus_factor is not None:
+                self.et = mat.modulus * mat.caliper * g.modulus_factor
+            if g.cof_factor is not None:
+                for d in self.driven:
+                    d.mu = self._cof_cfg[d.id] * g.cof_factor
 
     # --- physics step ----------------------------------------------------------------------
 
@@ -197,6 +276,8 @@ class SimulatedLine:
         """Advance the plant by one time step ``dt`` (explicit Euler with slip constraints)."""
         dt = self.dt
         self._roll_changes()
+        if self._grades_done < len(self._grades):
+            self._grade_changes()
         target, rate = self._profile_target()
         dv = target - self.v_ref
         self.v_ref += max(-rate * dt, min(rate * dt, dv))
@@ -218,12 +299,12 @@ class SimulatedLine:
                 d.web = d.speed
         d_u = math.sqrt(max(self.d_u2, 1e-6))
         d_r = math.sqrt(max(self.d_r2, 1e-6))
-        ecc = self._active("out_of_round", self.unwind.id)
-        e = (ecc.size_si(U.LENGTH) if ecc else 0.0) + self.sc.initial.unwind_eccentricity
+        ecc = self._active("out_of_round", self.unwind.id) if "out_of_round" in self._by_kind else None
+        e = (ecc.size_si(U.LENGTH) if ecc else 0.0) + self._ecc0
         v_u_surface = self.driven[0].web * (1.0 - x_u) if self.driven else v * (1 - x_u)
         w_u = v_u_surface * (1.0 + 2.0 * e / d_u * math.sin(self.phase_u))
         v_r = (self.driven[-1].web if self.driven else v) * (1.0 + x_r)
-        t_in = self.sc.truth.unwind_wound_in_tension * self.setpoints[0]
+        t_in = self._t_in
         # web speeds at the elements: unwind, driven..., rewind
         self._update_slip(v)
         w = [w_u, *[d.web for d in self.driven], v_r]
@@ -238,7 +319,7 @@ class SimulatedLine:
         self.tension = new
         # roll geometry
         cal_r = self.caliper
-        cc = self._active("caliper_change", self.rewind.id)
+        cc = self._active("caliper_change", self.rewind.id) if "caliper_change" in self._by_kind else None
         if cc is not None:
             cal_r *= 1.0 + cc.size_si(U.DIMENSIONLESS)
         self.len_u += w_u * dt
@@ -257,20 +338,23 @@ class SimulatedLine:
         self.t = self.steps * dt
 
     def _undercount(self, tag: str | None) -> float:
-        if tag is None:
+        if tag is None or "length_undercount" not in self._by_kind:
             return 0.0
         f = self._active("length_undercount", tag)
         return f.size_si(U.DIMENSIONLESS) if f else 0.0
 
     def _capacity(self, j: int, d: _Driven) -> float:
         mu = d.mu
-        f = self._active("cof_drop", d.id)
-        if f is not None:
-            mu = float(f.size_si(U.DIMENSIONLESS))
+        if "glazing" in self._by_kind:
+            mu *= max(0.0, 1.0 - self._slow("glazing", d.id))
+        if "cof_drop" in self._by_kind:
+            f = self._active("cof_drop", d.id)
+            if f is not None:
+                mu = float(f.size_si(U.DIMENSIONLESS))
         t_low = min(self.tension[j], self.tension[j + 1])
-        mu_eff, _ = effective_cof(mu, d.radius, max(t_low, 1e-3), d.web, d.speed, d.sigma,
-                                  viscosity=self.viscosity, film_factor=d.film, **self.air)
-        return math.exp(float(mu_eff) * d.wrap)
+        mu_eff = scalar_effective_cof(mu, d.radius, max(t_low, 1e-3), d.web, d.speed, d.sigma,
+                                      viscosity=self.viscosity, film_factor=d.film, **self.air)
+        return math.exp(mu_eff * d.wrap)
 
     def _update_slip(self, v: float) -> None:
         """Decide stick or slip for each driven roller; solve the free web speed while slipping.
@@ -301,7 +385,7 @@ class SimulatedLine:
     def _free_web_speed(self, j: int, d: _Driven, r: float) -> float:
         """Web speed on slipping roller j that keeps T_{j+1} = r T_j (derivative of the constraint)."""
         tens, et, ln = self.tension, self.et, self.zone_len
-        t_up = self.sc.truth.unwind_wound_in_tension * self.setpoints[0] if j == 0 else tens[j - 1]
+        t_up = self._t_in if j == 0 else tens[j - 1]
         # web speed upstream of roller j (element j) and downstream (element j + 2 in w numbering)
         w_prev, w_next = self._w[j], self._w[j + 2]
         big_b = w_next * (et - tens[j + 1])
@@ -319,66 +403,143 @@ class SimulatedLine:
 
     # --- sensors -------------------------------------------------------------------------
 
-    def _truth_value(self, quantity: str, obj: str, factor: float) -> float:
-        """True value of a tag's quantity, SI of the tag's kind."""
-        if quantity == "speed_ref":
-            return self.v_ref
-        if quantity == "tension":
-            return self.tension[int(obj)] * factor
-        if quantity == "speed":
-            d = next((x for x in self.driven if x.id == obj), None)
-            if d is not None:
-                return d.speed * factor
-            return self._idler_speed(obj) * factor
-        if quantity == "diameter":
-            return math.sqrt(self.d_u2 if obj == self.unwind.id else self.d_r2)
-        if quantity == "rpm":
-            if obj == self.unwind.id:
-                return self._v_u_surface / (math.pi * math.sqrt(self.d_u2))
-            return self._w[-1] / (math.pi * math.sqrt(self.d_r2))
-        if quantity == "length":
-            return self.count_u if obj == self.unwind.id else self.count_r
-        if quantity == "core":
-            return 1.0 if self.t < self.core_flag_until else 0.0
-        if quantity == "drive_fault":
-            return 1.0 if self._active("drive_fault", obj) is not None else 0.0
-        raise KeyError(quantity)
-
-    def _idler_speed(self, idler: str) -> float:
-        """Idler surface speed: the web speed of its zone minus an invented speed-dependent lag."""
-        path = self.line.path
-        pos = path.index(idler)
-        zone = next(i for i, z in enumerate(self.zones) if path.index(z.upstream) < pos < path.index(z.downstream))
-        web = self._w[zone]
-        # web leaving element `zone` (unwind payout or a driven roller's web speed)
-        lag = 0.0005 + 0.02 * min(max((abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
-        return web * (1.0 - lag)
+    def _zone_of_idler(self, idler: str) -> int:
+        """The tension zone an idler sits in (whose upstream element's web speed it sees)."""
+        zone = self._idler_zone.get(idler)
+        if zone is None:
+            path = self.line.path
+            pos = path.index(idler)
+            zone = next(i for i, z in enumerate(self.zones)
+                        if path.index(z.upstream) < pos < path.index(z.downstream))
+            self._idler_zone[idler] = zone
+        return zone
 
     def advance(self, seconds: float) -> SampleBatch:
-        """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit)."""
+        """Run the plant for ``seconds`` and return the tag samples (raw, in each tag's unit).
+
+        Each tag is sampled at the first step at or after its next sample time; that time then moves on by
+        the tag's period (in whole steps). The plant's state is kept at the steps where some tag samples,
+        and the tags' true values are computed from those states at once.
+        """
         steps = max(1, round(seconds / self.dt)) if seconds > 0 else 0
-        tag_idx: list[int] = []
-        times: list[float] = []
-        values: list[float] = []
         tags = self.tag_names
         infos = [self.line.tags[n] for n in tags]
-        periods = [i.sample_period for i in infos]
-        sources = [self._sources.get(n) for n in tags]
-        next_t = [self._next_sample[n] for n in tags]
-        eps = 1e-9
-        for _ in range(steps):
+        s0, s1 = self.steps, self.steps + steps
+        per_tag: list[list[int]] = []
+        due = bytearray(steps + 1)
+        for k, src in enumerate(self._sources_list):
+            got: list[int] = []
+            if src is not None:
+                n, p, last = self._next_step[k], self._period_steps[k], s0
+                while True:
+                    at = n if n > last else last + 1
+                    if at > s1:
+                        break
+                    got.append(at)
+                    due[at - s0] = 1
+                    last, n = at, (n + p) if isinstance(p, int) else round(n + p)
+                self._next_step[k] = n
+            per_tag.append(got)
+        snaps: list[tuple[float, ...]] = []
+        snap_steps: list[int] = []
+        for i in range(1, steps + 1):
             self.step()
-            now = self.t
-            for k, src in enumerate(sources):
-                if src is None or now + eps < next_t[k]:
-                    continue
-                next_t[k] = round((next_t[k] + periods[k]) / self.dt) * self.dt
-                tag_idx.append(k)
-                times.append(now)
-                values.append(self._truth_value(*src))
+            if due[i]:
+                snaps.append(self._snapshot())
+                snap_steps.append(s0 + i)
         for k, n in enumerate(tags):
-            self._next_sample[n] = next_t[k]
-        return self._sensors(np.asarray(tag_idx, np.int32), np.asarray(times), np.asarray(values), infos)
+            self._next_sample[n] = self._next_step[k] * self.dt
+        state = np.array(snaps, dtype=float).reshape(len(snaps), self._snap_width)
+        at_step = np.asarray(snap_steps, dtype=np.int64)
+        ks, ss, vs = [], [], []
+        for k, got in enumerate(per_tag):
+            if not got:
+                continue
+            rows = np.searchsorted(at_step, np.asarray(got, dtype=np.int64))
+            ks.append(np.full(rows.size, k, dtype=np.int32))
+            ss.append(np.asarray(got, dtype=np.int64))
+            vs.append(self._true_values(k, state[rows]))
+        if not ks:
+            empty = np.zeros(0)
+            return self._sensors(np.zeros(0, np.int32), empty, empty, infos)
+        idx, stp, val = np.concatenate(ks), np.concatenate(ss), np.concatenate(vs)
+        order = np.lexsort((idx, stp))  # step by step, and within a step in tag order
+        idx, stp, val = idx[order], stp[order], val[order]
+        return self._sensors(idx, state[np.searchsorted(at_step, stp), 0], val, infos)
+
+    def _snapshot(self) -> tuple[float, ...]:
+        """The state the tags read, at this step (see :meth:`_layout`)."""
+        drives = tuple(1.0 if self._active("drive_fault", d.id) is not None else 0.0 for d in self.driven) \
+            if "drive_fault" in self._by_kind else self._no_drive_fault
+        return (self.t, self.v_ref, *self.tension, *(d.speed for d in self.driven), *self._w, self.d_u2, self.d_r2,
+                self._v_u_surface, self.count_u, self.count_r, 1.0 if self.t < self.core_flag_until else 0.0, *drives)
+
+    def _layout(self) -> None:
+        """Columns of a state snapshot: t, v_ref, tensions, driven speeds, web speeds (unwind, driven..., rewind),
+        D_u^2, D_r^2, unwind surface speed, counted lengths (unwind, rewind), core flag, drive faults."""
+        nz, nd = len(self.zones), len(self.driven)
+        c = {"t": 0, "v_ref": 1, "tension": 2}
+        c["speed"] = c["tension"] + nz
+        c["w"] = c["speed"] + nd
+        c["d_u2"] = c["w"] + nd + 2
+        c["d_r2"], c["v_u"], c["count_u"], c["count_r"], c["core"] = (c["d_u2"] + i for i in range(1, 6))
+        c["drive"] = c["core"] + 1
+        self._col = c
+        self._snap_width = c["drive"] + nd
+        self._no_drive_fault = (0.0,) * nd
+        tags = self.tag_names
+        self._sources_list = [self._sources.get(n) for n in tags]
+        # a period of whole steps as an int (the common case), else the float that each sample time rounds from
+        self._period_steps: list[int | float] = []
+        for n in tags:
+            p = self.line.tags[n].sample_period / self.dt
+            self._period_steps.append(round(p) if abs(p - round(p)) < 1e-9 else p)
+        self._next_step = [round(self._next_sample[n] / self.dt) for n in tags]
+
+    def _true_values(self, k: int, m: np.ndarray) -> np.ndarray:
+        """True values of tag ``k`` (SI of the tag's kind) at the snapshot rows ``m``."""
+        quantity, obj, factor = self._sources_list[k]  # type: ignore[misc]
+        c = self._col
+        unwind = obj == self.unwind.id
+        if quantity == "speed_ref":
+            return m[:, c["v_ref"]]
+        if quantity == "tension":
+            return m[:, c["tension"] + int(obj)] * factor
+        if quantity == "speed":
+            j = self._driven_idx.get(obj)
+            if j is not None:
+                return m[:, c["speed"] + j] * factor
+            return self._idler_speeds(obj, m) * factor
+        if quantity == "diameter":
+            return np.sqrt(m[:, c["d_u2"] if unwind else c["d_r2"]])
+        if quantity == "rpm":
+            if unwind:
+                return m[:, c["v_u"]] / (math.pi * np.sqrt(m[:, c["d_u2"]]))
+            return m[:, c["w"] + len(self.driven) + 1] / (math.pi * np.sqrt(m[:, c["d_r2"]]))
+        if quantity == "length":
+            return m[:, c["count_u"] if unwind else c["count_r"]]
+        if quantity == "core":
+            return m[:, c["core"]]
+        if quantity == "drive_fault":
+            return m[:, c["drive"] + self._driven_idx[obj]]
+        raise KeyError(quantity)
+
+    def _idler_speeds(self, idler: str, m: np.ndarray) -> np.ndarray:
+        """Idler surface speed at the snapshot rows ``m``: the web speed of its zone (leaving the unwind or the
+        driven roller upstream) minus an invented speed-dependent lag, plus the lag of a dragging bearing
+        (:func:`ramp_share` of each ``idler_drag`` fault on it)."""
+        web = m[:, self._col["w"] + self._zone_of_idler(idler)]
+        lag = 0.0005 + 0.02 * np.minimum(np.maximum((np.abs(web) - 500 / 60) / (200 / 60), 0.0), 1.0)
+        if "idler_drag" in self._by_kind:
+            t = m[:, self._col["t"]]
+            total = np.zeros_like(t)
+            for f in self._by_kind["idler_drag"]:
+                if f.target == idler:
+                    share = np.where(t < f.start, 0.0, np.where((t >= f.end) | (f.end <= f.start), 1.0,
+                                                                (t - f.start) / max(f.end - f.start, 1e-300)))
+                    total = total + np.where(t >= f.start, f.size_si(U.DIMENSIONLESS) * share, 0.0)
+            lag = lag + total
+        return web * (1.0 - lag)
 
     def _sensors(self, idx: np.ndarray, t: np.ndarray, v: np.ndarray, infos: list) -> SampleBatch:
         noise = self.sc.noise
@@ -408,6 +569,10 @@ class SimulatedLine:
                 inside = (ts >= f.start) & (ts < f.end)
                 if f.kind == "loadcell_drift":
                     raw = raw + np.where(inside, f.size_si(U.DIMENSIONLESS) * (ts - f.start), 0.0)
+                elif f.kind == "loadcell_gain":
+                    span = max(f.end - f.start, 1e-9)
+                    share = np.clip((ts - f.start) / span, 0.0, 1.0)
+                    raw = raw * (1.0 + f.size_si(U.DIMENSIONLESS) * share)
                 elif f.kind == "stuck_sensor" and inside.any():
                     first = self._stuck.setdefault(info.name, float(raw[np.argmax(inside)]))
                     raw = np.where(inside, first, raw)
@@ -433,9 +598,45 @@ class SimulatedLine:
             "config_hash": self.line.config_hash,
             "start": iso(0.0),
             "duration_s": self.sc.scenario.duration,
-            "faults": [{"kind": f.kind, "target": f.target, "size": f.size, "start": iso(f.start), "end": iso(f.end),
-                        "start_epoch": self.t0 + f.start, "end_epoch": self.t0 + f.end} for f in self.faults],
+            "faults": [{"kind": f.kind, "label": f.label or f.kind, "severity": f.severity, "target": f.target,
+                        "size": f.size, "start": iso(f.start), "end": iso(f.end),
+                        "start_epoch": self.t0 + f.start, "end_epoch": self.t0 + f.end, "blame": self.blame(f)}
+                       for f in self.faults],
             "roll_changes": [{"winder": r.winder, "at": iso(r.at), "at_epoch": self.t0 + r.at}
                              for r in self.sc.roll_change],
             "speed_steps": [{"at": iso(s.at), "to_m_per_min": s.to * 60.0} for s in self.sc.speed],
+            "grade_changes": [{"at": iso(g.at), "at_epoch": self.t0 + g.at, "stack_factor": g.stack_factor,
+                               "modulus_factor": g.modulus_factor, "cof_factor": g.cof_factor}
+                              for g in self._grades],
         }
+
+    def tag_owner(self, tag: str) -> str | None:
+        """What a tag measures: its roller or winder, or its tension zone (None for the line speed reference)."""
+        src = self._sources.get(tag)
+        if src is None:
+            return None
+        quantity, obj, _ = src
+        if quantity == "tension":
+            return self.zones[int(obj)].id
+        return obj or None
+
+    def blame(self, f: Fault) -> list[str]:
+        """What an alarm may name to be on the right object for fault ``f`` (the table in
+        :mod:`spanwatch.monitor.simline.scenario`)."""
+        if f.kind == "speed_ramp":
+            return [d.id for d in self.driven]
+        zones = [z.id for z in self.zones if f.target in (z.upstream, z.downstream)]
+        if f.kind in ("cof_drop", "glazing"):  # a slipping roller upsets the tension of both zones it bounds
+            return [f.target, *zones]
+        if f.kind == "drive_fault":
+            sec = self.line.elements[f.target].section if f.target in self.line.elements else None
+            tag = getattr(sec, "fault_tag", None)
+            return [f.target, *([tag] if tag else []), *zones]
+        if f.kind == "idler_drag":
+            sec = self.line.elements[f.target].section if f.target in self.line.elements else None
+            tag = getattr(sec, "speed_tag", None)
+            return [f.target, *([tag] if tag else [])]
+        if f.target in self._sources:  # a tag: the tag and what it measures
+            owner = self.tag_owner(f.target)
+            return [f.target, *([owner] if owner else [])]
+        return [f.target] if f.target else []

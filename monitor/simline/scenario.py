@@ -23,23 +23,50 @@ A scenario is a TOML file of our own design::
     start = "2 min"
     end = "4 min"
     size = 0.15
+    label = "cof_drop"                    # optional: the fault class an evaluation reports it under
+    severity = "obvious"                  # optional: "obvious" or "subtle" (for an evaluation)
 
-Fault kinds and what ``size`` means:
+    [[grade_change]]                      # a new lot within the config's tolerances, from `at` on
+    at = "40 min"
+    stack_factor = 1.06                   # optional, each: the new true value (Truth below)
+    modulus_factor = 1.05
+    cof_factor = 0.95
 
-========================  ==========================  ===============================================
-kind                      target                      size
-========================  ==========================  ===============================================
-cof_drop                  driven roller               the roller's true COF during the fault
-speed_ramp                (none)                      line speed to ramp to, e.g. "650 m/min"
-loadcell_drift            tension tag                 drift rate in the tag's unit per second
-out_of_round              winder                      eccentricity of the roll, e.g. "0.5 mm"
-caliper_change            winder                      relative change of the effective caliper
-stuck_sensor              tag                         (unused) the tag holds its value
-length_undercount         length tag                  share of length not counted, e.g. "3 %"
-tag_dropout               tag                         (unused) the tag stops updating
-drive_fault               driven roller (fault_tag)   (unused) its drive's fault bit reads 1; the plant
-                                                      is unchanged (pair it with cof_drop for a consequence)
-========================  ==========================  ===============================================
+Fault kinds, what ``size`` means, and what an alarm must name to be on the right object
+(``blame`` in :meth:`SimulatedLine.truth`; an alarm is on the right object when the measured things
+its check names, :func:`spanwatch.rules.base.blames_of`, or its object meet this list):
+
+=================  ====================  ========================================  ================================
+kind               target                size                                      blame
+=================  ====================  ========================================  ================================
+cof_drop           driven roller         the roller's true COF during the fault    the roller and the two tension
+                                                                                   zones it bounds
+glazing            driven roller         relative loss of COF reached at the end,  the roller and the two tension
+                                         e.g. "40 %" (slow: ramps, then holds)     zones it bounds
+speed_ramp         (none)                line speed to ramp to, e.g. "650 m/min"   every driven roller (air
+                                                                                   entrainment)
+loadcell_drift     tension tag           zero drift: offset rate in the tag's      the tag and its zone
+                                         unit per second (only inside the window)
+loadcell_gain      tension tag           relative gain error reached at the end,   the tag and its zone
+                                         e.g. "3 %" (slow: ramps, then holds)
+out_of_round       winder                eccentricity of the roll, e.g. "0.5 mm"   the winder
+caliper_change     winder                relative change of the effective caliper  the winder
+                                         (a step; "between rolls" when it starts
+                                         at a roll change, else "within a roll")
+idler_drag         idler with a speed    extra lag of the idler surface behind     the idler and its speed tag
+                   tag                   the web reached at the end, e.g. "1 %"
+                                         (a dragging bearing; slow: ramps, holds)
+stuck_sensor       tag                   (unused) the tag holds its value          the tag and what it measures
+                                                                                   (winder, roller or zone)
+length_undercount  length tag            share of length not counted, e.g. "3 %"   the tag and its winder
+tag_dropout        tag                   (unused) the tag stops updating           the tag and what it measures
+drive_fault        driven roller         (unused) its drive's fault bit reads 1;   the roller, its fault tag and
+                   (fault_tag)           the plant is unchanged (pair it with      the two zones it bounds
+                                         cof_drop for a consequence)
+=================  ====================  ========================================  ================================
+
+The slow kinds (:data:`SLOW_KINDS`) hold their end value until the scenario ends; the other kinds act
+only between ``start`` and ``end``.
 """
 
 from __future__ import annotations
@@ -62,7 +89,8 @@ from spanwatch.monitor.config import (
 )
 
 FAULT_KINDS = ("cof_drop", "speed_ramp", "loadcell_drift", "out_of_round", "caliper_change", "stuck_sensor",
-               "length_undercount", "tag_dropout", "drive_fault")
+               "length_undercount", "tag_dropout", "drive_fault", "loadcell_gain", "idler_drag", "glazing")
+SLOW_KINDS = ("loadcell_gain", "idler_drag", "glazing")  # ramp from start to end, then hold
 
 Speed = Annotated[float, BeforeValidator(lambda v: U.to_si(v, U.SPEED))]
 
@@ -108,14 +136,25 @@ class RollChange(Strict):
 
 class Fault(Strict):
     kind: Literal["cof_drop", "speed_ramp", "loadcell_drift", "out_of_round", "caliper_change", "stuck_sensor",
-                  "length_undercount", "tag_dropout", "drive_fault"]
+                  "length_undercount", "tag_dropout", "drive_fault", "loadcell_gain", "idler_drag", "glazing"]
     target: str = ""
     start: Duration
     end: Duration
     size: float | str = 0.0
+    label: str | None = None
+    severity: Literal["obvious", "subtle"] | None = None
 
     def size_si(self, kind: U.Kind) -> float:
         return U.to_si(self.size, kind)
+
+
+class GradeChange(Strict):
+    """A new lot from ``at`` on: the true stack factor, modulus factor and COF factor it brings (None: unchanged)."""
+
+    at: Duration
+    stack_factor: float | None = Field(default=None, gt=0)
+    modulus_factor: float | None = Field(default=None, gt=0)
+    cof_factor: float | None = Field(default=None, gt=0)
 
 
 class Initial(Strict):
@@ -148,6 +187,7 @@ class Scenario(Strict):
     speed: list[SpeedStep] = Field(default_factory=list)
     roll_change: list[RollChange] = Field(default_factory=list)
     fault: list[Fault] = Field(default_factory=list)
+    grade_change: list[GradeChange] = Field(default_factory=list)
     initial: Initial = Field(default_factory=Initial)
     noise: Noise = Field(default_factory=Noise)
     truth: Truth = Field(default_factory=Truth)
