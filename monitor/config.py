@@ -89,6 +89,9 @@ class LineSection(Strict):
     plant: str = ""
     max_speed: LineSpeed
     speed_tag: TagName
+    # the grade (recipe, lot) in production, as a number the line's controls publish: when it changes, the drift
+    # detectors learn their baselines again and the wound roll's caliper history starts afresh
+    grade_tag: TagName | None = None
     web_speed_from: Ident | None = Field(
         default=None, description="idler whose encoder gives the web speed; default: the speed reference")
     # at most 1 kHz: drive feedback on a fieldbus is read at about 1 kHz at best, and a faster grid only

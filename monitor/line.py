@@ -428,7 +428,8 @@ def _tags(cfg: LineConfig, err: _Errors) -> dict[str, TagInfo]:
 
 
 def _check_tag_refs(cfg: LineConfig, tags: dict[str, TagInfo], elements: dict[str, Element], err: _Errors) -> None:
-    refs: list[tuple[str, str | None, str]] = [("line.speed_tag", cfg.line.speed_tag, "speed")]
+    refs: list[tuple[str, str | None, str]] = [("line.speed_tag", cfg.line.speed_tag, "speed"),
+                                                ("line.grade_tag", cfg.line.grade_tag, "flag")]
     for i, r in enumerate(cfg.rollers):
         refs.append((f"rollers[{i}].speed_tag", r.speed_tag, "speed"))
         refs.append((f"rollers[{i}].fault_tag", r.fault_tag, "flag"))
@@ -514,6 +515,8 @@ def _signals(cfg: LineConfig, elements: dict[str, Element], zones: tuple[Zone, .
         return SignalSpec(name, tag, np.pi * (diameter or 0.0))
 
     out.append(SignalSpec("speed/line", cfg.line.speed_tag))
+    if cfg.line.grade_tag is not None:
+        out.append(SignalSpec("grade/line", cfg.line.grade_tag))
     for e in elements.values():
         sec = e.section
         if isinstance(sec, RollerSection) and sec.speed_tag is not None:

@@ -15,6 +15,7 @@ from spanwatch.rules.driftcheck import DriftCheck
 from spanwatch.rules.drivefault import DriveFaultCheck
 from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.plausibility import TagFrozenCheck, TagQualityCheck, TagRangeCheck, TagStaleCheck
+from spanwatch.rules.rollcaliper import RollCaliperCheck
 from spanwatch.rules.runout import RollerRunoutCheck, RunoutCheck
 from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
 from spanwatch.rules.sourcehealth import SourceLostCheck
@@ -41,7 +42,7 @@ CHECK_CLASSES: tuple[CheckKind, ...] = (
     SourceLostCheck,
 )
 
-DERIVED_CLASSES = (DriftCheck,)
+DERIVED_CLASSES = (RollCaliperCheck, DriftCheck)
 
 CHECK_KINDS: dict[str, CheckKind] = {}
 for _cls in (*CHECK_CLASSES, *DERIVED_CLASSES):
@@ -56,7 +57,7 @@ def source_checks(line: LineModel) -> list[Check]:
 def checks_for(line: LineModel) -> list[Check]:
     """Every check the line supports: :func:`source_checks`, then the derived kinds that read them."""
     base = source_checks(line)
-    derived: list[Check] = []
+    derived: list[Check] = list(RollCaliperCheck.for_line(line, base))
     if line.drift.enabled:
         derived += DriftCheck.for_line(line, base)
     return base + derived

@@ -15,8 +15,9 @@ by the check that owns the physics and read from :attr:`Block.results`; see :dat
 * baselines are kept per operating point (a band of line speed): the air film, idler lag and
   draw all move with speed, so a speed change is a new operating point, not a drift; returning to a
   known speed reuses its baseline;
-* it re-learns after a roll change of a winder it depends on and when a drift alarm of its own is
-  acknowledged (the operator has seen the change; the new level is the new normal);
+* it re-learns after a grade change (the line's ``grade_tag``), after a roll change of a winder it
+  depends on, and when a drift alarm of its own is acknowledged (the operator has seen the change;
+  the new level is the new normal);
 * its detector (fixed-reference tabular CUSUM by default; EWMA or river's ADWIN / Page-Hinkley
   where configured) is designed from the engineer's terms: the shift to detect in sigmas and the
   line's acceptable false-alarm interval (see :mod:`spanwatch.rules.drift.design`).
@@ -56,6 +57,7 @@ class Residual:
     states: tuple[LineState, ...] = RUNNING
     roll_change: tuple[str, ...] = ()
     label: str = ""
+    enabled: bool = True  # watched unless the config says otherwise
 
     @property
     def name(self) -> str:
@@ -70,7 +72,9 @@ RESIDUALS: tuple[Residual, ...] = (
     Residual("idler_lag", "value", "%", 2e-4),
     Residual("draw", "residual", "N/m", 1.0, label="draw"),
     Residual("draw", "ratio", "x predicted", 0.002, label="draw.gain"),
-    Residual("roll_diameter", "residual", "m", 2e-4, roll_change=("*",), label="roll_diameter"),
+    # not watched by default: its expected error grows along the roll with the calibration's slope error (the
+    # check's band grows with it), so it is not stationary; the local caliper ratio below is
+    Residual("roll_diameter", "residual", "m", 2e-4, roll_change=("*",), label="roll_diameter", enabled=False),
     Residual("roll_diameter", "caliper_ratio", "x calibrated", 0.005, roll_change=("*",), label="caliper"),
     Residual("runout", "value", "% of mean tension", 0.002),
 )
@@ -110,7 +114,7 @@ def residuals_for(settings: DriftSettings) -> list[tuple[Residual, dict[str, obj
     out = []
     for r in RESIDUALS:
         over = settings.residuals.get(r.name, {})
-        if over.get("enabled", True):
+        if over.get("enabled", r.enabled):
             out.append((r, over))
     return out
 
@@ -139,6 +143,7 @@ class DriftCheck:
         self.hold = False  # set by the application while an alarm of the same object stands: learn nothing
         self._baselines: list[tuple[float, Baseline]] = []  # (line speed m/s, baseline learnt there)
         self._speed: float | None = None  # line speed of the current operating point
+        self._grade: float | None = None  # the grade in production (``grade/line``), when the line publishes it
         self._monitor = self._new_monitor()
 
     def _new_monitor(self) -> DriftMonitor:
@@ -199,6 +204,12 @@ class DriftCheck:
         x = res.value if self.residual.field == "value" else res.extras.get(self.residual.field)
         if x is None:
             return CheckResult(value, reason, extras)
+        grade = block.signals.get("grade/line")
+        if grade is not None and grade.ok.any():
+            g = grade.value[grade.ok]
+            if (self._grade is not None and g[0] != self._grade) or (g[1:] != g[:-1]).any():
+                self.relearn()  # a new grade: its residuals have levels of their own
+            self._grade = float(g[-1])
         for w in self.residual.roll_change:
             for wid, starts in block.roll_start.items():
                 if (w == "*" or w == wid) and starts.any():

@@ -11,6 +11,7 @@ that says how much that prediction can be trusted.
 from __future__ import annotations
 
 import itertools
+import math
 from collections.abc import Iterator
 from typing import ClassVar
 
@@ -242,10 +243,11 @@ class RollDiameterCheck:
     - ``past_empty`` = 1: the predicted D^2 falls below the core's (an unwind whose length counter
       has paid out more than the roll held): OUT_OF_DOMAIN, not a prediction of zero.
     - ``caliper_nominal_dev``: calibrated caliper / (caliper x stack_factor) - 1;
-      ``caliper_history_dev``: calibrated caliper / median of the earlier rolls on this winder - 1
-      (NaN for the first roll); ``caliper_flag`` = 1 where either departs by more than the
-      material's ``stack_factor_tolerance``. The history is the check's state: kept from roll to
-      roll, forgotten by ``reset`` (a gap, a new run); it assumes one grade per run.
+      ``caliper_history_dev``: calibrated caliper / median of the earlier rolls of the same grade
+      (``grade/line``, from the line's ``grade_tag``; one grade when the line publishes none) on this
+      winder - 1 (NaN for the first roll of a grade); ``caliper_flag`` = 1 where either departs by
+      more than the material's ``stack_factor_tolerance``. The history is the check's state: kept
+      from roll to roll, forgotten by ``reset`` (a gap, a new run).
     - ``caliper_ratio``: the local effective caliper (least-squares slope of D^2 against length over
       the last ``local_length`` metres, :func:`local_slope`) over the calibrated one: 1 while the
       roll builds as calibrated; a caliper change within the roll moves it (a drift detector can
@@ -291,14 +293,16 @@ class RollDiameterCheck:
 
     def reset(self) -> None:
         """Forget everything: this roll's calibration and the calipers of the earlier rolls."""
-        self.history: list[float] = []
+        self.history: list[tuple[float, float]] = []  # (grade, calibrated caliper) of the earlier rolls
+        self.grade = math.nan  # the grade in production (``grade/line``; NaN: the line publishes none)
         self.fit: tuple[float, float, float] | None = None
         self._new_roll()
 
     def _new_roll(self) -> None:
         """Start a new roll: keep the last roll's plausible calibration in the history, forget the rest."""
         if self.fit is not None and not self.implausible:
-            self.history = [*self.history, self.sign * self.fit[1] * np.pi / 4.0][-ROLL_HISTORY:]
+            self.history = [*self.history, (self.roll_grade, self.sign * self.fit[1] * np.pi / 4.0)][-ROLL_HISTORY:]
+        self.roll_grade = self.grade
         self.l0: float | None = None
         self.sums = np.zeros(5)  # n, sum x, sum y, sum xx, sum xy   (x = dL, y = D^2)
         self.fit = None  # a = D0^2, b = slope, sigma_t
@@ -316,6 +320,9 @@ class RollDiameterCheck:
 
     def update(self, block: Block) -> CheckResult:
         n = block.n
+        grade = block.signals.get("grade/line")
+        if grade is not None and grade.ok.any():
+            self.grade = float(grade.value[grade.ok][-1])
         d, ln = block.signal(self.d_name), block.signal(self.l_name)
         starts = block.roll_start.get(self.object_id, np.zeros(n, dtype=bool))
         settling = block.roll_settling.get(self.object_id, np.zeros(n, dtype=bool))
@@ -430,7 +437,9 @@ class RollDiameterCheck:
         lo, hi = PLAUSIBLE_STACK
         self.implausible = not (lo * self.single_ply <= t_cal <= hi * self.single_ply)
         nominal = t_cal / self.t_prior - 1.0
-        history = t_cal / float(np.median(self.history)) - 1.0 if self.history else np.nan
+        self.roll_grade = self.grade
+        same = [c for g, c in self.history if g == self.grade or (math.isnan(g) and math.isnan(self.grade))]
+        history = t_cal / float(np.median(same)) - 1.0 if same else np.nan  # earlier rolls of the same grade
         flag = abs(nominal) > self.tolerance or (np.isfinite(history) and abs(history) > self.tolerance)
         self.devs = (nominal, history, float(flag))
 

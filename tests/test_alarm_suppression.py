@@ -74,8 +74,9 @@ def test_a_stale_tag_suppresses_its_frozen_alarm_and_the_checks_that_read_it():
                   "tag_range:q2.unwind.diameter:alarm"}
     # the unwind diameter is read by the roll-diameter and speed-diameter checks of the unwind
     physics = {f"{k}:unwind:{lv}" for k in ("roll_diameter", "speed_diameter") for lv in ("warning", "alarm")}
-    # and by the drift detectors on the roll-diameter check's residuals (they read what their source reads)
-    drift = {"drift:roll_diameter.unwind:alarm", "drift:caliper.unwind:alarm"}
+    # and by the checks that read the roll-diameter check's results (they read what their source reads): the
+    # drift detector on its local caliper ratio and the roll's calibrated caliper
+    drift = {"drift:caliper.unwind:alarm", "roll_caliper:unwind:alarm"}
     assert set(got) == tag_alarms | physics | drift
     assert all(got[k].startswith("tag q2.unwind.diameter stale") for k in tag_alarms)
     assert "tag_stale:q2.unwind.diameter:alarm" not in got
@@ -87,7 +88,8 @@ def test_a_frozen_speed_tag_suppresses_the_checks_reading_that_speed_only():
     # speed/pull_2 is read by traction pull_2, slip pull_2 and draw pull_1-pull_2 (monitor/line.py signals), and
     # by the drift detectors on their residuals
     assert {k.rsplit(":", 1)[0] for k in got} == {
-        "traction:pull_2", "slip:pull_2", "draw:pull_1-pull_2", "drift:traction.pull_2", "drift:slip.pull_2",
+        "traction:pull_2", "slip:pull_2", "draw:pull_1-pull_2", "drift:traction.pull_2", "drift:traction.mu.pull_2",
+        "drift:slip.pull_2",
         "drift:draw.pull_1-pull_2", "drift:draw.gain.pull_1-pull_2"}
 
 

@@ -194,10 +194,12 @@ class SimulatedLine:
 
     def _map_tags(self) -> dict[str, tuple[str, str, float]]:
         """tag -> (quantity, object, factor); quantity in speed_ref, speed, tension, diameter, rpm, length, core,
-        drive_fault."""
+        drive_fault, grade."""
         out: dict[str, tuple[str, str, float]] = {}
         cfg = self.line.config
         out[cfg.line.speed_tag] = ("speed_ref", "", 1.0)
+        if cfg.line.grade_tag:
+            out[cfg.line.grade_tag] = ("grade", "", 1.0)
         for el in self.line.elements.values():
             s = el.section
             if isinstance(s, RollerSection) and s.speed_tag:
@@ -522,6 +524,9 @@ class SimulatedLine:
             return m[:, c["core"]]
         if quantity == "drive_fault":
             return m[:, c["drive"] + self._driven_idx[obj]]
+        if quantity == "grade":  # the grade number the controls publish: how many grade changes have passed
+            at = np.array([g.at for g in self._grades], dtype=float)
+            return np.searchsorted(at, m[:, c["t"]] + 1e-9, side="right").astype(float)
         raise KeyError(quantity)
 
     def _idler_speeds(self, idler: str, m: np.ndarray) -> np.ndarray:

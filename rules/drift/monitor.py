@@ -222,6 +222,8 @@ class DriftMonitor:
         self._prev = (int(bs[-1]), float(means[-1]))
         z = standardise(means, base, prev)
         ends = (bs + 1) * self.period
+        if math.isnan(self._ends[0]):  # the batch before the detector's first: its first batch's start
+            self._ends[0] = bs[0] * self.period
         j = self._n_det + np.arange(bs.shape[0])  # detector batch numbers
         self._ends = np.concatenate([self._ends, ends])
         if self._ends.shape[0] > HISTORY + 1:
