@@ -76,6 +76,7 @@ RESIDUALS: tuple[Residual, ...] = (
     # check's band grows with it), so it is not stationary; the local caliper ratio below is
     Residual("roll_diameter", "residual", "m", 2e-4, roll_change=("*",), label="roll_diameter", enabled=False),
     Residual("roll_diameter", "caliper_ratio", "x calibrated", 0.005, roll_change=("*",), label="caliper"),
+    Residual("length_rate", "value", "%", 5e-4, roll_change=("*",)),
     Residual("runout", "value", "% of mean tension", 0.002),
 )
 
