@@ -222,3 +222,18 @@ def test_every_detector_runs_behind_the_same_gates(detector: str) -> None:
     assert (r.reason[int(400 * RATE): int(500 * RATE)] == int(Reason.LINE_STATE)).all()
     assert (r.reason[: int(290 * RATE)] == int(Reason.WARMING_UP)).all()
     assert (r.reason[int(900 * RATE):] == int(Reason.OK)).all()
+
+
+def test_a_grade_change_relearns_every_baseline() -> None:
+    check = _drift()
+    x = _noise(1500.0)
+    x[int(700 * RATE):] += 8.0  # the new grade's residual sits elsewhere: not a drift
+    grade = np.where(np.arange(x.size) < int(700 * RATE), 1.0, 2.0)
+    blocks = _blocks(x)
+    for b in blocks:
+        i0 = int(round((b.t[0] - 1.0e9) * RATE))
+        b.signals["grade/line"] = Signal(grade[i0:i0 + b.n], np.ones(b.n, dtype=bool))
+    r = _run(check, blocks)
+    assert (r.reason[int(700 * RATE): int(990 * RATE)] == int(Reason.WARMING_UP)).all()
+    assert not (np.nan_to_num(r.value) >= 1.0).any()
+    assert (r.reason[int(1010 * RATE):] == int(Reason.OK)).all()

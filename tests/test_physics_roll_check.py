@@ -181,3 +181,62 @@ def test_local_slope_against_numpy_polyfit():
     for k in (50, 199, 399):
         ref = np.polyfit(x[start[k]:k + 1], y[start[k]:k + 1], 1)[0]
         assert got[k] == pytest.approx(ref, rel=1e-8)
+
+
+def _rolls_with_grades(calipers, grades):
+    rolls = [rewind_readings(500.0, lambda _l, c=c: c) for c in calipers]
+    length = np.concatenate([r[0] for r in rolls])
+    diameter = np.concatenate([r[1] for r in rolls])
+    start = np.zeros(length.size, dtype=bool)
+    start[np.cumsum([0] + [r[0].size for r in rolls[:-1]])] = True
+    grade = np.concatenate([np.full(r[0].size, float(g)) for r, g in zip(rolls, grades, strict=True)])
+    return length, diameter, start, grade
+
+
+def _run_with_grade(check, length, diameter, start, grade, size=700):
+    parts = []
+    for lo in range(0, length.size, size):
+        sl = slice(lo, lo + size)
+        b = block_of(length[sl], diameter[sl], start=start[sl], frozen_t0=lo / 50.0)
+        b.signals["grade/line"] = Signal(grade[sl], np.ones(grade[sl].size, dtype=bool))
+        with no_runtime_warning():
+            parts.append((b, check.update(b)))
+    return parts
+
+
+def test_a_new_grade_is_compared_with_rolls_of_its_own_grade_only():
+    # Two rolls of grade 1 (caliper T), then two of grade 2, 6 % thicker (a new lot): the first roll of grade 2 has
+    # nothing of its grade to compare with (NaN), the second compares with the first of grade 2 (0), not with
+    # grade 1 (+6 %).
+    length, diameter, start, grade = _rolls_with_grades((T, T, 1.06 * T, 1.06 * T), (1, 1, 2, 2))
+    parts = _run_with_grade(make_check(stack=1.03, single=T), length, diameter, start, grade)
+    res = {k: np.concatenate([p.extras[k] for _, p in parts]) for k in ("caliper_history_dev",)}
+    reason = np.concatenate([p.reason for _, p in parts])
+    ok = reason == int(Reason.OK)
+    roll = np.cumsum(start) - 1
+    assert np.all(np.isnan(res["caliper_history_dev"][ok & (roll == 2)]))
+    np.testing.assert_allclose(res["caliper_history_dev"][ok & (roll == 3)], 0.0, atol=3e-3)
+    np.testing.assert_allclose(res["caliper_history_dev"][ok & (roll == 1)], 0.0, atol=3e-3)
+
+
+def test_roll_caliper_alarm_value_in_units_of_its_tolerances():
+    # Three rolls of T, then one 5 % thicker of the same grade: within the 10 % nominal tolerance but beyond twice
+    # the 2 % caliper drift from its grade: 0.05 / 0.04 = 1.25 x tolerance. The first roll (no grade history) is
+    # judged on the nominal alone: |1 - 1.0 / 1.03| / 0.1 = 0.29.
+    from spanwatch.rules.rollcaliper import RollCaliperCheck
+
+    length, diameter, start, grade = _rolls_with_grades((T, T, T, 1.05 * T), (1, 1, 1, 1))
+    check = make_check(stack=1.03, single=T)
+    rc = RollCaliperCheck(check, nominal_tolerance=0.1, roll_tolerance=0.04)
+    values, reasons = [], []
+    for b, res in _run_with_grade(check, length, diameter, start, grade):
+        b.results = {("roll_diameter", "w"): res}
+        out = rc.update(b)
+        values.append(out.value)
+        reasons.append(out.reason)
+    value, reason = np.concatenate(values), np.concatenate(reasons)
+    ok = reason == int(Reason.OK)
+    roll = np.cumsum(start) - 1
+    np.testing.assert_allclose(value[ok & (roll == 0)], abs(1.0 / 1.03 - 1.0) / 0.1, atol=0.03)
+    np.testing.assert_allclose(value[ok & (roll == 3)], 0.05 / 0.04, atol=0.08)
+    assert (reason[roll == 0][:10] == int(Reason.WARMING_UP)).all()  # before the roll is calibrated
