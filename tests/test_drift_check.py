@@ -231,7 +231,7 @@ def test_a_grade_change_relearns_every_baseline() -> None:
     grade = np.where(np.arange(x.size) < int(700 * RATE), 1.0, 2.0)
     blocks = _blocks(x)
     for b in blocks:
-        i0 = int(round((b.t[0] - 1.0e9) * RATE))
+        i0 = round(float(b.t[0] - 1.0e9) * RATE)
         b.signals["grade/line"] = Signal(grade[i0:i0 + b.n], np.ones(b.n, dtype=bool))
     r = _run(check, blocks)
     assert (r.reason[int(700 * RATE): int(990 * RATE)] == int(Reason.WARMING_UP)).all()
