@@ -958,15 +958,19 @@ def evaluate_cmd(
     markdown: Annotated[Path | None, typer.Option("--markdown", help="Write a report (docs/detection.md style).")]
     = None,
     note: Annotated[str | None, typer.Option(help="A paragraph to open the markdown report with.")] = None,
+    detector: Annotated[str | None, typer.Option(help="Watch every residual with this drift detector instead of "
+                                                      "the config's: cusum, ewma, adwin or page_hinkley.")] = None,
     progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
     check_targets: Annotated[bool, typer.Option(help="Exit 1 when a target is not met (one the set cannot judge "
                                                      "is not counted).")] = False,
 ) -> None:
     """Measure detection against the simulator's ground truth: found on the right object, delay, false alarms."""
     from spanwatch.monitor import units as U
-    from spanwatch.monitor.config import ConfigError
+    from spanwatch.monitor.config import DRIFT_DETECTORS, ConfigError
     from spanwatch.monitor.evaluate import EvaluateError, Outputs, evaluate
 
+    if detector is not None:
+        _one_of(detector, DRIFT_DETECTORS, "--detector")
     times = []
     for option, text in (("--grace", grace), ("--interval", interval)):
         try:
@@ -977,7 +981,7 @@ def evaluate_cmd(
         summary = evaluate(set_name, seeds=seeds, jobs=jobs, grace=times[0], interval=times[1],
                            outputs=Outputs(csv=csv, json=json_out, markdown=markdown), note=note,
                            console=Console(width=80, highlight=False) if not sys.stdout.isatty() else console,
-                           progress_console=err_console, progress=progress,
+                           progress_console=err_console, progress=progress, detector=detector,
                            command=_command_line(sys.argv[1:]))
     except ConfigError as exc:
         fail_config(exc)

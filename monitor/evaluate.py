@@ -120,25 +120,36 @@ def drift_registered() -> bool:
     return DRIFT_KIND in CHECK_KINDS
 
 
-def _line_for(cfg_path: Path, variant: str) -> Any:
-    """The scenario's line; for ``fixed``, with ``[checks.drift] enabled = false`` merged into its config."""
+def _line_for(cfg_path: Path, variant: str, detector: str | None = None) -> Any:
+    """The scenario's line; for ``fixed``, with ``[checks.drift] enabled = false`` merged into its config; with
+    ``detector``, every residual watched by that drift detector (``[drift] detector``, per-residual choices
+    dropped)."""
     from spanwatch.monitor.config import parse_config, read_toml
     from spanwatch.monitor.exposure import config_hash
     from spanwatch.monitor.line import build_line, load_line
 
-    if variant == "main" or not drift_registered():
+    fixed = variant != "main" and drift_registered()
+    if not fixed and detector is None:
         return load_line(cfg_path)
     data, _ = read_toml(cfg_path)
-    checks = dict(data.get("checks") or {})
-    checks[DRIFT_KIND] = {**(checks.get(DRIFT_KIND) or {}), "enabled": False}
-    data["checks"] = checks
-    name = f"{cfg_path} (fixed limits: checks.{DRIFT_KIND}.enabled = false)"
+    if fixed:
+        checks = dict(data.get("checks") or {})
+        checks[DRIFT_KIND] = {**(checks.get(DRIFT_KIND) or {}), "enabled": False}
+        data["checks"] = checks
+        name = f"{cfg_path} (fixed limits: checks.{DRIFT_KIND}.enabled = false)"
+    else:
+        drift = dict(data.get("drift") or {})
+        drift["detector"] = detector
+        drift["residuals"] = {k: {x: y for x, y in v.items() if x != "detector"}
+                              for k, v in (drift.get("residuals") or {}).items()}
+        data["drift"] = drift
+        name = f"{cfg_path} (drift.detector = {detector})"
     cfg = parse_config(data, name)
     return build_line(cfg, name, config_hash(cfg))
 
 
-def run_scenario(path: str | Path, seed_offset: int = 0, variant: str = "main", *, chunk: float = 60.0,
-                 on_advance: Callable[[float], None] | None = None) -> RunResult:
+def run_scenario(path: str | Path, seed_offset: int = 0, variant: str = "main", detector: str | None = None, *,
+                 chunk: float = 60.0, on_advance: Callable[[float], None] | None = None) -> RunResult:
     """Run one scenario through the pipeline in memory with seed ``scenario seed + seed_offset``; collect raises."""
     from spanwatch.monitor.pipeline import Pipeline
     from spanwatch.monitor.simline import SimulatedLine, load_scenario
@@ -149,7 +160,7 @@ def run_scenario(path: str | Path, seed_offset: int = 0, variant: str = "main", 
     sc, cfg_path = load_scenario(path)
     seed = sc.scenario.seed + seed_offset
     sc = sc.model_copy(update={"scenario": sc.scenario.model_copy(update={"seed": seed})})
-    line = _line_for(cfg_path, variant)
+    line = _line_for(cfg_path, variant, detector)
     sim = SimulatedLine(line, sc)
     pipe = Pipeline(line, None, context=False)
     checks = {(c.kind, c.object_id): c for c in pipe.checks}
@@ -178,12 +189,12 @@ def run_scenario(path: str | Path, seed_offset: int = 0, variant: str = "main", 
                      wall=time.perf_counter() - wall0)
 
 
-def _work(task: tuple[str, int, str]) -> RunResult:
+def _work(task: tuple[str, int, str, str | None]) -> RunResult:
     return run_scenario(*task)
 
 
 def run_all(files: Sequence[Path], seeds: int, *, jobs: int = 1, fixed: bool | None = None,
-            progress: Callable[[float, float], None] | None = None) -> list[RunResult]:
+            progress: Callable[[float, float], None] | None = None, detector: str | None = None) -> list[RunResult]:
     """Every scenario with every seed (and the fixed-limit variant when drift detectors exist), ``jobs`` at a time.
 
     ``progress(done, total)`` in simulated seconds. Scenarios run longest first, so that parallel
@@ -194,7 +205,7 @@ def run_all(files: Sequence[Path], seeds: int, *, jobs: int = 1, fixed: bool | N
     fixed = drift_registered() if fixed is None else fixed
     durations = {str(f): load_scenario(f)[0].scenario.duration for f in files}
     variants = VARIANTS if fixed else ("main",)
-    tasks = [(str(f), i, v) for f in files for i in range(seeds) for v in variants]
+    tasks = [(str(f), i, v, detector if v == "main" else None) for f in files for i in range(seeds) for v in variants]
     tasks.sort(key=lambda t: -durations[t[0]])
     total = sum(durations[t[0]] for t in tasks)
     done = 0.0
@@ -502,8 +513,8 @@ def markdown_text(summary: dict[str, Any], meta: dict[str, Any]) -> str:
           f"{meta['seeds'] - 1}); grace {summary['grace_s']:g} s; {meta['runs']} runs, "
           f"{meta['simulated_hours']:.1f} simulated hours, {meta['wall_s']:.0f} s wall time with {meta['jobs']} job(s)",
           f"- drift detectors (check kind `{DRIFT_KIND}`): "
-          + ("registered" if meta["drift"] else "not registered in this build, so the fixed-limit column is "
-             "the configured line itself"),
+          + (f"registered; detector: {meta.get('detector', 'as configured')}" if meta["drift"] else
+             "not registered in this build, so the fixed-limit column is the configured line itself"),
           f"- scenario set `{meta['set']}`:", ""]
     L += [f"  - `{s['file']}`: {s['duration_min']:g} min, " + "; ".join([*(s["faults"] or ["clean"]),
                                                                          *s.get("extra", [])])
@@ -543,7 +554,7 @@ def scenario_list(files: Sequence[Path]) -> list[dict[str, Any]]:
 
 
 def meta_of(set_name: str, files: Sequence[Path], runs: Sequence[RunResult], *, seeds: int, jobs: int,
-            wall: float, command: str, note: str | None = None) -> dict[str, Any]:
+            wall: float, command: str, note: str | None = None, detector: str | None = None) -> dict[str, Any]:
     from spanwatch import __version__
 
     scen = scenario_list(files)
@@ -551,7 +562,7 @@ def meta_of(set_name: str, files: Sequence[Path], runs: Sequence[RunResult], *, 
     return {"command": command, "version": __version__, "commit": _commit(),
             "date": datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"), "seeds": seeds, "jobs": jobs, "set": set_name,
             "runs": len(main), "simulated_hours": sum(r.duration for r in main) / 3600, "wall_s": wall,
-            "drift": drift_registered(), "scenarios": scen, "note": note}
+            "drift": drift_registered(), "detector": detector or "as configured", "scenarios": scen, "note": note}
 
 
 @dataclass
@@ -565,6 +576,7 @@ class Outputs:
 def evaluate(set_name: str, *, seeds: int = 3, jobs: int = 1, grace: float = DEFAULT_GRACE,
              interval: float = SHIFT_S, outputs: Outputs | None = None, console: Any = None,
              progress_console: Any = None, progress: bool = True, command: str = "spanwatch evaluate",
+             detector: str | None = None,
              note: str | None = None) -> dict[str, Any]:
     """Run a set, print the tables, write the files asked for; return the summary (with ``meta``)."""
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
@@ -586,11 +598,12 @@ def evaluate(set_name: str, *, seeds: int = 3, jobs: int = 1, grace: float = DEF
     wall0 = time.perf_counter()
     with bar:
         task = bar.add_task("evaluate", total=1.0)
-        runs = run_all(files, seeds, jobs=jobs,
+        runs = run_all(files, seeds, jobs=jobs, detector=detector,
                        progress=lambda done, total: bar.update(task, completed=done / total if total else 1.0))
     wall = time.perf_counter() - wall0
     summary = summarise(runs, grace=grace, interval=interval)
-    meta = meta_of(set_name, files, runs, seeds=seeds, jobs=jobs, wall=wall, command=command, note=note)
+    meta = meta_of(set_name, files, runs, seeds=seeds, jobs=jobs, wall=wall, command=command, note=note,
+                   detector=detector)
     if console is not None:
         print_summary(summary, console)
     if outputs.csv is not None:

@@ -212,3 +212,21 @@ def test_evaluate_option_errors_are_one_line_errors():
     assert "--set" in res.output and "full" in res.output and "ci" in res.output
     res = CliRunner().invoke(app, ["evaluate", "--set", "ci", "--grace", "5 kg", "--no-progress"])
     assert res.exit_code == 2 and "--grace" in res.output and "duration" in res.output
+
+
+def test_a_detector_chosen_for_the_evaluation_replaces_the_configs():
+    from spanwatch.monitor.evaluate import _line_for
+
+    cfg = Path(__file__).resolve().parent.parent / "config" / "scenarios" / "eval" / "quillmere-q2-drives.toml"
+    assert _line_for(cfg, "main").model.drift.detector == "cusum"
+    line = _line_for(cfg, "main", "page_hinkley")
+    assert line.model.drift.detector == "page_hinkley"
+    assert {c.detector for c in line_checks(line) if c.kind == "drift"} == {"page_hinkley"}
+    fixed = _line_for(cfg, "fixed")
+    assert fixed.config.checks["drift"].enabled is False
+
+
+def line_checks(line):
+    from spanwatch.monitor.checkset import build_checks
+
+    return build_checks(line)
