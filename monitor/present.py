@@ -121,11 +121,15 @@ def transition_log_line(tr: Transition) -> str:
     """A transition as one log line: :func:`transition_line` without its column padding.
 
     Source time, RAISE or clear, priority, check and object, level, the value (raise) or peak (clear)
-    in its unit, the limit and the line state; a drift's raise adds what moved, by how much and since when.
+    in its unit, the limit and the line state; a drift's raise adds what moved, by how much and since when; a raise
+    names the things to look at (:func:`spanwatch.rules.base.blames_of`: a draw alarm its zone's tension tag and
+    rollers) when they are more than its object.
     """
     text = " ".join(transition_line(tr)[0].split())
     if tr.event == "raise" and tr.point.kind == "drift" and tr.detail:
         text += "; " + drift_text(tr.point.object_id, dict(tr.detail), now=tr.t)
+    if tr.event == "raise" and tr.point.blames and tr.point.blames != (tr.point.object_id,):
+        text += "; look at " + ", ".join(tr.point.blames)
     return text
 
 
