@@ -48,7 +48,7 @@ class Residual:
     """A residual stream a drift detector may watch: ``source`` check kind, ``field`` (``value`` or an extra),
     its ``unit`` as a person reads it, the line ``states`` where it means something, the smallest sigma worth
     believing (``sigma_floor``, in the field's SI unit: a near-constant baseline must not make every tiny change
-    a drift), and the winders whose roll change re-learns it (``"*"``: every winder)."""
+    a drift), and the winders whose roll change re-learns it (``"*"``: the winder the source check is on)."""
 
     source: str
     field: str
@@ -212,14 +212,15 @@ class DriftCheck:
                 self.relearn()  # a new grade: its residuals have levels of their own
             self._grade = float(g[-1])
         for w in self.residual.roll_change:
-            for wid, starts in block.roll_start.items():
-                if (w == "*" or w == wid) and starts.any():
-                    self.relearn()
+            starts = block.roll_start.get(self.source_key[1] if w == "*" else w)
+            if starts is not None and starts.any():
+                self.relearn()
         ok = res.valid & state_mask(block.line_state, self.residual.states) & np.isfinite(x)
         if self.hold and self._monitor.learning:
             ok = np.zeros(n, dtype=bool)
-        if ok.any():
-            self._operating_point(float(np.median(block.signal("speed/web").value[ok])))
+        if ok.any():  # the operating point: the line speed at the middle usable frame (cheaper than a median)
+            usable = np.flatnonzero(ok)
+            self._operating_point(float(block.signal("speed/web").value[usable[usable.size // 2]]))
         out = self._monitor.update(block.t, np.where(ok, x, np.nan), ok)
         reason = np.where(ok, out.state, np.where(res.valid, int(Reason.LINE_STATE), res.reason)).astype(np.int8)
         value = np.where(reason == int(Reason.OK), out.value, np.nan)

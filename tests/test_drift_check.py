@@ -146,14 +146,21 @@ def test_small_speed_wander_stays_on_one_operating_point() -> None:
     assert (r.reason[int(320 * RATE):] == int(Reason.OK)).all()
 
 
-def test_a_roll_change_relearns_a_wound_roll_residual_and_not_others() -> None:
+def test_a_roll_change_relearns_a_wound_roll_residual_of_its_own_winder_only() -> None:
     caliper = next(r for r in RESIDUALS if r.name == "caliper")
-    for residual, relearns in ((caliper, True), (next(r for r in RESIDUALS if r.name == "draw"), False)):
-        check = _drift(residual)
-        x = _noise(900.0)
-        r = _run(check, _blocks(x, roll_start_at=int(600 * RATE), source=(residual.source, "s5")))
+    draw = next(r for r in RESIDUALS if r.name == "draw")
+    args = dict(detector="cusum", period=10.0, learn=300.0, shift=1.0, arl0=1e5, sigma_floor=0.0, speed_band=0.1)
+    cases = ((caliper, ("roll_diameter", "rewind"), "rewind", True),
+             (caliper, ("roll_diameter", "unwind"), "rewind", False),  # the other winder's roll change
+             (draw, ("draw", "s5"), "rewind", False))
+    for residual, key, winder, relearns in cases:
+        check = DriftCheck(_Source(*key), residual, **args)  # type: ignore[arg-type]
+        blocks = _blocks(_noise(900.0), roll_start_at=int(600 * RATE), source=key)
+        for b in blocks:
+            b.roll_start = {winder: b.roll_start["rewind"]}
+        r = _run(check, blocks)
         after = r.reason[int(610 * RATE): int(880 * RATE)]
-        assert (after == int(Reason.WARMING_UP)).all() == relearns
+        assert (after == int(Reason.WARMING_UP)).all() == relearns, (residual.name, key, winder)
 
 
 def test_relearn_forgets_every_operating_point() -> None:
