@@ -54,7 +54,7 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
         except BaseException:
             history.close()
             raise
-    pipe = Pipeline(line, history)
+    pipe = Pipeline(line, history, block_seconds=60.0)
     if history is not None:
         remember_config(history, line, pipe.points)
     problems = ReadProblems()

@@ -31,12 +31,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import ClassVar
 
 import numpy as np
 from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult, LineState, Reason, blames_of, state_mask
-from spanwatch.rules.drift import Baseline, DriftMonitor
+from spanwatch.rules.drift import Baseline, DriftMonitor, DriftOutput
 from spanwatch.rules.drift.design import arl0_for
 from spanwatch.rules.linemodel import DriftSettings, LineModel
 
@@ -218,12 +218,45 @@ class DriftCheck:
         ok = res.valid & state_mask(block.line_state, self.residual.states) & np.isfinite(x)
         if self.hold and self._monitor.learning:
             ok = np.zeros(n, dtype=bool)
-        if ok.any():  # the operating point: the line speed at the middle usable frame (cheaper than a median)
-            usable = np.flatnonzero(ok)
-            self._operating_point(float(block.signal("speed/web").value[usable[usable.size // 2]]))
-        out = self._monitor.update(block.t, np.where(ok, x, np.nan), ok)
+        xs = np.where(ok, x, np.nan)
+        parts = [self._monitor.update(block.t[a:b], xs[a:b], ok[a:b]) if point is None else
+                 self._at(point, block.t[a:b], xs[a:b], ok[a:b]) for a, b, point in self._pieces(block, ok)]
+        out = parts[0] if len(parts) == 1 else DriftOutput(
+            *(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(DriftOutput)))
         reason = np.where(ok, out.state, np.where(res.valid, int(Reason.LINE_STATE), res.reason)).astype(np.int8)
         value = np.where(reason == int(Reason.OK), out.value, np.nan)
         extras = {"change_time": out.change_time, "shift": out.shift, "mean": out.mean, "sigma": out.sigma,
-                  "residual": np.where(ok, x, np.nan)}
+                  "residual": xs}
         return CheckResult(value, reason, extras)
+
+    def _at(self, speed: float, t: np.ndarray, x: np.ndarray, ok: np.ndarray) -> DriftOutput:
+        self._operating_point(speed)
+        return self._monitor.update(t, x, ok)
+
+    def _pieces(self, block: Block, ok: np.ndarray) -> list[tuple[int, int, float | None]]:
+        """The block cut where the operating point changes: (start, end, line speed there or None to keep it).
+
+        A speed change passes through frames the residual does not use (accelerating, settling), so each run of
+        usable frames has one operating point (the line speed at its middle frame); runs in the same band as the
+        one before are not cut, so the result does not depend on how the frames were cut into blocks."""
+        n = block.n
+        if not ok.any():
+            return [(0, n, None)]
+        edges = np.flatnonzero(np.diff(np.concatenate(([False], ok, [False])).astype(np.int8)))
+        starts, ends = edges[0::2], edges[1::2]
+        speed = block.signal("speed/web").value
+        cuts: list[tuple[int, float]] = []
+        current = self._speed
+        for a, b in zip(starts, ends, strict=True):
+            v = float(speed[(a + b - 1) // 2])
+            if not math.isfinite(v) or v <= 0:
+                continue
+            if current is None or abs(v / current - 1.0) > self.speed_band:
+                cuts.append((int(a), v))
+                current = v
+        if not cuts:
+            return [(0, n, None)]
+        out: list[tuple[int, int, float | None]] = [(0, cuts[0][0], None)] if cuts[0][0] > 0 else []
+        for i, (a, v) in enumerate(cuts):
+            out.append((a, cuts[i + 1][0] if i + 1 < len(cuts) else n, v))
+        return out
