@@ -96,24 +96,33 @@ def lifecycle_line(e: LifecycleEvent, t0: float) -> str:
 
 def drift_text(object_id: str, detail: dict[str, float | None], now: float | None = None) -> str:
     """What a drift alarm carries, in its residual's unit: the estimated change point and the size of the change
-    against the baseline it was learnt with.
+    against the baseline it was learnt with (a ratio's change in per cent).
 
     >>> drift_text("draw.s5", {"change_time": 100.0, "shift": 3.2, "mean": 0.5, "sigma": 1.1}, now=400.0)
-    'draw residual moved by 3.200 N/m (baseline 0.500 +- 1.100 N/m), since about 5 min before'
+    'draw residual moved by +3.200 N/m (baseline 0.500 +- 1.100 N/m), since about 5 min before'
+    >>> drift_text("draw.gain.s5", {"change_time": 370.0, "shift": 0.029, "mean": 1.0, "sigma": 0.002}, now=400.0)
+    'draw gain residual moved by +2.9 % (baseline 1.0000 +- 0.0020 x predicted), since about 30 s before'
     """
     from spanwatch.rules.driftcheck import residual_of
 
     r = residual_of(object_id)
     unit = r.unit if r is not None else ""
     name = (r.name if r is not None else object_id).replace(".", " ")
-    text = f"{name} residual moved by {fmt_value(detail.get('shift'), unit)}"
-    mean, sigma = detail.get("mean"), detail.get("sigma")
-    if mean is not None and sigma is not None:
-        plus = fmt_value(sigma, unit)
-        text += f" (baseline {fmt_value(mean, unit).removesuffix(' ' + unit)} +- {plus})"
+    shift, mean, sigma = detail.get("shift"), detail.get("mean"), detail.get("sigma")
+    finite = [v is not None and math.isfinite(v) for v in (shift, mean, sigma)]
+    if unit.startswith("x "):  # a ratio: its change in per cent
+        size = f"{shift * 100:+.1f} %" if finite[0] else "-"
+        base = f"{mean:.4f} +- {sigma:.4f} {unit}" if finite[1] and finite[2] else ""
+    else:
+        size = fmt_value(shift, unit)
+        size = size if not finite[0] or size.startswith("-") else "+" + size
+        base = (f"{fmt_value(mean, unit).removesuffix(' ' + unit)} +- {fmt_value(sigma, unit)}"
+                if finite[1] and finite[2] else "")
+    text = f"{name} residual moved by {size}" + (f" (baseline {base})" if base else "")
     ct = detail.get("change_time")
     if ct is not None and now is not None and math.isfinite(ct):
-        text += f", since about {max(0.0, now - ct) / 60:.0f} min before"
+        ago = max(0.0, now - ct)
+        text += f", since about {ago:.0f} s before" if ago < 120 else f", since about {ago / 60:.0f} min before"
     return text
 
 
