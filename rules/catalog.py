@@ -20,6 +20,7 @@ from spanwatch.rules.runout import RollerRunoutCheck, RunoutCheck
 from spanwatch.rules.slip import IdlerLagCheck, SlipCheck
 from spanwatch.rules.sourcehealth import SourceLostCheck
 from spanwatch.rules.span import DrawCheck
+from spanwatch.rules.tensionzero import TensionZeroCheck
 from spanwatch.rules.traction import NoDriveCheck, TractionCheck
 from spanwatch.rules.woundroll import LengthRateCheck, RollDiameterCheck, SpeedDiameterCheck
 
@@ -30,6 +31,7 @@ CHECK_CLASSES: tuple[CheckKind, ...] = (
     IdlerLagCheck,
     DriveFaultCheck,
     DrawCheck,
+    TensionZeroCheck,
     RollDiameterCheck,
     SpeedDiameterCheck,
     LengthRateCheck,
