@@ -933,7 +933,10 @@ def examples_cmd(
 
     found = list_examples()
     t = Table(title=f"{len(found)} examples shipped with spanwatch {__version__}", title_justify="left")
-    for col in ("name", "kind", "description", "refers to"):
+    longest = max((len(e.name) for e in found), default=4)
+    # a name is never cut: whole where the terminal has room, else folded onto the next line
+    t.add_column("name", overflow="fold", min_width=longest if console.width >= longest + 60 else None)
+    for col in ("kind", "description", "refers to"):
         t.add_column(col)
     for e in found:
         t.add_row(e.name, e.kind, e.description, ", ".join(e.refers_to) or "-")

@@ -152,16 +152,24 @@ def _description(name: str, path: Path) -> str:
     return textwrap.shorten(first, width=160, placeholder=" ...")
 
 
-def _kind(name: str) -> str:
+def _kind(name: str, path: Path) -> str:
+    """``service``, ``scenario`` (a file with a ``[scenario]`` table) or ``line``."""
     if name.endswith(".service"):
         return "service"
-    return "scenario" if name.startswith("scenarios/") else "line"
+    if not name.startswith("scenarios/"):
+        return "line"
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError:
+        return "scenario"
+    return "scenario" if re.search(r"^\[scenario\]", text, re.M) else "line"
 
 
 def list_examples() -> list[Example]:
     """Every shipped example (line files first, then scenarios), with its one-line description."""
     root = examples_root()
-    return [Example(n, _kind(n), _description(n, root / n), _refers_to(n, root / n), root / n) for n in _names()]
+    return [Example(n, _kind(n, root / n), _description(n, root / n), _refers_to(n, root / n), root / n)
+            for n in _names()]
 
 
 def example_files(name: str) -> list[str]:

@@ -268,7 +268,11 @@ def assert_well_formed(res, n):
 
 
 def check_ids(line):
-    return [f"{c.kind}:{c.object_id}" for c in build_checks(line)]
+    """The checks that read signals (the derived kinds, drift and roll_caliper, read other checks' results:
+    :func:`test_derived_checks_on_hostile_blocks`)."""
+    from spanwatch.rules.catalog import source_checks
+
+    return [f"{c.kind}:{c.object_id}" for c in source_checks(line.model)]
 
 
 @pytest.fixture(scope="module")
@@ -283,6 +287,7 @@ def _check_named(line, cid):
 
 
 CHECK_IDS = check_ids(load_line(Path(__file__).resolve().parents[1] / "config" / "quillmere-q2.toml"))
+STANDSTILL_ONLY = {"tension_zero"}  # a load cell's zero, judged with the line stopped and the web slack
 SPEED_ONLY = {"slip", "idler_lag"}  # read only speeds: a negative speed is reverse running, not an error
 
 
@@ -304,6 +309,10 @@ def test_check_on_block_full_of_hostile_values(example_line, good_run, cid, kind
         # Sensor-health checks exist to flag such values: a non-finite value is a quality flag, not a gap.
         if check.kind == "tag_quality" and non_finite:
             assert res.valid.all() and (res.value == 1.0).all()
+        return
+    if check.kind in STANDSTILL_ONLY:  # judged only with the line stopped: a running block is gated whatever it holds
+        assert not good.valid.any() and not res.valid.any()
+        assert (res.reason == int(Reason.LINE_STATE)).all()
         return
     # Not vacuous: on good data the check does produce values (roll_diameter after its 300 m calibration).
     assert good.valid[-500:].any(), f"{cid} never produced a value on good running data"
@@ -389,3 +398,28 @@ def test_other_rules_pure_functions_any_float(x, a, lo, hi, stop, thread, acc):
     assert state.shape == (N_FUZZ,)
     assert (state[~np.isfinite(x)] == int(LineState.UNKNOWN)).all()
     assert np.all(np.isfinite(res.value[res.valid])) and np.all(np.isnan(res.value[~res.valid]))
+
+
+@pytest.mark.parametrize("kind", HOSTILE)
+def test_derived_checks_on_hostile_blocks(example_line, good_run, kind):
+    # The checks that read other checks' results (drift detectors, the roll caliper) run after them on the same
+    # block; fed hostile signals, their sources are invalid, and so are they: well formed, no value, no warning.
+    from spanwatch.rules.catalog import DERIVED_CLASSES
+
+    derived_kinds = {c.kind for c in DERIVED_CLASSES}
+    checks = build_checks(example_line)
+    assert derived_kinds <= {c.kind for c in checks}
+    t_good, good_block = good_run
+    t = t_good[-1] + (1 + np.arange(N_BAD)) / FS
+    block = make_block(example_line, t, {k: hostile_values(kind, v) for k, v in good_signals(example_line, t).items()})
+    for b, n in ((good_block, N_GOOD), (block, N_BAD)):
+        b.results = {}
+        with no_runtime_warning():
+            for c in checks:
+                b.results[(c.kind, c.object_id)] = c.update(b)
+        for c in checks:
+            if c.kind in derived_kinds:
+                assert_well_formed(b.results[(c.kind, c.object_id)], n)
+    for c in checks:
+        if c.kind in derived_kinds:
+            assert not block.results[(c.kind, c.object_id)].valid.any(), f"{c.kind}:{c.object_id}"
