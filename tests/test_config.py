@@ -97,7 +97,9 @@ def test_check_config_real_entry_point_happy_path():
     proc = subprocess.run([sys.executable, "-m", "spanwatch", "check-config", example],
                           capture_output=True, text=True, cwd=REPO, timeout=120)
     assert proc.returncode == 0, proc.stderr
-    assert proc.stdout.count("standstill") == len(load_line(REPO / "config" / "quillmere-q2.toml").driven_rollers)
+    # one capacity row at standstill per driven roller (the row starts "<roller>: wrap ...")
+    rows = [ln for ln in proc.stdout.splitlines() if "standstill" in ln and ": wrap " in ln]
+    assert len(rows) == len(load_line(REPO / "config" / "quillmere-q2.toml").driven_rollers)
 
 
 # --- broken configs ----------------------------------------------------------------------------
