@@ -27,7 +27,7 @@ from spanwatch.monitor.line import Line
 from spanwatch.monitor.signals import SignalDeriver
 from spanwatch.monitor.watermarks import Watermarks
 from spanwatch.rules.alarms import AlarmEngine, Transition
-from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason, Signal
+from spanwatch.rules.base import QUALITY_BAD, QUALITY_UNCERTAIN, Block, CheckResult, Reason, Signal, batches_of
 from spanwatch.rules.driftcheck import DriftCheck
 from spanwatch.rules.lifecycle import Action, Lifecycle, LifecycleEvent
 from spanwatch.rules.linestate import LineStateTracker, RollChangeDetector, apply_line_state
@@ -86,6 +86,7 @@ class Pipeline:
         self._source_cols = [(name, np.flatnonzero(self.source_col == self.source_names.index(name)))
                              for name in line.model.sources if name in self.source_names]
         self.checks = build_checks(line)
+        self.batches = batches_of(self.checks)  # each kind's objects evaluated together (catalog order kept)
         self.points = alarm_points(line, self.checks)
         self.engine = AlarmEngine(self.points, chatter_settings(line))
         # the lifecycle of every alarm point (acknowledge, shelve, suppression by design, out of service)
@@ -218,8 +219,8 @@ class Pipeline:
             before, after = self.aligner.gaps[-1]
             log.warning("no data from %s to %s (%.0f s): the gap is skipped and the checks start afresh",
                         iso(before), iso(after), after - before)
-            for c in self.checks:
-                c.reset()
+            for b in self.batches:
+                b.reset()
             self._new_trackers()
         t, frames = out
         signals = self.deriver.derive(frames)
@@ -256,8 +257,9 @@ class Pipeline:
         block.results = results
         if self._drift:
             self._hold_drift_learning()
-        for c in self.checks:
-            results[(c.kind, c.object_id)] = c.update(block)
+        for b in self.batches:
+            for c, r in zip(b.checks, b.update(block), strict=True):
+                results[(c.kind, c.object_id)] = r
         keys = list(results)
         reasons = np.stack([r.reason for r in results.values()])
         last_values = np.array([r.value[-1] for r in results.values()])

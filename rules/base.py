@@ -14,7 +14,7 @@ million frames never stops at one NaN, a zero speed or a negative tension.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from enum import IntEnum
 from typing import TYPE_CHECKING, ClassVar, Protocol, runtime_checkable
@@ -234,7 +234,9 @@ class CheckKind(Protocol):
     """What one registration in :mod:`spanwatch.rules.catalog` offers: a check class.
 
     ``for_line(line)`` yields a check object for every object of the line this kind applies to
-    (its parameters read from the :class:`~spanwatch.rules.linemodel.LineModel`).
+    (its parameters read from the :class:`~spanwatch.rules.linemodel.LineModel`). A kind may also
+    offer ``batch(checks) -> CheckBatch``: one evaluation of all its objects at once (see
+    :func:`batches_of`); without it, its objects are evaluated one by one.
     """
 
     kind: ClassVar[str]
@@ -242,6 +244,57 @@ class CheckKind(Protocol):
     defaults: ClassVar[AlarmDefaults]
 
     def for_line(self, line: LineModel) -> Iterable[Check]: ...
+
+
+class CheckBatch(Protocol):
+    """All the objects of one check kind, evaluated together: ``update(block)`` returns one result per check of
+    ``checks``, in that order, equal to what each check's own ``update`` would return; ``reset()`` resets them all.
+
+    The seam that lets a kind compute over a frames x objects matrix (tag checks over every tag, traction over
+    every driven roller, drift detectors as stacked charts) instead of paying Python's per-object overhead.
+    State stays with the check objects (or with the batch where it is stacked); a check's own ``update`` and
+    ``reset`` keep working, so a single object can still be tested on its own.
+    """
+
+    checks: Sequence[Check]
+
+    def update(self, block: Block) -> list[CheckResult]: ...
+
+    def reset(self) -> None: ...
+
+
+class OneByOne:
+    """The batch of a kind that offers none: each check's own ``update``, in order."""
+
+    def __init__(self, checks: Sequence[Check]) -> None:
+        self.checks = tuple(checks)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        return [c.update(block) for c in self.checks]
+
+    def reset(self) -> None:
+        for c in self.checks:
+            c.reset()
+
+
+def batches_of(checks: Sequence[Check]) -> list[CheckBatch]:
+    """The checks cut into runs of the same class (catalog order is kept), each run as its kind's batch.
+
+    A class with a ``batch`` class method builds its own (:class:`CheckBatch`); any other runs :class:`OneByOne`.
+    Results come out in the order of ``checks``, so a derived kind still finds its sources' results first.
+    """
+    out: list[CheckBatch] = []
+    i = 0
+    while i < len(checks):
+        cls = type(checks[i])
+        j = i
+        while j < len(checks) and type(checks[j]) is cls:
+            j += 1
+        run = checks[i:j]
+        make = getattr(cls, "batch", None)
+        out.append(make(run) if make is not None else OneByOne(run))
+        i = j
+    return out
 
 
 def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:

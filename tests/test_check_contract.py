@@ -9,6 +9,7 @@ the simulated line: it builds itself from the core line model, states its alarm 
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +18,7 @@ from spanwatch.monitor.line import load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.simline import SimulatedLine
 from spanwatch.monitor.simline.scenario import parse_scenario
-from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult
+from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult, batches_of
 from spanwatch.rules.catalog import CHECK_CLASSES, CHECK_KINDS, DERIVED_CLASSES, checks_for
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -129,3 +130,46 @@ def test_state_carries_across_blocks_where_a_check_keeps_any(line, blocks):
         if not (np.array_equal(a.reason, b.reason) and np.allclose(a.value, b.value, equal_nan=True)):
             carried.add(c.kind)
     assert {"draw", "roll_diameter", "length_rate", "runout"} <= carried
+
+
+def _one_by_one(checks, block: Block) -> dict:
+    results: dict = {}
+    b = replace(block, results=results)
+    for c in checks:
+        results[(c.kind, c.object_id)] = c.update(b)
+    return results
+
+
+def _together(batches, block: Block) -> dict:
+    results: dict = {}
+    b = replace(block, results=results)
+    for batch in batches:
+        for c, r in zip(batch.checks, batch.update(b), strict=True):
+            results[(c.kind, c.object_id)] = r
+    return results
+
+
+def _same_with_extras(a: CheckResult, b: CheckResult) -> None:
+    _same(a, b)
+    assert set(a.extras) == set(b.extras)
+    for name in a.extras:
+        np.testing.assert_allclose(np.asarray(b.extras[name], dtype=float), np.asarray(a.extras[name], dtype=float),
+                                   rtol=1e-12, atol=1e-12, equal_nan=True, err_msg=name)
+
+
+def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, blocks):
+    # The pipeline evaluates each kind's objects together (rules.base.batches_of); every result, extras included,
+    # must be what each check's own update gives, block after block (state carried), and after a reset.
+    one, together = checks_for(line.model), checks_for(line.model)
+    batches = batches_of(together)
+    assert [c for b in batches for c in b.checks] == together  # catalog order kept
+    for i, block in enumerate(blocks):
+        if i == len(blocks) // 2:
+            for c in one:
+                c.reset()
+            for b in batches:
+                b.reset()
+        a, b = _one_by_one(one, block), _together(batches, block)
+        assert list(a) == list(b)
+        for key in a:
+            _same_with_extras(a[key], b[key])
