@@ -34,12 +34,15 @@ import io
 import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from datetime import datetime
 from pathlib import Path
 from typing import IO
 
 import numpy as np
+from spanwatch.connectors.arrowcsv import block_columns
+from spanwatch.connectors.rectimes import parse_times, times_of
 from spanwatch.rules.samples import QUALITY_CODES, SampleBatch
+
+__all__ = ["HEADER", "ReadProblems", "RecordingError", "parse_times", "read_recording", "write_recording"]
 
 HEADER = ("time", "tag", "value", "quality")
 _QUALITY_WORDS = {**QUALITY_CODES, "0": 0, "1": 1, "2": 2, "": 0}
@@ -171,145 +174,6 @@ class _Bytes:
                 d = zlib.decompressobj(31)
 
 
-# --- times -----------------------------------------------------------------------------------------------------------
-
-_DIGITS = [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18]  # YYYY-MM-DDTHH:MM:SS
-
-
-_ISO_SLICE = 32_768  # rows per pass of the vectorised parser: bounds its temporary arrays (a few MB)
-
-
-def _iso_fast(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`_iso_slice` over slices of the column."""
-    if len(col) <= _ISO_SLICE:
-        return _iso_slice(col)
-    parts = [_iso_slice(col[i:i + _ISO_SLICE]) for i in range(0, len(col), _ISO_SLICE)]
-    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
-
-
-def _iso_slice(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """Vectorised ``YYYY-MM-DD[T ]HH:MM:SS[.f{1,6}](Z|+HH:MM|-HH:MM)``; (epoch seconds, ok).
-
-    Rows not of exactly this form are not ok (the caller parses them one by one with
-    Python's own parser). On this form the result equals ``datetime.fromisoformat(s).timestamp()``:
-    the same field ranges are checked, and the time is formed as whole microseconds
-    before one division, as ``timedelta.total_seconds`` does.
-    """
-    n = len(col)
-    t = np.full(n, np.nan)
-    ok_all = np.zeros(n, dtype=bool)
-    lens = np.fromiter(map(len, col), dtype=np.int64, count=n)
-    idx = np.flatnonzero((lens >= 20) & (lens <= 32))  # the shortest and the longest of the form
-    if not idx.size:
-        return t, ok_all
-    sub = col if idx.size == n else [col[i] for i in idx.tolist()]
-    try:
-        a = np.array(sub, dtype="S")
-    except UnicodeEncodeError:  # non-ASCII in some rows: those are for the slow path
-        keep = np.array([s.isascii() for s in sub], dtype=bool)
-        idx = idx[keep]
-        if not idx.size:
-            return t, ok_all
-        sub = [col[i] for i in idx.tolist()]
-        a = np.array(sub, dtype="S")
-    m, w = len(sub), a.dtype.itemsize
-    c = a.view(np.uint8).reshape(m, w)
-    length = np.char.str_len(a).astype(np.int64)
-    ok = (length == lens[idx]) & (length >= 20)  # numpy drops trailing NULs: such a row is not of the form
-    d = c.astype(np.int16) - 48
-    dig = (d >= 0) & (d <= 9)
-    ok &= (dig[:, _DIGITS].all(axis=1) & (c[:, 4] == 45) & (c[:, 7] == 45) & ((c[:, 10] == 84) | (c[:, 10] == 32))
-           & (c[:, 13] == 58) & (c[:, 16] == 58))
-    rows = np.arange(m)
-
-    def at(pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        p = np.clip(pos, 0, w - 1)
-        return c[rows, p], d[rows, p].astype(np.int64)
-
-    zulu = at(length - 1)[0] == 90
-    o = length - 6
-    sign_c, colon_c = at(o)[0], at(o + 3)[0]
-    oh1, oh2, om1, om2 = (at(o + k)[1] for k in (1, 2, 4, 5))
-    odig = ((oh1 >= 0) & (oh1 <= 9) & (oh2 >= 0) & (oh2 <= 9) & (om1 >= 0) & (om1 <= 9) & (om2 >= 0) & (om2 <= 9))
-    offset_ok = ((sign_c == 43) | (sign_c == 45)) & (colon_c == 58) & odig
-    stem = np.where(zulu, length - 1, np.where(offset_ok, length - 6, -1))
-    # fraction: a '.' at 19, then 1 to 6 digits up to the offset
-    fpos = np.arange(20, 26)
-    frac_d = np.zeros((m, 6), dtype=np.int64)
-    frac_dig = np.zeros((m, 6), dtype=bool)
-    k = max(0, min(w, 26) - 20)
-    frac_d[:, :k] = d[:, 20:20 + k]
-    frac_dig[:, :k] = dig[:, 20:20 + k]
-    need = fpos[None, :] < stem[:, None]
-    dot = c[:, 19] == 46
-    ok &= (stem == 19) | ((stem >= 21) & (stem <= 26) & dot & (~need | frac_dig).all(axis=1))
-    if not ok.any():
-        return t, ok_all
-    us = (np.where(need, frac_d, 0) * 10 ** (25 - fpos)).sum(axis=1)
-
-    def num(*cols: int) -> np.ndarray:
-        out = np.zeros(m, dtype=np.int64)
-        for j in cols:
-            out = out * 10 + d[:, j]
-        return out
-
-    year, month, day = num(0, 1, 2, 3), num(5, 6), num(8, 9)
-    hour, minute, second = num(11, 12), num(14, 15), num(17, 18)
-    off_h, off_m = oh1 * 10 + oh2, om1 * 10 + om2
-    off = np.where(zulu, 0, np.where(sign_c == 45, -1, 1) * (off_h * 3600 + off_m * 60))
-    ok &= ((year >= 1) & (month >= 1) & (month <= 12) & (day >= 1) & (hour <= 23) & (minute <= 59) & (second <= 59)
-           & (zulu | ((off_h <= 23) & (off_m <= 59))))
-    months = np.where(ok, (year - 1970) * 12 + month - 1, 0).astype("datetime64[M]")
-    day0 = months.astype("datetime64[D]").astype(np.int64)
-    in_month = (months + 1).astype("datetime64[D]").astype(np.int64) - day0
-    ok &= day <= in_month
-    seconds = (day0 + day - 1) * 86_400 + hour * 3600 + minute * 60 + second - off
-    t[idx[ok]] = (seconds[ok] * 1_000_000 + us[ok]) / 1e6
-    ok_all[idx[ok]] = True
-    return t, ok_all
-
-
-def _parse_one(text: str) -> tuple[float, bool]:
-    """One time by Python's own parsers: (epoch seconds, parsed)."""
-    text = text.strip()
-    try:
-        return float(text), True
-    except ValueError:
-        pass
-    try:
-        dt = datetime.fromisoformat(text)
-    except ValueError:
-        return np.nan, False
-    if dt.tzinfo is None or dt.utcoffset() is None:
-        return np.nan, False  # a time without an offset is ambiguous: refuse it
-    try:
-        return dt.timestamp(), True
-    except (OverflowError, ValueError, OSError):
-        return np.nan, False
-
-
-def _times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """(epoch seconds, parsed); parsed rows may still be NaN or infinite (``"nan"``, ``"inf"``)."""
-    n = len(col)
-    try:
-        return np.array(col, dtype=float), np.ones(n, dtype=bool)
-    except ValueError:
-        pass
-    t, ok = _iso_fast(col)
-    for i in np.flatnonzero(~ok).tolist():
-        t[i], ok[i] = _parse_one(col[i])
-    return t, ok
-
-
-def parse_times(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """Parse a column of times; returns (epoch seconds, ok mask). Vectorised on the common forms.
-
-    ok is False for a time that cannot be read, has no UTC offset, or is NaN or infinite.
-    """
-    t, parsed = _times(col)
-    return t, parsed & np.isfinite(t)
-
-
 def _parse_values(col: list[str]) -> tuple[np.ndarray, np.ndarray]:
     try:
         return np.array(col, dtype=float), np.ones(len(col), dtype=bool)
@@ -392,17 +256,26 @@ def _parse_rows(cols: list[list[str]], lines: np.ndarray, index: dict[str, int])
     n = len(cols[0])
     if n == 0:
         return _Rows.empty()
-    t, t_ok = _times(cols[0])
+    t, t_ok = times_of(cols[0])
     value, v_ok = _parse_values(cols[2])
     distinct, inv = _codes(cols[1])
-    names = [s.strip().strip('"') for s in distinct]
-    tag = np.array([index.get(s, -2 if s == "" else -1) for s in names], dtype=np.int32)[inv]
-    name = np.array(names, dtype=object)[inv]
-    if len(cols) > 3:
-        words, q_inv = _codes(cols[3])
-        quality = np.array([_QUALITY_WORDS.get(q.strip().lower(), -1) for q in words], dtype=np.int8)[q_inv]
+    words, q_inv = _codes(cols[3]) if len(cols) > 3 else ([], np.zeros(0, dtype=np.int64))
+    return _rows_of(lines, t, t_ok, value, v_ok, distinct, inv, words, q_inv, index)
+
+
+def _rows_of(lines: np.ndarray, t: np.ndarray, t_ok: np.ndarray, value: np.ndarray, v_ok: np.ndarray,
+             tag_texts: list[str], tag_index: np.ndarray, quality_words: list[str], quality_index: np.ndarray,
+             index: dict[str, int]) -> _Rows:
+    """Rows from their columns, the tags and quality words given as distinct texts and each row's index into them
+    (no quality words: every row good, a file without the quality column)."""
+    names = [s.strip().strip('"') for s in tag_texts]
+    tag = np.array([index.get(s, -2 if s == "" else -1) for s in names], dtype=np.int32)[tag_index]
+    name = np.array(names, dtype=object)[tag_index]
+    if quality_words:
+        codes = np.array([_QUALITY_WORDS.get(q.strip().lower(), -1) for q in quality_words], dtype=np.int8)
+        quality = codes[quality_index]
     else:
-        quality = np.zeros(n, dtype=np.int8)
+        quality = np.zeros(len(lines), dtype=np.int8)
     return _Rows(lines, t, t_ok, value, v_ok, tag, name, quality)
 
 
@@ -489,27 +362,30 @@ def _header(path: Path, first: bytes) -> int:
 
 def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows: int = 200_000,
                    problems: ReadProblems | None = None, with_position: bool = False,
-                   time_jump: float = TIME_JUMP) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
+                   time_jump: float = TIME_JUMP, fast: bool = True
+                   ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
     """Yield batches of samples from a recording, in file order (see the module docstring for what is counted).
 
     Rows for tags not in ``known_tags`` are counted under ``unknown tag: NAME`` (one
     example line per tag); ``ref`` of each sample is its line number in the file (header
     is line 1). Chunks are about ``chunk_rows`` rows. With ``with_position``, yields
     ``(batch, bytes of the file read so far)``. Raises :class:`RecordingError` only when
-    the file cannot be opened or has no readable header.
+    the file cannot be opened or has no readable header. ``fast`` False reads every block line by line
+    instead of by Arrow's CSV reader (the same result, slower: the tests compare the two).
     """
     path = Path(path)
     problems = problems if problems is not None else ReadProblems()
     index = {name: i for i, name in enumerate(known_tags)}
     src = _Bytes(path)
     try:
-        yield from _read(src, path, index, known_tags, max(64, chunk_rows * 48), problems, with_position, time_jump)
+        yield from _read(src, path, index, known_tags, max(64, chunk_rows * 48), problems, with_position, time_jump,
+                         fast)
     finally:
         src.close()
 
 
 def _read(src: _Bytes, path: Path, index: dict[str, int], known: tuple[str, ...], block: int,
-          problems: ReadProblems, with_position: bool, time_jump: float
+          problems: ReadProblems, with_position: bool, time_jump: float, fast: bool = True
           ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
     blocks = src.blocks(block)
     buf = b""
@@ -559,8 +435,8 @@ def _read(src: _Bytes, path: Path, index: dict[str, int], known: tuple[str, ...]
             part = b""
         else:
             part, buf = buf[: cut + 1], buf[cut + 1:]
-        batch = _chunk(part, line_no, width, index, judge, problems, final=done)
-        line_no += part.count(b"\n")
+        batch, lines = _chunk(part, line_no, width, index, judge, problems, final=done, fast=fast)
+        line_no += lines
         if done and src.damage is not None:
             problems.damaged(src.damage, line_no + 1)
         if len(batch) or part:
@@ -568,11 +444,18 @@ def _read(src: _Bytes, path: Path, index: dict[str, int], known: tuple[str, ...]
 
 
 def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: _Judge, problems: ReadProblems,
-           final: bool) -> SampleBatch:
-    """One block of whole lines (each ending in LF) -> the samples that are ready; problems counted."""
+           final: bool, fast: bool = True) -> tuple[SampleBatch, int]:
+    """One block of whole lines (each ending in LF) -> (the samples that are ready, the number of lines); problems
+    counted. Arrow's CSV reader takes the block where it can vouch for it (:mod:`spanwatch.connectors.arrowcsv`),
+    else it is read line by line."""
     n = part.count(b"\n")
     problems.rows += n
     nums = np.arange(line_no + 1, line_no + 1 + n, dtype=np.int64)
+    cols = block_columns(part, n, width) if fast and n else None
+    if cols is not None:
+        rows = _rows_of(nums, cols.t, cols.t_ok, cols.value, np.ones(n, dtype=bool), cols.tag_texts, cols.tag_index,
+                        cols.quality_words, cols.quality_index, index)
+        return judge.feed(rows, nums[:0], final), n
     try:
         text = part.decode("utf-8")
         not_utf8 = nums[:0]
@@ -586,9 +469,9 @@ def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: 
                 ok[i] = False
         text = "".join(s + "\n" for s in good)
         not_utf8, nums = nums[~ok], nums[ok]
-    cols, kept, bad_shape = _columns(text, nums, width)
-    rows = _parse_rows(cols, kept, index)
-    return judge.feed(rows, np.sort(np.concatenate([not_utf8, bad_shape])), final)
+    cols_, kept, bad_shape = _columns(text, nums, width)
+    rows = _parse_rows(cols_, kept, index)
+    return judge.feed(rows, np.sort(np.concatenate([not_utf8, bad_shape])), final), n
 
 
 def write_recording(path: str | Path, batches: Iterator[SampleBatch] | list[SampleBatch], *,
