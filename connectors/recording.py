@@ -38,8 +38,10 @@ from pathlib import Path
 from typing import IO
 
 import numpy as np
+import pyarrow as pa
+from spanwatch.connectors import parquetrec
 from spanwatch.connectors.arrowcsv import block_columns
-from spanwatch.connectors.rectimes import parse_times, times_of
+from spanwatch.connectors.rectimes import arrow_times, parse_times, times_of
 from spanwatch.rules.samples import QUALITY_CODES, SampleBatch
 
 __all__ = ["HEADER", "ReadProblems", "RecordingError", "parse_times", "read_recording", "write_recording"]
@@ -219,7 +221,7 @@ class _Rows:
     def __len__(self) -> int:
         return len(self.line)
 
-    def take(self, sel: np.ndarray) -> _Rows:
+    def take(self, sel: np.ndarray | slice) -> _Rows:
         return _Rows(self.line[sel], self.t[sel], self.t_ok[sel], self.value[sel], self.v_ok[sel], self.tag[sel],
                      self.name[sel], self.quality[sel])
 
@@ -314,9 +316,9 @@ class _Judge:
             self.left = tc[-2] if ci.size > 1 else self.left
         bad_time = ~good_t
         bad_time[ci[glitch]] = True
-        now = rows.line < cut
-        self.rows, self.malformed = rows.take(~now), malformed[malformed >= cut]
-        rows, bad_time, malformed = rows.take(now), bad_time[now], malformed[malformed < cut]
+        k = int(np.searchsorted(rows.line, cut))  # rows are in line order: the rows before the cut are a prefix
+        self.rows, self.malformed = rows.take(slice(k, None)), malformed[malformed >= cut]
+        rows, bad_time, malformed = rows.take(slice(0, k)), bad_time[:k], malformed[malformed < cut]
         return self._judge(rows, bad_time, malformed)
 
     def _judge(self, rows: _Rows, bad_time: np.ndarray, malformed: np.ndarray) -> SampleBatch:
@@ -376,6 +378,9 @@ def read_recording(path: str | Path, known_tags: tuple[str, ...], *, chunk_rows:
     path = Path(path)
     problems = problems if problems is not None else ReadProblems()
     index = {name: i for i, name in enumerate(known_tags)}
+    if is_parquet(path):
+        yield from _read_parquet(path, index, known_tags, problems, with_position, time_jump, chunk_rows)
+        return
     src = _Bytes(path)
     try:
         yield from _read(src, path, index, known_tags, max(64, chunk_rows * 48), problems, with_position, time_jump,
@@ -443,6 +448,61 @@ def _read(src: _Bytes, path: Path, index: dict[str, int], known: tuple[str, ...]
             yield (batch, src.tell()) if with_position else batch
 
 
+def is_parquet(path: Path) -> bool:
+    """Whether a recording is read as Parquet: by its name (``.parquet``)."""
+    return path.suffix.lower() == ".parquet"
+
+
+def _read_parquet(path: Path, index: dict[str, int], known: tuple[str, ...], problems: ReadProblems,
+                  with_position: bool, time_jump: float, chunk_rows: int
+                  ) -> Iterator[SampleBatch] | Iterator[tuple[SampleBatch, int]]:
+    """A Parquet recording, row groups a few at a time, judged as the CSV rows are; ``ref`` is the row number
+    (the first row is 1). A row group that cannot be read is counted (its rows) and skipped."""
+    try:
+        pf = parquetrec.open_parquet(path)
+    except OSError as exc:
+        raise RecordingError(f"{path}: cannot read the recording ({exc.strerror or exc})") from None
+    except ValueError as exc:
+        raise RecordingError(f"{path}: {exc}") from None
+    problem = parquetrec.column_problem(pf.schema_arrow)
+    if problem is not None:
+        raise RecordingError(f"{path}: column {problem[0]}: expected {problem[1]}")
+    columns = [c for c in HEADER if c in pf.schema_arrow.names]
+    problems.header = True
+    judge = _Judge(known, problems, time_jump)
+    position = 0
+    for part in parquetrec.parts(pf, columns, max(1, chunk_rows)):
+        problems.rows += part.rows
+        position = part.position
+        if part.table is None:
+            reason = f"damaged file: unreadable row group ({part.error})"
+            problems.add(reason, [part.first_row])
+            problems.counts[reason] += part.rows - 1
+            problems.damage = problems.damage or reason
+            continue
+        rows = _parquet_rows(part.table, part.first_row, index)
+        batch = judge.feed(rows, np.zeros(0, np.int64), final=False)
+        if len(batch):
+            yield (batch, position) if with_position else batch
+    batch = judge.feed(_Rows.empty(), np.zeros(0, np.int64), final=True)
+    if len(batch):
+        yield (batch, position) if with_position else batch
+
+
+def _parquet_rows(table: pa.Table, first_row: int, index: dict[str, int]) -> _Rows:
+    n = table.num_rows
+    lines = np.arange(first_row, first_row + n, dtype=np.int64)
+    got = parquetrec.times(table.column("time"))
+    t, t_ok = arrow_times(got) if not isinstance(got, tuple) else got
+    value, v_ok = parquetrec.values(table.column("value"))
+    tag_texts, tag_index = parquetrec.texts(table.column("tag"))
+    if "quality" in table.column_names:
+        words, q_index = parquetrec.texts(table.column("quality"))
+    else:
+        words, q_index = [], np.zeros(0, dtype=np.int64)
+    return _rows_of(lines, t, t_ok, value, v_ok, tag_texts, tag_index, words, q_index, index)
+
+
 def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: _Judge, problems: ReadProblems,
            final: bool, fast: bool = True) -> tuple[SampleBatch, int]:
     """One block of whole lines (each ending in LF) -> (the samples that are ready, the number of lines); problems
@@ -476,8 +536,12 @@ def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: 
 
 def write_recording(path: str | Path, batches: Iterator[SampleBatch] | list[SampleBatch], *,
                     time_format: str = "iso") -> int:
-    """Write batches as a long-form CSV (gzip if the name ends in .gz); returns the number of rows."""
+    """Write batches as a long-form CSV (gzip if the name ends in .gz) or, for a name ending in ``.parquet``, as a
+    Parquet recording (:mod:`spanwatch.connectors.parquetrec`; ``time_format`` does not apply); returns the number
+    of rows."""
     path = Path(path)
+    if is_parquet(path):
+        return parquetrec.write_parquet(path, batches)
     rows = 0
     quality_names = np.array(["good", "uncertain", "bad"])
     fh, raw = _open_text(path, "w")

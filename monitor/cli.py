@@ -254,8 +254,10 @@ def _print_design_margins(line: Line) -> None:
 @app.command("simulate")
 def simulate_cmd(
     scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML): speed profile, roll changes, faults.")],
-    out: Annotated[Path | None, typer.Option("--out", "-o", help="Recording to write (.csv or .csv.gz).")] = None,
-    time_format: Annotated[str, typer.Option(help="Time column: 'iso' (ISO 8601, UTC) or 'epoch' seconds.")] = "iso",
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Recording to write: .csv, .csv.gz or .parquet.")]
+    = None,
+    time_format: Annotated[str, typer.Option(help="CSV time column: 'iso' (ISO 8601, UTC) or 'epoch' seconds.")]
+    = "iso",
     progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
     serve_opcua: Annotated[str | None, typer.Option(help="Serve the line live as an OPC UA server at this "
                                                           "endpoint, e.g. opc.tcp://127.0.0.1:4840.")] = None,
@@ -417,7 +419,8 @@ def _history_url(db: str | None, db_password: str | None, line: Line | None = No
 
 @app.command("replay")
 def replay_cmd(
-    recording: Annotated[Path, typer.Argument(help="Recording (CSV long form: time,tag,value,quality; .gz ok).")],
+    recording: Annotated[Path, typer.Argument(help="Recording: CSV long form (time,tag,value,quality; .gz ok) "
+                                                   "or .parquet.")],
     config: Annotated[Path, typer.Option("--config", "-c", help="Line configuration (TOML).")],
     db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
     db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
@@ -432,7 +435,7 @@ def replay_cmd(
     if not recording.exists():
         fail(f"{recording}: no such recording")
     if recording.is_dir():
-        fail(f"{recording}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok)")
+        fail(f"{recording}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok; or .parquet)")
     url, shown = _history_url(db, db_password)
     bar = Progress(TextColumn("replay"), BarColumn(), TransferSpeedColumn(), TimeRemainingColumn(),
                    console=err_console, disable=not progress)
@@ -453,9 +456,10 @@ def replay_cmd(
         console.print("alarms raised: " + ", ".join(f"{k} {n}" for k, n in sorted(summary.raised.items())))
     else:
         console.print("alarms raised: none")
+    where = "rows" if recording.suffix.lower() == ".parquet" else "lines"  # a Parquet file has rows, no lines
     for r in summary.input_rows:
         refs = ", ".join(str(x) for x in r["refs"][:10])  # type: ignore[index]
-        console.print(f"input: {r['tag']}: {r['count']} x {r['reason']}" + (f" (lines {refs})" if refs else ""),
+        console.print(f"input: {r['tag']}: {r['count']} x {r['reason']}" + (f" ({where} {refs})" if refs else ""),
                       highlight=False)
 
 

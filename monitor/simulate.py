@@ -32,7 +32,7 @@ def _listen_problem(exc: OSError, host: str, port: int) -> str:
 
 def truth_path_for(out: Path) -> Path:
     name = out.name
-    for suffix in (".csv.gz", ".csv", ".gz"):
+    for suffix in (".csv.gz", ".csv", ".gz", ".parquet"):
         if name.endswith(suffix):
             name = name[: -len(suffix)]
             break
