@@ -197,14 +197,19 @@ class AlarmEngine:
         if t.shape[0] == 0:
             return out
         busy = {g: sum(self.state[p.key].active for p in pts) for g, pts in self.first_out_groups.items()}
+        worst = _worst(self.groups, results)
         for key, pts in self.groups.items():
             res = results.get(key)
             if res is None:
                 continue
+            w = worst[key]
+            engaged = [p for p in pts if self._engaged(p, w)]
+            if not engaged:
+                continue  # quiet: nothing pending, nothing standing, no valid frame beyond a limit
             valid = res.reason == _OK
             gated = res.reason == _LINE_STATE
             sev: dict[str, np.ndarray] = {}
-            for p in pts:
+            for p in engaged:
                 x = sev.get(p.direction)
                 if x is None:
                     x = sev[p.direction] = severity(res.value, p.direction)
@@ -213,6 +218,20 @@ class AlarmEngine:
         if busy and out:
             out = _first_out(out, busy)
         return out
+
+    def _engaged(self, p: AlarmPoint, worst: tuple[float, float, float]) -> bool:
+        """Whether ``p`` needs its frame-by-frame evaluation this block: its condition is pending or it stands, or
+        its most abnormal valid value (``worst``: the largest, the smallest and the largest magnitude) reaches its
+        limit. A quiet point (most of them, most of the time) costs nothing more."""
+        st = self.state[p.key]
+        if st.active or st.cond:
+            return True
+        hi, lo, ab = worst
+        if p.direction == "high":
+            return hi >= p.limit
+        if p.direction == "low":
+            return lo <= p.limit
+        return ab >= p.limit
 
     def _point(self, p: AlarmPoint, t: np.ndarray, res: CheckResult, x: np.ndarray, valid: np.ndarray,
                gated: np.ndarray, line_state: np.ndarray) -> list[Transition]:
@@ -349,6 +368,22 @@ def _first_out(trs: list[Transition], busy: dict[str, int]) -> list[Transition]:
             out.append(tr)
         i = j
     return out
+
+
+def _worst(groups: dict[tuple[str, str], list[AlarmPoint]], results: dict[tuple[str, str], CheckResult]
+           ) -> dict[tuple[str, str], tuple[float, float, float]]:
+    """Per check result of ``groups``: the largest, the smallest and the largest magnitude of its valid values
+    over the block (-inf, inf, -inf when it has none), over a (results x frames) matrix in two reductions."""
+    keys = [k for k in groups if k in results]
+    if not keys:
+        return {}
+    res = [results[k] for k in keys]
+    v = np.stack([r.value for r in res])
+    ok = np.stack([r.reason for r in res]) == _OK
+    hi = np.fmax.reduce(np.where(ok, v, -np.inf), axis=1)  # fmax: a NaN on a valid frame is passed over
+    lo = np.fmin.reduce(np.where(ok, v, np.inf), axis=1)
+    ab = np.fmax(hi, -lo)
+    return dict(zip(keys, zip(hi.tolist(), lo.tolist(), ab.tolist(), strict=True), strict=True))
 
 
 def severity(value: np.ndarray, direction: str) -> np.ndarray:

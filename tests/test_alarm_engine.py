@@ -607,3 +607,42 @@ def test_chattering_reported_without_the_remedy():
 def test_latched_and_groups_default_off():
     p = point()
     assert p.latched is False and p.groups == ()
+
+
+class _EveryPoint(AlarmEngine):
+    """The engine without its quiet pre-check: every point evaluated frame by frame in every block."""
+
+    def _engaged(self, p, worst):
+        return True
+
+
+@settings(max_examples=150, deadline=None)
+@given(data=st.data())
+def test_the_quiet_pre_check_over_all_points_changes_no_transition(data):
+    # The engine skips, per block, every point that is neither pending nor standing and has no valid value beyond
+    # its limit (one matrix reduction over all points). Over random values, invalid frames (NaN too), directions,
+    # deadbands and delays, it gives exactly the transitions of an engine that evaluates every point.
+    k = data.draw(st.integers(1, 4))
+    n = data.draw(st.integers(5, 80))
+    points, results = [], {}
+    for i in range(k):
+        direction = data.draw(st.sampled_from(["high", "low", "abs"]))
+        limit = data.draw(st.sampled_from([-1.0, 0.5, 1.0, 2.0]))
+        deadband = data.draw(st.sampled_from([0.0, 0.2]))
+        for level, lim in (("warning", limit - 0.3 if direction != "low" else limit + 0.3), ("alarm", limit)):
+            points.append(point(kind="traction", object_id=f"r{i}", level=level, limit=lim, direction=direction,
+                                deadband=deadband, on_delay=data.draw(st.sampled_from([0.0, 0.3])),
+                                off_delay=data.draw(st.sampled_from([0.0, 0.5]))))
+        values = data.draw(st.lists(st.sampled_from([-3.0, -1.5, -1.0, -0.2, 0.0, 0.5, 0.9, 1.0, 1.2, 2.5, np.nan]),
+                                    min_size=n, max_size=n))
+        reasons = data.draw(st.lists(st.sampled_from([0, 0, 0, 1, 2]), min_size=n, max_size=n))
+        v = np.asarray(values, dtype=float)
+        results[("traction", f"r{i}")] = CheckResult(value=v, reason=np.asarray(reasons, dtype=np.int8))
+    t = times(n)
+    ls = np.full(n, RUNNING, dtype=np.int8)
+    fast, every = AlarmEngine(points), _EveryPoint(points)
+    cuts = sorted(set(data.draw(st.lists(st.integers(1, n - 1), max_size=4))))
+    for a, b in itertools.pairwise([0, *cuts, n]):
+        part = {key: CheckResult(value=r.value[a:b], reason=r.reason[a:b]) for key, r in results.items()}
+        got, want = fast.evaluate(t[a:b], part, ls[a:b]), every.evaluate(t[a:b], part, ls[a:b])
+        assert [(tr.key, tr.event, tr.t) for tr in got] == [(tr.key, tr.event, tr.t) for tr in want]
