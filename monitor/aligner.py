@@ -136,9 +136,9 @@ class Aligner:
         frames = np.arange(self.next_frame, last + 1) / self.rate
         k = len(self.names)
         n = frames.shape[0]
-        value = np.empty((n, k))
-        quality = np.empty((n, k), dtype=np.int8)
-        age = np.empty((n, k))
+        value = np.empty((k, n)).T  # column-major: each tag's frames contiguous (written and read by tag)
+        quality = np.empty((k, n), dtype=np.int8).T
+        age = np.empty((k, n)).T
         t_end = frames[-1]
         for c in range(k):
             pend = self._pend[c]

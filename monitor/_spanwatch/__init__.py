@@ -14,3 +14,10 @@ The example line files and scenarios ship as ``spanwatch.examples`` (folder ``co
 """
 
 __version__ = "0.2.0"
+
+import os as _os
+
+# Apache Arrow (recordings) allocates through the C library's malloc unless the user chose otherwise: its default
+# allocator reserves a 1 GiB arena of address space up front, which a process run under an address-space limit
+# (ulimit -v, RLIMIT_AS) cannot afford, for no measurable gain in reading recordings (docs/benchmarks.md).
+_os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
