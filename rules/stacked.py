@@ -1,0 +1,82 @@
+"""Helpers for a check kind that evaluates all its objects at once (see :class:`spanwatch.rules.base.CheckBatch`).
+
+A stacked kind computes on an objects x frames matrix: one row per check object, one column per
+frame of the block, so that each row is contiguous and becomes that object's result without a
+copy. Per-object parameters are column vectors of shape ``(k, 1)`` that broadcast over the frames.
+Every function here is the row-wise twin of a one-object helper in :mod:`spanwatch.rules.base` or
+:mod:`spanwatch.rules.windows` and gives, row by row, exactly what that helper gives for one object
+(the same elementwise operations in the same order), so a kind's batch and its objects' own
+``update`` agree to the bit.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+
+import numpy as np
+from spanwatch.rules.base import Block, CheckResult, Reason, Signal
+
+_OK = int(Reason.OK)
+_OUT_OF_DOMAIN = int(Reason.OUT_OF_DOMAIN)
+
+
+def column(values: Iterable[float]) -> np.ndarray:
+    """Per-object parameters as a float column vector ``(k, 1)`` that broadcasts over frames."""
+    return np.array(list(values), dtype=float).reshape(-1, 1)
+
+
+def forward_fill_rows(mask: np.ndarray) -> np.ndarray:
+    """Per row, for each frame the index of the last True at or before it (-1 if none).
+
+    The row-wise :func:`spanwatch.rules.windows.forward_fill_index`.
+    """
+    idx = np.where(mask, np.arange(mask.shape[-1]), -1)
+    return np.maximum.accumulate(idx, axis=-1) if idx.size else idx
+
+
+def signal_rows(block: Block, names: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+    """The signals ``names`` of a block stacked as (value, ok) matrices of shape ``(len(names), n)``.
+
+    A signal the block lacks reads as :meth:`Signal.missing` (NaN, not ok), as :meth:`Block.signal` gives it.
+    """
+    n = block.n
+    value = np.empty((len(names), n))
+    ok = np.empty((len(names), n), dtype=bool)
+    missing = Signal.missing(n)
+    for i, name in enumerate(names):
+        s = block.signals.get(name, missing)
+        value[i] = s.value
+        ok[i] = s.ok
+    return value, ok
+
+
+def finalise_rows(value: np.ndarray, reason: np.ndarray, **extras: np.ndarray) -> list[CheckResult]:
+    """The row-wise :func:`spanwatch.rules.base.finalise`: one result per row of ``value`` (objects x frames).
+
+    Non-finite values on valid frames become OUT_OF_DOMAIN, invalid frames are blanked; each extra is a matrix
+    of the same shape (or a row vector ``(1, n)`` shared by every object) whose row goes with the object.
+    """
+    value = np.asarray(value, dtype=float)
+    ok = reason == _OK
+    bad = ok & ~np.isfinite(value)
+    if bad.any():
+        reason = reason.copy()
+        reason[bad] = _OUT_OF_DOMAIN
+        ok &= ~bad
+    value = np.where(ok, value, np.nan)
+    k = value.shape[0]
+    rows = {name: (e if e.shape[0] == k else np.broadcast_to(e, value.shape)) for name, e in extras.items()}
+    return [CheckResult(value=value[i], reason=reason[i], extras={name: e[i] for name, e in rows.items()})
+            for i in range(k)]
+
+
+def combine_rows(*pairs: tuple[np.ndarray, Reason], shape: tuple[int, int]) -> np.ndarray:
+    """The row-wise :func:`spanwatch.rules.base.combine_reasons`: first failing condition wins, per object and
+    frame. A mask may be ``(n,)`` (the same frames fail for every object) or ``(k, n)``."""
+    reason = np.zeros(shape, dtype=np.int8)
+    unset = np.ones(shape, dtype=bool)
+    for failing, why in pairs:
+        hit = failing & unset
+        reason[hit] = int(why)
+        unset &= ~hit
+    return reason
