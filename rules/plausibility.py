@@ -27,7 +27,14 @@ from spanwatch.rules.base import (
     TagFrames,
 )
 from spanwatch.rules.linemodel import LineModel
-from spanwatch.rules.stacked import column, combine_rows, finalise_rows, forward_fill_rows
+from spanwatch.rules.stacked import (
+    Stacked,
+    StackedBatch,
+    column,
+    combine_rows,
+    finalise_rows,
+    forward_fill_rows,
+)
 
 
 def _flag(unit: str, priority: str, on: float, off: float, cause: str, consequence: str, action: str
@@ -62,48 +69,31 @@ def out_of_range(value: np.ndarray, low: float, high: float) -> np.ndarray:
         return ~((value >= low) & (value <= high) & np.isfinite(value))
 
 
-class _TagCheck:
+class _TagCheck(Stacked):
     """One plausibility check of one tag; its ``update`` is its kind's batch (:class:`_TagBatch`) of one."""
 
     rests_on: ClassVar[str] = "the configured range, sample period and stale limit describe the sensor"
-    _batch: ClassVar[type[_TagBatch]]
 
     def __init__(self, object_id: str, *, source: str | None = None) -> None:
         self.object_id = object_id
         self.source = source  # while its source is lost, the source's own alarm speaks for the tag
         self.inputs: tuple[str, ...] = ()
-        self._alone: _TagBatch | None = None
-
-    @classmethod
-    def batch(cls, checks: Sequence[_TagCheck]) -> _TagBatch:
-        """All the checks of this kind, evaluated on the tags x frames matrices of a block."""
-        return cls._batch(checks)
-
-    def update(self, block: Block) -> CheckResult:
-        if self._alone is None:
-            self._alone = self._batch((self,), alone=True)
-        return self._alone.update(block)[0]
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
 
 
-class _TagBatch:
+class _TagBatch(StackedBatch):
     """The checks of one tag kind over the tags x frames matrices of a block (one row per check).
 
     Each check reads its tag's column of ``block.tags``; a check whose tag's source was silent (the
     ``source_quiet/<source>`` signal, seconds since the source was last silent, at most ``within``) is
-    INPUT_BAD there: the source's own alarm speaks for the tag. ``alone``: the batch of one a check's own
-    ``update`` runs (it keeps its state where the check keeps it).
+    INPUT_BAD there: the source's own alarm speaks for the tag.
     """
 
     def __init__(self, checks: Sequence[_TagCheck], *, alone: bool = False) -> None:
-        self.checks = tuple(checks)
-        self.alone = alone
+        super().__init__(checks, alone=alone)
         self._names: tuple[str, ...] | None = None
         self._cols = np.zeros(0, dtype=np.intp)
         groups: dict[str, list[int]] = {}
-        for i, c in enumerate(self.checks):
+        for i, c in enumerate(checks):
             if c.source is not None:
                 groups.setdefault(c.source, []).append(i)
         self._sources = [(f"source_quiet/{s}", np.array(rows, dtype=np.intp)) for s, rows in groups.items()]
@@ -127,12 +117,6 @@ class _TagBatch:
             with np.errstate(invalid="ignore"):
                 lost[rows] = quiet.value <= limit
         return lost
-
-    def update(self, block: Block) -> list[CheckResult]:
-        raise NotImplementedError
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
 
 
 class _RangeBatch(_TagBatch):
@@ -227,65 +211,36 @@ class TagStaleCheck(_TagCheck):
             yield cls(t.name, stale_after=t.stale_after, source=t.source)
 
 
-class _FrozenState:
-    """What frozen checks carry from one block to the next, one slot per check: the last value, and when it last
-    changed (epoch s; NaN: not known)."""
-
-    def __init__(self, k: int) -> None:
-        self.last_v = np.full(k, np.nan)
-        self.last_change_t = np.full(k, np.nan)
-
-
 class _FrozenBatch(_TagBatch):
-    """Frozen checks over the tags x frames matrix; their state is one :class:`_FrozenState` of the batch.
+    """Frozen checks over the tags x frames matrix; each carries its last value and when it last changed (epoch s;
+    NaN: not known)."""
 
-    Made for a kind's objects, the batch takes over their state (each check then keeps a slot of the batch's
-    state, so its own ``update`` and ``reset`` still act on it); the batch of one a check runs alone uses the
-    check's slot where it is.
-    """
+    carries: ClassVar[dict[str, float | bool]] = {"last_v": np.nan, "last_change_t": np.nan}
 
     def __init__(self, checks: Sequence[TagFrozenCheck], *, alone: bool = False) -> None:
         super().__init__(checks, alone=alone)
         self.frozen_after = column(c.frozen_after for c in checks)
         self.tol = column(c.tol for c in checks)
-        if not alone:
-            self.state = _FrozenState(len(checks))
-            for i, c in enumerate(checks):
-                self.state.last_v[i] = c._state.last_v[c._slot]
-                self.state.last_change_t[i] = c._state.last_change_t[c._slot]
-                c._state, c._slot = self.state, i
-
-    def _where(self) -> tuple[_FrozenState, slice]:
-        if self.alone:
-            c = self.checks[0]
-            assert isinstance(c, TagFrozenCheck)
-            return c._state, slice(c._slot, c._slot + 1)
-        return self.state, slice(None)
-
-    def reset(self) -> None:
-        """Forget the last values and when they last changed."""
-        state, rows = self._where()
-        state.last_v[rows] = np.nan
-        state.last_change_t[rows] = np.nan
 
     def update(self, block: Block) -> list[CheckResult]:
         v, q = self._rows(block.tags.value, block.tags), self._rows(block.tags.quality, block.tags)
-        state, rows = self._where()
+        slots, rows = self.where()
+        last_v, last_change_t = slots.a["last_v"], slots.a["last_change_t"]
         t = block.t
-        prev = np.concatenate([state.last_v[rows, None], v[:, :-1]], axis=1)
+        prev = np.concatenate([last_v[rows, None], v[:, :-1]], axis=1)
         with np.errstate(invalid="ignore"):
             changed = np.abs(v - prev) > self.tol
         moving = block.in_states(MOVING_STATES)
         none = q == QUALITY_NONE
         changed |= ~moving | ~np.isfinite(prev) | ~np.isfinite(v) | none
         idx = forward_fill_rows(changed)
-        t_change = np.where(idx >= 0, t[np.maximum(idx, 0)], state.last_change_t[rows, None])
+        t_change = np.where(idx >= 0, t[np.maximum(idx, 0)], last_change_t[rows, None])
         t_change = np.where(np.isnan(t_change), t, t_change)
         still = t - t_change
         flag = still >= self.frozen_after
         if block.n:
-            state.last_v[rows] = v[:, -1]
-            state.last_change_t[rows] = t_change[:, -1]
+            last_v[rows] = v[:, -1]
+            last_change_t[rows] = t_change[:, -1]
         reason = combine_rows(
             (~moving, Reason.LINE_STATE),
             (self._source_lost(block, self.frozen_after) | none, Reason.INPUT_BAD),
@@ -308,7 +263,7 @@ class TagFrozenCheck(_TagCheck):
     def __init__(self, object_id: str, *, frozen_after: float, tolerance: float, source: str | None = None) -> None:
         super().__init__(object_id, source=source)
         self.frozen_after, self.tol = frozen_after, tolerance
-        self._state, self._slot = _FrozenState(1), 0
+        self._init_slots()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[TagFrozenCheck]:
@@ -316,8 +271,3 @@ class TagFrozenCheck(_TagCheck):
         for t in line.tags.values():
             if t.frozen_after is not None:
                 yield cls(t.name, frozen_after=t.frozen_after, tolerance=t.frozen_tolerance, source=t.source)
-
-    def reset(self) -> None:
-        """Forget the last value and when it last changed."""
-        self._state.last_v[self._slot] = np.nan
-        self._state.last_change_t[self._slot] = np.nan

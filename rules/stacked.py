@@ -11,7 +11,8 @@ Every function here is the row-wise twin of a one-object helper in :mod:`spanwat
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any, ClassVar
 
 import numpy as np
 from spanwatch.rules.base import Block, CheckResult, Reason, Signal
@@ -80,3 +81,85 @@ def combine_rows(*pairs: tuple[np.ndarray, Reason], shape: tuple[int, int]) -> n
         reason[hit] = int(why)
         unset &= ~hit
     return reason
+
+
+class Slots:
+    """What the checks of a stacked kind carry from one block to the next: one array per quantity, one slot per
+    check. ``initial`` gives each quantity's fresh value (its dtype follows: bool or float)."""
+
+    def __init__(self, k: int, initial: Mapping[str, float | bool]) -> None:
+        self.initial = dict(initial)
+        self.a = {name: np.full(k, v, dtype=bool if isinstance(v, bool) else float) for name, v in initial.items()}
+
+    def reset(self, rows: slice) -> None:
+        """Return the slots ``rows`` to their fresh values."""
+        for name, v in self.initial.items():
+            self.a[name][rows] = v
+
+
+class StackedBatch:
+    """The base of a stacked kind's batch: ``checks`` in order, evaluated together by ``update``.
+
+    A batch made for a kind's objects (``alone`` False) takes over their carried state (:class:`Slots`): each
+    check then keeps a slot of the batch's slots, so its own ``update`` and ``reset`` still act on the same
+    state; the batch of one a check runs alone (``alone`` True) uses that check's slot wherever it is. The kind
+    names its carried quantities and their fresh values in ``carries`` (empty: nothing carried).
+    """
+
+    carries: ClassVar[Mapping[str, float | bool]] = {}
+
+    def __init__(self, checks: Sequence[Any], *, alone: bool = False) -> None:
+        self.checks = tuple(checks)
+        self.alone = alone
+        self.slots: Slots | None = None
+        if self.carries and not alone:
+            self.slots = Slots(len(self.checks), self.carries)
+            for i, c in enumerate(self.checks):
+                for name, arr in self.slots.a.items():
+                    arr[i] = c._slots.a[name][c._slot]
+                c._slots, c._slot = self.slots, i
+
+    def where(self) -> tuple[Slots, slice]:
+        """The slots this batch's state lives in and its rows there."""
+        if self.alone:
+            c = self.checks[0]
+            return c._slots, slice(c._slot, c._slot + 1)
+        assert self.slots is not None
+        return self.slots, slice(None)
+
+    def reset(self) -> None:
+        """Forget what the checks carry from one block to the next."""
+        if self.carries:
+            slots, rows = self.where()
+            slots.reset(rows)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        raise NotImplementedError
+
+
+class Stacked:
+    """Mixin of a check class whose kind is evaluated stacked: ``batch`` builds its :class:`StackedBatch`
+    (the class attribute ``_batch``), and the check's own ``update`` is that batch of one, so one
+    implementation serves both."""
+
+    _batch: ClassVar[type[StackedBatch]]
+
+    def _init_slots(self) -> None:
+        """Fresh carried state of a check on its own (call from ``__init__`` when the kind carries any)."""
+        self._slots, self._slot = Slots(1, self._batch.carries), 0
+
+    @classmethod
+    def batch(cls, checks: Sequence[Any]) -> StackedBatch:
+        """All the checks of this kind, evaluated together."""
+        return cls._batch(checks)
+
+    def update(self, block: Block) -> CheckResult:
+        alone = self.__dict__.get("_alone")
+        if alone is None:
+            alone = self._alone = self._batch((self,), alone=True)
+        return alone.update(block)[0]
+
+    def reset(self) -> None:
+        """Forget what this check carries from one block to the next (nothing, for a kind that carries nothing)."""
+        if self._batch.carries:
+            self._slots.reset(slice(self._slot, self._slot + 1))
