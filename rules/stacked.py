@@ -83,18 +83,26 @@ def combine_rows(*pairs: tuple[np.ndarray, Reason], shape: tuple[int, int]) -> n
     return reason
 
 
-class Slots:
-    """What the checks of a stacked kind carry from one block to the next: one array per quantity, one slot per
-    check. ``initial`` gives each quantity's fresh value (its dtype follows: bool or float)."""
+Carried = float | bool | int
 
-    def __init__(self, k: int, initial: Mapping[str, float | bool]) -> None:
-        self.initial = dict(initial)
-        self.a = {name: np.full(k, v, dtype=bool if isinstance(v, bool) else float) for name, v in initial.items()}
+
+class Slots:
+    """What the checks of a stacked kind carry from one block to the next: one array per quantity, one slot (a
+    row) per check. ``spec`` gives each quantity's fresh value (its dtype follows: bool, int or float) and the
+    shape of one check's share (``()`` for one number, ``(w,)`` for a window's tail)."""
+
+    def __init__(self, k: int, spec: Mapping[str, tuple[Carried, tuple[int, ...]]]) -> None:
+        self.spec = dict(spec)
+        self.a = {name: np.full((k, *shape), v, dtype=_dtype(v)) for name, (v, shape) in self.spec.items()}
 
     def reset(self, rows: slice) -> None:
         """Return the slots ``rows`` to their fresh values."""
-        for name, v in self.initial.items():
+        for name, (v, _) in self.spec.items():
             self.a[name][rows] = v
+
+
+def _dtype(v: Carried) -> type:
+    return bool if isinstance(v, bool) else int if isinstance(v, int) else float
 
 
 class StackedBatch:
@@ -103,21 +111,29 @@ class StackedBatch:
     A batch made for a kind's objects (``alone`` False) takes over their carried state (:class:`Slots`): each
     check then keeps a slot of the batch's slots, so its own ``update`` and ``reset`` still act on the same
     state; the batch of one a check runs alone (``alone`` True) uses that check's slot wherever it is. The kind
-    names its carried quantities and their fresh values in ``carries`` (empty: nothing carried).
+    names its carried numbers and their fresh values in ``carries``, or overrides :meth:`carried` (empty:
+    nothing carried).
     """
 
-    carries: ClassVar[Mapping[str, float | bool]] = {}
+    carries: ClassVar[Mapping[str, Carried]] = {}
 
     def __init__(self, checks: Sequence[Any], *, alone: bool = False) -> None:
         self.checks = tuple(checks)
         self.alone = alone
         self.slots: Slots | None = None
-        if self.carries and not alone:
-            self.slots = Slots(len(self.checks), self.carries)
+        spec = self.carried(self.checks[0]) if self.checks else {}
+        if spec and not alone:
+            self.slots = Slots(len(self.checks), spec)
             for i, c in enumerate(self.checks):
                 for name, arr in self.slots.a.items():
                     arr[i] = c._slots.a[name][c._slot]
                 c._slots, c._slot = self.slots, i
+        self.carrying = bool(spec)
+
+    @classmethod
+    def carried(cls, check: Any) -> dict[str, tuple[Carried, tuple[int, ...]]]:
+        """What ``check`` carries: each quantity's fresh value and the shape of one check's share."""
+        return {name: (v, ()) for name, v in cls.carries.items()}
 
     def where(self) -> tuple[Slots, slice]:
         """The slots this batch's state lives in and its rows there."""
@@ -129,7 +145,7 @@ class StackedBatch:
 
     def reset(self) -> None:
         """Forget what the checks carry from one block to the next."""
-        if self.carries:
+        if self.carrying:
             slots, rows = self.where()
             slots.reset(rows)
 
@@ -146,7 +162,7 @@ class Stacked:
 
     def _init_slots(self) -> None:
         """Fresh carried state of a check on its own (call from ``__init__`` when the kind carries any)."""
-        self._slots, self._slot = Slots(1, self._batch.carries), 0
+        self._slots, self._slot = Slots(1, self._batch.carried(self)), 0
 
     @classmethod
     def batch(cls, checks: Sequence[Any]) -> StackedBatch:
@@ -161,5 +177,40 @@ class Stacked:
 
     def reset(self) -> None:
         """Forget what this check carries from one block to the next (nothing, for a kind that carries nothing)."""
-        if self._batch.carries:
-            self._slots.reset(slice(self._slot, self._slot + 1))
+        slots = self.__dict__.get("_slots")
+        if slots is not None:
+            slots.reset(slice(self._slot, self._slot + 1))
+
+
+def rolling_mean_rows(x: np.ndarray, ok: np.ndarray, tail_x: np.ndarray, tail_ok: np.ndarray, filled: np.ndarray,
+                      w: int) -> tuple[np.ndarray, np.ndarray]:
+    """The row-wise :class:`spanwatch.rules.windows.RollingMean` (window ``w`` frames): per row and frame the mean of
+    the last ``w`` frames and whether all of them were usable.
+
+    The carried tail of each row lives in ``tail_x`` / ``tail_ok`` (rows x ``w - 1`` buffers, the last
+    ``filled`` columns in use; every row has seen the same frames, so one count serves all) and is updated in
+    place, as is ``filled`` (one count per row, all equal).
+    """
+    keep = w - 1
+    m = int(filled[0]) if filled.size else 0
+    if filled.size and (filled != m).any():
+        raise ValueError("windows evaluated together must have seen the same frames")
+    n = x.shape[-1]
+    ok = ok & np.isfinite(x)
+    xs = np.concatenate([tail_x[:, keep - m:], np.where(ok, x, 0.0)], axis=1)
+    oks = np.concatenate([tail_ok[:, keep - m:], ok], axis=1)
+    rows = xs.shape[0]
+    c = np.concatenate([np.zeros((rows, 1)), np.cumsum(xs, axis=1)], axis=1)
+    cb = np.concatenate([np.zeros((rows, 1), dtype=np.intp), np.cumsum(~oks, axis=1)], axis=1)
+    end = np.arange(m + 1, m + n + 1)
+    start = end - w
+    enough = start >= 0
+    start = np.maximum(start, 0)
+    mean = (c[:, end] - c[:, start]) / w
+    all_ok = enough & ((cb[:, end] - cb[:, start]) == 0)
+    new = min(keep, m + n)
+    if new:
+        tail_x[:, keep - new:] = xs[:, xs.shape[1] - new:]
+        tail_ok[:, keep - new:] = oks[:, oks.shape[1] - new:]
+    filled[:] = new
+    return mean, all_ok
