@@ -206,8 +206,9 @@ def _faulty(blocks: list[Block]) -> list[Block]:
 
     Tags (columns of ``block.tags``): speed_ref out of range on a stretch of every block, pull_1's speed
     uncertain and s5's tension bad there, the unwind rpm never sampled (quality 3), the rewind length NaN on a
-    stretch, the idler_5 speed not sampled for 30 s from the third block on (stale), s8's tension held from the
-    second block on (frozen after its 10 s). The source ``plc`` is silent for a few frames of the fourth block.
+    stretch, the idler_5 speed without a new sample from the third block on (its age grows: stale), s8's tension
+    held from the second block on (frozen after its 10 s). The source ``plc`` is silent on a stretch of the fourth
+    block.
     Signals: the line stops for a stretch of the fifth block with the webs slack (traction restarts, tension
     zero judged, no drive), pull_2's drive reports a fault and the middle zone's load cell is not usable on a
     stretch of the sixth.
