@@ -15,27 +15,10 @@ from hostile import ANY_FLOAT, N_FUZZ, SPECIAL, any_array, no_runtime_warning, s
 from hypothesis import given, settings
 from spanwatch.monitor.checkset import build_checks
 from spanwatch.monitor.line import load_line
-from spanwatch.rules.base import (
-    QUALITY_GOOD,
-    Block,
-    CheckResult,
-    LineState,
-    OneByOne,
-    Reason,
-    Signal,
-    TagFrames,
-    finalise,
-)
+from spanwatch.rules.base import QUALITY_GOOD, Block, CheckResult, LineState, Reason, Signal, TagFrames, finalise
 from spanwatch.rules.linestate import classify_line_state
 from spanwatch.rules.plausibility import out_of_range
-from spanwatch.rules.runout import (
-    RollerRunoutCheck,
-    RunoutCheck,
-    goertzel,
-    order_amplitude,
-    rotation_frequency,
-    sinusoid_amplitude,
-)
+from spanwatch.rules.runout import RunoutCheck, goertzel, order_amplitude, rotation_frequency, sinusoid_amplitude
 
 # --- Goertzel against numpy.fft ----------------------------------------------------------
 
@@ -440,60 +423,3 @@ def test_derived_checks_on_hostile_blocks(example_line, good_run, kind):
     for c in checks:
         if c.kind in derived_kinds:
             assert not block.results[(c.kind, c.object_id)].valid.any(), f"{c.kind}:{c.object_id}"
-
-
-def test_runout_checks_evaluated_together_answer_as_each_alone():
-    # Two unwinds (one by rpm, one by diameter and web speed) and two driven rollers (surface speed over a fixed
-    # diameter), each with its own once-per-rev amplitude, in blocks of uneven size with a reset: evaluated
-    # together (RunoutCheck.batch) every object answers exactly as alone, and recovers its amplitude.
-    stream = runout_stream(amplitude=0.04, seconds=30.0, noise=0.5)
-    n = stream["t"].size
-    tension = {"z1": stream["tension/z"]}
-    tension["z2"] = 140.0 * (1 + 0.08 * np.sin(np.cumsum(2 * np.pi * stream["rotation/u"] / FS) + 1.0))
-    roll_d = {"r1": 0.2, "r2": 0.3}
-    for i, d in enumerate(roll_d.values()):
-        angle = np.cumsum(2 * np.pi * 5.0 / (np.pi * d) / FS * np.ones(n))
-        tension[f"z{3 + i}"] = 120.0 * (1 + (0.02 + 0.01 * i) * np.sin(angle))
-    signals = {"rotation/u": stream["rotation/u"], "diameter/u2": stream["diameter/u"],
-               "speed/web": stream["speed/web"], "speed/r1": np.full(n, 5.0), "speed/r2": np.full(n, 5.0)}
-    signals |= {f"tension/{z}": x for z, x in tension.items()}
-
-    def winders():
-        return [RunoutCheck("u", zone="z1", rotation="rotation/u", diameter="diameter/u", frame_rate=FS),
-                RunoutCheck("u2", zone="z2", rotation=None, diameter="diameter/u2", frame_rate=FS)]
-
-    def rollers():
-        return [RollerRunoutCheck(r, zone=f"z{3 + i}", diameter=d, frame_rate=FS, min_tension=1.0)
-                for i, (r, d) in enumerate(roll_d.items())]
-
-    pairs = []
-    for make in (winders, rollers):
-        together = make()
-        batch = RunoutCheck.batch(together) if make is winders else RollerRunoutCheck.batch(together)
-        assert not isinstance(batch, OneByOne)
-        pairs.append((make(), batch))
-    lo, results = 0, {}
-    for i, size in enumerate((1, 333, 0, 7, 600, 250, 9, n)):
-        hi = min(n, lo + size)
-        ok = np.ones(hi - lo, dtype=bool)
-        block = Block(t=stream["t"][lo:hi], signals={k: Signal(v[lo:hi], ok) for k, v in signals.items()},
-                      line_state=np.full(hi - lo, int(LineState.RUNNING), dtype=np.int8), tags=tagless(hi - lo))
-        lo = hi
-        for alone, batch in pairs:
-            if i == 5:
-                batch.reset()
-                for c in alone:
-                    c.reset()
-            for c, got in zip(alone, batch.update(block), strict=True):
-                want = c.update(block)
-                np.testing.assert_array_equal(got.reason, want.reason)
-                np.testing.assert_array_equal(got.value, want.value)
-                for name in want.extras:
-                    np.testing.assert_array_equal(got.extras[name], want.extras[name], err_msg=name)
-                results.setdefault(c.object_id, []).append(want)
-    assert lo == n
-    expected = {"u": 0.04, "u2": 0.08, "r1": 0.02, "r2": 0.03}
-    for obj, parts in results.items():
-        last = parts[-1]
-        assert last.valid.sum() > 0.9 * last.value.size, obj
-        np.testing.assert_allclose(last.value[last.valid], expected[obj], rtol=0.05, err_msg=obj)
