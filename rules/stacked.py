@@ -214,25 +214,3 @@ def rolling_mean_rows(x: np.ndarray, ok: np.ndarray, tail_x: np.ndarray, tail_ok
         tail_ok[:, keep - new:] = oks[:, oks.shape[1] - new:]
     filled[:] = new
     return mean, all_ok
-
-
-def lagged_rows(x: np.ndarray, ok: np.ndarray, tail_x: np.ndarray, tail_ok: np.ndarray
-                ) -> tuple[np.ndarray, np.ndarray]:
-    """The row-wise :class:`spanwatch.rules.windows.Lagged`: per row and frame the value ``w`` frames ago (``w`` the
-    width of the carried ``tail_x`` / ``tail_ok``, NaN / not ok before the first frame; updated in place)."""
-    n, w = x.shape[-1], tail_x.shape[-1]
-    xs = np.concatenate([tail_x, np.broadcast_to(x, (tail_x.shape[0], n))], axis=1)
-    oks = np.concatenate([tail_ok, np.broadcast_to(ok, (tail_ok.shape[0], n))], axis=1)
-    tail_x[:] = xs[:, xs.shape[1] - w:]
-    tail_ok[:] = oks[:, oks.shape[1] - w:]
-    return xs[:, :n], oks[:, :n]
-
-
-def mask_rows(masks: Mapping[str, np.ndarray], names: Sequence[str], n: int) -> np.ndarray:
-    """Per-object masks of a block (``roll_start``, ``roll_settling``) as rows; an object without one: all False."""
-    out = np.zeros((len(names), n), dtype=bool)
-    for i, name in enumerate(names):
-        m = masks.get(name)
-        if m is not None:
-            out[i] = m
-    return out

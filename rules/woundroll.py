@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import itertools
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
@@ -21,26 +21,14 @@ from spanwatch.rules.base import (
     MOVING_STATES,
     AlarmDefaults,
     Block,
-    CheckBatch,
     CheckResult,
     LineState,
-    OneByOne,
     Reason,
     combine_reasons,
     finalise,
 )
 from spanwatch.rules.linemodel import LineModel
-from spanwatch.rules.stacked import (
-    Stacked,
-    StackedBatch,
-    column,
-    combine_rows,
-    finalise_rows,
-    lagged_rows,
-    mask_rows,
-    rolling_mean_rows,
-    signal_rows,
-)
+from spanwatch.rules.windows import Lagged, RollingMean
 
 # --- pure geometry -------------------------------------------------------------------
 
@@ -456,115 +444,13 @@ class RollDiameterCheck:
         self.devs = (nominal, history, float(flag))
 
 
-class _SpeedDiameterBatch(StackedBatch):
-    """Speed-diameter checks of all winders at once: each winder's three averaging windows (diameter, rotation,
-    web speed) as rows of one window computation. Stacked only with one window (see :meth:`_same_window`)."""
-
-    def __init__(self, checks: Sequence[SpeedDiameterCheck], *, alone: bool = False) -> None:
-        super().__init__(checks, alone=alone)
-        self.ids = [c.object_id for c in checks]
-        self.names = [[c.names[j] for c in checks] for j in range(3)]
-        self.w = checks[0].window_frames
-        self.min_n = column(c.min_n for c in checks)
-
-    @classmethod
-    def carried(cls, check: SpeedDiameterCheck) -> dict[str, tuple[float | bool | int, tuple[int, ...]]]:
-        """Its three windows' tails and how full they are."""
-        tail = (3, max(check.window_frames - 1, 0))
-        return {"tail_x": (0.0, tail), "tail_ok": (False, tail), "filled": (0, ())}
-
-    def update(self, block: Block) -> list[CheckResult]:
-        sig = [signal_rows(block, names) for names in self.names]
-        k, n = sig[0][0].shape
-        slots, rows = self.where()
-        a = slots.a
-        tail_x, tail_ok = a["tail_x"][rows], a["tail_ok"][rows]
-        width = tail_x.shape[-1]
-        xs = np.stack([s[0] for s in sig], axis=1).reshape(-1, n)
-        oks = np.stack([s[1] for s in sig], axis=1).reshape(-1, n)
-        mean, all_ok = rolling_mean_rows(xs, oks, tail_x.reshape(-1, width), tail_ok.reshape(-1, width),
-                                         a["filled"][rows], self.w)
-        mean, all_ok = mean.reshape(k, 3, n), all_ok.reshape(k, 3, n)
-        d, rot, v = mean[:, 0], mean[:, 1], mean[:, 2]
-        d_speed = diameter_from_speed(v, rot)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rel = d / d_speed - 1.0
-        settling = mask_rows(block.roll_settling, self.ids, n)
-        with np.errstate(invalid="ignore"):
-            no_roll = (np.abs(rot) < self.min_n) | ~(d > 0)
-        reason = combine_rows(
-            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
-            (settling, Reason.ROLL_CHANGE),
-            (~(all_ok[:, 0] & all_ok[:, 1] & all_ok[:, 2]), Reason.INPUT_BAD),
-            (no_roll, Reason.OUT_OF_DOMAIN),
-            shape=(k, n),
-        )
-        return finalise_rows(rel, reason, diameter_speed=d_speed)
-
-
-class _LengthRateBatch(StackedBatch):
-    """Length-rate checks of all winders at once (winders x frames): the length and time ``window`` frames ago
-    and the mean web speed over the window, carried per winder. Stacked only with one window."""
-
-    def __init__(self, checks: Sequence[LengthRateCheck], *, alone: bool = False) -> None:
-        super().__init__(checks, alone=alone)
-        self.ids = [c.object_id for c in checks]
-        self.lengths = [c.names[0] for c in checks]
-        self.speeds = [c.names[1] for c in checks]
-        self.w = checks[0].window_frames
-        self.min_speed = column(c.min_speed for c in checks)
-
-    @classmethod
-    def carried(cls, check: LengthRateCheck) -> dict[str, tuple[float | bool | int, tuple[int, ...]]]:
-        """The lengths and times of the last window of frames, and the web speed's window."""
-        w = max(1, int(check.window_frames))
-        tail = max(check.window_frames - 1, 0)
-        return {"lag_l": (np.nan, (w,)), "lag_l_ok": (False, (w,)), "lag_t": (np.nan, (w,)),
-                "lag_t_ok": (False, (w,)), "tail_v": (0.0, (tail,)), "tail_v_ok": (False, (tail,)),
-                "filled": (0, ())}
-
-    def update(self, block: Block) -> list[CheckResult]:
-        ln, ln_ok = signal_rows(block, self.lengths)
-        v, v_ok = signal_rows(block, self.speeds)
-        k, n = ln.shape
-        slots, rows = self.where()
-        a = slots.a
-        l_old, ok_old = lagged_rows(ln, ln_ok, a["lag_l"][rows], a["lag_l_ok"][rows])
-        t_old, _ = lagged_rows(block.t, np.ones(n, dtype=bool), a["lag_t"][rows], a["lag_t_ok"][rows])
-        # The mean over the w frames ending at the frame before this one matches the
-        # interval (t - w dt, t] of the length difference.
-        vbar, okv = rolling_mean_rows(v, v_ok, a["tail_v"][rows], a["tail_v_ok"][rows], a["filled"][rows], self.w)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rate = (ln - l_old) / (block.t - t_old)
-            rel = rate / vbar - 1.0
-        settling = mask_rows(block.roll_settling, self.ids, n)
-        reason = combine_rows(
-            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
-            (settling, Reason.ROLL_CHANGE),
-            (~(ln_ok & ok_old & okv), Reason.INPUT_BAD),
-            (np.abs(vbar) <= self.min_speed, Reason.OUT_OF_DOMAIN),
-            (rate < 0, Reason.ROLL_CHANGE),
-            shape=(k, n),
-        )
-        return finalise_rows(rel, reason, length_rate=rate)
-
-
-def _same_window(cls: type[SpeedDiameterCheck] | type[LengthRateCheck],
-                 checks: Sequence[SpeedDiameterCheck] | Sequence[LengthRateCheck]) -> CheckBatch:
-    """The kind's batch when its checks share one window (a line's ``check_window``), else one by one."""
-    if len({c.window_frames for c in checks}) > 1:
-        return OneByOne(checks)
-    return cls._batch(checks)
-
-
-class SpeedDiameterCheck(Stacked):
+class SpeedDiameterCheck:
     """Diameter sensor against the diameter from web speed and roll rotation, ``D = V / (pi n)``."""
 
     kind: ClassVar[str] = "speed_diameter"
     rests_on: ClassVar[str] = ("no slip between web and roll surface; web speed reference equals the roll "
                                "surface speed in steady running")
     defaults: ClassVar[AlarmDefaults] = SPEED_DIAMETER_DEFAULTS
-    _batch = _SpeedDiameterBatch
 
     def __init__(self, object_id: str, *, window_frames: int, min_rev_per_s: float,
                  blames: tuple[str, ...] = ()) -> None:
@@ -574,7 +460,7 @@ class SpeedDiameterCheck(Stacked):
         self.blames = blames or (object_id,)
         self.window_frames = window_frames
         self.min_n = min_rev_per_s
-        self._init_slots()
+        self.reset()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[SpeedDiameterCheck]:
@@ -586,19 +472,35 @@ class SpeedDiameterCheck(Stacked):
                           min_rev_per_s=s.thread_speed / (np.pi * w.max_diameter),
                           blames=tuple(x for x in (w.id, w.diameter_tag, w.rpm_tag) if x))
 
-    @classmethod
-    def batch(cls, checks: Sequence[SpeedDiameterCheck]) -> CheckBatch:
-        """All winders at once when they share one window, else one by one."""
-        return _same_window(cls, checks)
+    def reset(self) -> None:
+        """Forget the averaging windows."""
+        self._means = [RollingMean(self.window_frames) for _ in range(3)]
+
+    def update(self, block: Block) -> CheckResult:
+        sigs = [block.signal(n) for n in self.names]
+        (d, okd), (rot, okn), (v, okv) = (m.update(s.value, s.ok) for m, s in zip(self._means, sigs, strict=True))
+        d_speed = diameter_from_speed(v, rot)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = d / d_speed - 1.0
+        settling = block.roll_settling.get(self.object_id, np.zeros(block.n, dtype=bool))
+        with np.errstate(invalid="ignore"):
+            no_roll = (np.abs(rot) < self.min_n) | ~(d > 0)
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
+            (settling, Reason.ROLL_CHANGE),
+            (~(okd & okn & okv), Reason.INPUT_BAD),
+            (no_roll, Reason.OUT_OF_DOMAIN),
+            n=block.n,
+        )
+        return finalise(rel, reason, diameter_speed=d_speed)
 
 
-class LengthRateCheck(Stacked):
+class LengthRateCheck:
     """Length counter rate against web speed: ``(dL/dt) / V_web - 1`` over a sliding window."""
 
     kind: ClassVar[str] = "length_rate"
     rests_on: ClassVar[str] = "web speed reference is true web speed at the length counter"
     defaults: ClassVar[AlarmDefaults] = LENGTH_RATE_DEFAULTS
-    _batch = _LengthRateBatch
 
     def __init__(self, object_id: str, *, window_frames: int, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
@@ -607,7 +509,7 @@ class LengthRateCheck(Stacked):
         self.blames = blames or (object_id,)
         self.window_frames = window_frames
         self.min_speed = min_speed
-        self._init_slots()
+        self.reset()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[LengthRateCheck]:
@@ -618,10 +520,32 @@ class LengthRateCheck(Stacked):
                 yield cls(w.id, window_frames=s.frames(s.check_window), min_speed=s.thread_speed,
                           blames=tuple(x for x in (w.id, w.length_tag) if x))
 
-    @classmethod
-    def batch(cls, checks: Sequence[LengthRateCheck]) -> CheckBatch:
-        """All winders at once when they share one window, else one by one."""
-        return _same_window(cls, checks)
+    def reset(self) -> None:
+        """Forget the windows."""
+        self._lag_l = Lagged(self.window_frames)
+        self._lag_t = Lagged(self.window_frames)
+        self._mean_v = RollingMean(self.window_frames)
+
+    def update(self, block: Block) -> CheckResult:
+        ln, v = block.signal(self.names[0]), block.signal(self.names[1])
+        l_old, ok_old = self._lag_l.update(ln.value, ln.ok)
+        t_old, _ = self._lag_t.update(block.t, np.ones(block.n, dtype=bool))
+        # The mean over the w frames ending at the frame before this one matches the
+        # interval (t - w dt, t] of the length difference.
+        vbar, okv = self._mean_v.update(v.value, v.ok)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rate = (ln.value - l_old) / (block.t - t_old)
+            rel = rate / vbar - 1.0
+        settling = block.roll_settling.get(self.object_id, np.zeros(block.n, dtype=bool))
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
+            (settling, Reason.ROLL_CHANGE),
+            (~(ln.ok & ok_old & okv), Reason.INPUT_BAD),
+            (np.abs(vbar) <= self.min_speed, Reason.OUT_OF_DOMAIN),
+            (rate < 0, Reason.ROLL_CHANGE),
+            n=block.n,
+        )
+        return finalise(rel, reason, length_rate=rate)
 
 
 __all__ = [

@@ -191,8 +191,7 @@ def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, block
 
 # Kinds that evaluate all their objects at once; the test above must exercise their batches, not OneByOne.
 STACKED_KINDS = {"tag_range", "tag_quality", "tag_stale", "tag_frozen", "traction", "no_drive", "slip", "idler_lag",
-                 "draw", "tension_zero", "drive_fault", "speed_diameter", "length_rate",
-                 "runout"}
+                 "draw", "tension_zero", "drive_fault"}
 
 
 def test_the_stacked_kinds_are_evaluated_together(line):
