@@ -11,14 +11,13 @@ measures the amplitude on the roll's own angle.
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-from spanwatch.rules.base import AlarmDefaults, Block, CheckBatch, CheckResult, LineState, OneByOne, Reason
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
 from spanwatch.rules.linemodel import LineModel
-from spanwatch.rules.stacked import Stacked, StackedBatch, column, combine_rows, finalise_rows, signal_rows
 
 
 def rotation_frequency(speed: ArrayLike, diameter: ArrayLike) -> np.ndarray:
@@ -109,121 +108,7 @@ DEFAULTS = AlarmDefaults(
 )
 
 
-class _RunoutBatch(StackedBatch):
-    """Runout of all rolls (or all rollers) at once: objects x frames matrices of tension and rotation, the roll
-    angle and the tail of past frames carried per object; the window start of each frame is the one step done
-    object by object (a search in that object's own angle). Stacked only with one frame rate, number of
-    revolutions and tail length."""
-
-    def __init__(self, checks: Sequence[RunoutCheck], *, alone: bool = False) -> None:
-        super().__init__(checks, alone=alone)
-        c0 = checks[0]
-        self.fs, self.revs, self.max_frames = c0.fs, c0.revs, c0.max_frames
-        self.tension = [c.tension for c in checks]
-        self.min_tension = column(c.min_tension for c in checks)
-        self.roller = isinstance(c0, RollerRunoutCheck)
-        if self.roller:
-            self.speeds = [f"speed/{c.object_id}" for c in checks]
-            self.roller_diameter = column(c.roller_diameter for c in checks)  # type: ignore[attr-defined]
-        else:
-            self.rpm = np.array([c.rotation is not None for c in checks]).reshape(-1, 1)
-            self.rotation = [c.rotation or "" for c in checks]
-            self.diameter = [c.diameter or "" for c in checks]
-
-    @classmethod
-    def carried(cls, check: RunoutCheck) -> dict[str, tuple[float | bool | int, tuple[int, ...]]]:
-        """The roll angle and the tail of past frames (tension, angle, usable), how full it is."""
-        tail = (check.max_frames,)
-        return {"phase0": (0.0, ()), "tail_x": (0.0, tail), "tail_p": (0.0, tail), "tail_ok": (False, tail),
-                "filled": (0, ())}
-
-    def _rev_per_s(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
-        if self.roller:
-            v, ok = signal_rows(block, self.speeds)
-            return np.abs(v) / (np.pi * self.roller_diameter), ok
-        rot, rot_ok = signal_rows(block, self.rotation)
-        if self.rpm.all():
-            return np.abs(rot), rot_ok
-        d, d_ok = signal_rows(block, self.diameter)
-        v = block.signal("speed/web")
-        return (np.where(self.rpm, np.abs(rot), rotation_frequency(v.value, d)),
-                np.where(self.rpm, rot_ok, d_ok & v.ok))
-
-    def update(self, block: Block) -> list[CheckResult]:
-        ten, ten_ok = signal_rows(block, self.tension)
-        k, n = ten.shape
-        slots, rows = self.where()
-        a = slots.a
-        filled = a["filled"][rows]
-        m = int(filled[0]) if k else 0
-        if (filled != m).any():
-            raise ValueError("runout checks evaluated together must have seen the same frames")
-        f1, okf = self._rev_per_s(block)
-        dt = 1.0 / self.fs
-        # The roll must turn: a window of whole revolutions must fit in the frames kept.
-        f_min = self.revs * self.fs / (self.max_frames - 1)
-        with np.errstate(invalid="ignore"):
-            turning = okf & np.isfinite(f1) & (f1 >= f_min)
-        with np.errstate(all="ignore"):
-            step = np.where(turning, 2.0 * np.pi * f1 * dt, 0.0)
-        phase0 = a["phase0"][rows]
-        phase = phase0[:, None] + np.cumsum(step, axis=1)
-        if n:
-            phase0[:] = phase[:, -1]
-        ok = ten_ok & turning & np.isfinite(ten)
-        width = self.max_frames
-        tail_x, tail_p, tail_ok = a["tail_x"][rows], a["tail_p"][rows], a["tail_ok"][rows]
-        xs = np.concatenate([tail_x[:, width - m:], np.where(ok, ten, 0.0)], axis=1)
-        ps = np.concatenate([tail_p[:, width - m:], phase], axis=1)
-        oks = np.concatenate([tail_ok[:, width - m:], ok], axis=1)
-        # Window start per frame: the first frame whose phase is within revs * 2 pi of this one.
-        end = np.arange(m + 1, m + n + 1)  # exclusive end index into the cumulative sums
-        back = ps[:, m:] - self.revs * 2.0 * np.pi
-        start = np.empty((k, n), dtype=np.intp)
-        for i in range(k):
-            start[i] = np.searchsorted(ps[i], back[i], side="right")
-        count = end - start
-        e = np.exp(-1j * (ps - ps[:, :1]))
-        zero = np.zeros((k, 1))
-        cx = np.concatenate([zero, np.cumsum(xs, axis=1)], axis=1)
-        ce = np.concatenate([zero.astype(complex), np.cumsum(e, axis=1)], axis=1)
-        cxe = np.concatenate([zero.astype(complex), np.cumsum(xs * e, axis=1)], axis=1)
-        cbad = np.concatenate([zero.astype(np.intp), np.cumsum(~oks, axis=1)], axis=1)
-
-        def at(c: np.ndarray, idx: np.ndarray) -> np.ndarray:
-            return np.take_along_axis(c, idx, axis=1)
-
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = (cx[:, end] - at(cx, start)) / count
-            spec = (cxe[:, end] - at(cxe, start)) - mean * (ce[:, end] - at(ce, start))
-            amp = 2.0 * np.abs(spec) / count
-            rel = amp / mean
-        full = (start > 0) | (ps[:, :1] <= back)
-        window_ok = (cbad[:, end] - at(cbad, start)) == 0
-        with np.errstate(invalid="ignore"):
-            undersampled = f1 > self.fs / 4.0
-        keep = min(self.max_frames, xs.shape[1])
-        tail_x[:, width - keep:] = xs[:, xs.shape[1] - keep:]
-        tail_ok[:, width - keep:] = oks[:, oks.shape[1] - keep:]
-        tail_p[:, width - keep:] = ps[:, ps.shape[1] - keep:]
-        filled[:] = keep
-        # Keep the stored phase small so exp() stays accurate after days of running.
-        if keep:
-            shift = 2.0 * np.pi * np.floor(tail_p[:, width - keep] / (2.0 * np.pi))
-            tail_p[:, width - keep:] -= shift[:, None]
-            phase0 -= shift
-        reason = combine_rows(
-            (~block.in_states((LineState.RUNNING, LineState.ACCELERATING, LineState.DECELERATING)),
-             Reason.LINE_STATE),
-            (~(ten_ok & okf & np.isfinite(ten) & ~np.isnan(f1)), Reason.INPUT_BAD),
-            (~turning | undersampled | ~(mean >= self.min_tension), Reason.OUT_OF_DOMAIN),
-            (~(full & window_ok) | (count > self.max_frames - 1), Reason.WARMING_UP),
-            shape=(k, n),
-        )
-        return finalise_rows(rel, reason, amplitude=amp, frequency=f1)
-
-
-class RunoutCheck(Stacked):
+class RunoutCheck:
     """Once-per-revolution tension amplitude relative to mean tension, over whole revolutions.
 
     Keeps the roll angle (integral of the rotation frequency) and a tail of frames as long
@@ -235,7 +120,6 @@ class RunoutCheck(Stacked):
     rests_on: ClassVar[str] = ("tension sampled at least 4 times per revolution; speed varies slowly over "
                                "the window; the rotation frequency comes from rpm (or V / pi D)")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
-    _batch = _RunoutBatch
 
     def __init__(self, object_id: str, *, zone: str, rotation: str | None, diameter: str | None,
                  frame_rate: float, revolutions: int = 4, min_tension: float = 1.0,
@@ -249,7 +133,7 @@ class RunoutCheck(Stacked):
         self.revs = revolutions
         self.min_tension = min_tension
         self.max_frames = max_frames
-        self._init_slots()
+        self.reset()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[RunoutCheck]:
@@ -263,13 +147,72 @@ class RunoutCheck(Stacked):
                 yield cls(w.id, zone=zone.id, rotation=f"rotation/{w.id}" if w.has_rpm else None,
                           diameter=f"diameter/{w.id}", frame_rate=s.frame_rate, min_tension=s.min_drive_tension)
 
-    @classmethod
-    def batch(cls, checks: Sequence[RunoutCheck]) -> CheckBatch:
-        """All the rolls (or rollers) at once when they share frame rate, revolutions and tail length, else one
-        by one."""
-        if len({(c.fs, c.revs, c.max_frames) for c in checks}) > 1:
-            return OneByOne(checks)
-        return _RunoutBatch(checks)
+    def reset(self) -> None:
+        """Forget the roll angle and the window of past frames."""
+        self._phase0 = 0.0
+        self._tail_x = np.zeros(0)
+        self._tail_p = np.zeros(0)
+        self._tail_ok = np.zeros(0, dtype=bool)
+
+    def _rev_per_s(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
+        if self.rotation is not None:
+            s = block.signal(self.rotation)
+            return np.abs(s.value), s.ok
+        d, v = block.signal(self.diameter or ""), block.signal("speed/web")
+        return rotation_frequency(v.value, d.value), d.ok & v.ok
+
+    def update(self, block: Block) -> CheckResult:
+        n = block.n
+        ten = block.signal(self.tension)
+        f1, okf = self._rev_per_s(block)
+        dt = 1.0 / self.fs
+        # The roll must turn: a window of whole revolutions must fit in the frames kept.
+        f_min = self.revs * self.fs / (self.max_frames - 1)
+        with np.errstate(invalid="ignore"):
+            turning = okf & np.isfinite(f1) & (f1 >= f_min)
+        with np.errstate(all="ignore"):
+            step = np.where(turning, 2.0 * np.pi * f1 * dt, 0.0)
+        phase = self._phase0 + np.cumsum(step)
+        self._phase0 = float(phase[-1]) if n else self._phase0
+        ok = ten.ok & turning & np.isfinite(ten.value)
+        xs = np.concatenate([self._tail_x, np.where(ok, ten.value, 0.0)])
+        ps = np.concatenate([self._tail_p, phase])
+        oks = np.concatenate([self._tail_ok, ok])
+        m = self._tail_x.shape[0]
+        # Window start per frame: the first frame whose phase is within revs * 2 pi of this one.
+        end = np.arange(m + 1, m + n + 1)  # exclusive end index into the cumulative sums
+        start = np.searchsorted(ps, ps[m:] - self.revs * 2.0 * np.pi, side="right")
+        count = end - start
+        e = np.exp(-1j * (ps - ps[0]))
+        cx = np.concatenate([[0.0], np.cumsum(xs)])
+        ce = np.concatenate([[0.0], np.cumsum(e)])
+        cxe = np.concatenate([[0.0], np.cumsum(xs * e)])
+        cbad = np.concatenate([[0], np.cumsum(~oks)])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = (cx[end] - cx[start]) / count
+            spec = (cxe[end] - cxe[start]) - mean * (ce[end] - ce[start])
+            amp = 2.0 * np.abs(spec) / count
+            rel = amp / mean
+        full = (start > 0) | (ps[0] <= ps[m:] - self.revs * 2.0 * np.pi)
+        window_ok = (cbad[end] - cbad[start]) == 0
+        with np.errstate(invalid="ignore"):
+            undersampled = f1 > self.fs / 4.0
+        keep = min(self.max_frames, xs.shape[0])
+        self._tail_x, self._tail_p, self._tail_ok = xs[-keep:], ps[-keep:], oks[-keep:]
+        # Keep the stored phase small so exp() stays accurate after days of running.
+        if self._tail_p.size:
+            shift = 2.0 * np.pi * np.floor(self._tail_p[0] / (2.0 * np.pi))
+            self._tail_p = self._tail_p - shift
+            self._phase0 -= shift
+        reason = combine_reasons(
+            (~block.in_states((LineState.RUNNING, LineState.ACCELERATING, LineState.DECELERATING)),
+             Reason.LINE_STATE),
+            (~(ten.ok & okf & np.isfinite(ten.value) & ~np.isnan(f1)), Reason.INPUT_BAD),
+            (~turning | undersampled | ~(mean >= self.min_tension), Reason.OUT_OF_DOMAIN),
+            (~(full & window_ok) | (count > self.max_frames - 1), Reason.WARMING_UP),
+            n=n,
+        )
+        return finalise(rel, reason, amplitude=amp, frequency=f1)
 
 
 class RollerRunoutCheck(RunoutCheck):
@@ -290,3 +233,7 @@ class RollerRunoutCheck(RunoutCheck):
             if r.runout_check and zone is not None and zone.tension_tag is not None:
                 yield cls(r.id, zone=zone.id, diameter=r.diameter, frame_rate=s.frame_rate,
                           min_tension=s.min_drive_tension)
+
+    def _rev_per_s(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
+        sig = block.signal(f"speed/{self.object_id}")
+        return np.abs(sig.value) / (np.pi * self.roller_diameter), sig.ok
