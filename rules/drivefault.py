@@ -17,13 +17,14 @@ line starts; the fault bit does not depend on the line speed, so there is nothin
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, Reason, combine_reasons, finalise
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, Reason
 from spanwatch.rules.linemodel import LineModel
+from spanwatch.rules.stacked import Stacked, StackedBatch, combine_rows, finalise_rows, signal_rows
 
 
 def fault_flag(word: ArrayLike) -> np.ndarray:
@@ -58,12 +59,27 @@ DEFAULTS = AlarmDefaults(
 )
 
 
-class DriveFaultCheck:
+class _FaultBatch(StackedBatch):
+    """The fault flags of every drive at once (drives x frames)."""
+
+    def __init__(self, checks: Sequence[DriveFaultCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.signals = [c.signal for c in checks]
+
+    def update(self, block: Block) -> list[CheckResult]:
+        word, ok = signal_rows(block, self.signals)
+        flag = fault_flag(word)
+        reason = combine_rows((~(ok & np.isfinite(flag)), Reason.INPUT_BAD), shape=word.shape)
+        return finalise_rows(flag, reason)
+
+
+class DriveFaultCheck(Stacked):
     """The fault bit or word of a driven roller's drive, as a flag (stateless between blocks)."""
 
     kind: ClassVar[str] = "drive_fault"
     rests_on: ClassVar[str] = "the fault bit is non-zero exactly while the drive is faulted"
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
+    _batch = _FaultBatch
 
     def __init__(self, object_id: str) -> None:
         self.object_id = object_id
@@ -76,12 +92,3 @@ class DriveFaultCheck:
         for r in line.driven_rollers:
             if r.has_fault_tag:
                 yield cls(r.id)
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
-
-    def update(self, block: Block) -> CheckResult:
-        sig = block.signal(self.signal)
-        flag = fault_flag(sig.value)
-        reason = combine_reasons((~(sig.ok & np.isfinite(flag)), Reason.INPUT_BAD), n=block.n)
-        return finalise(flag, reason)

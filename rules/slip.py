@@ -8,13 +8,14 @@ inertia (an air film, a loss of wrap, a seized bearing).
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
-from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason
 from spanwatch.rules.linemodel import LineModel
+from spanwatch.rules.stacked import Stacked, StackedBatch, column, combine_rows, finalise_rows, signal_rows
 
 
 def surface_speed(rev_per_s: ArrayLike, diameter: ArrayLike) -> np.ndarray:
@@ -83,13 +84,49 @@ LAG_DEFAULTS = AlarmDefaults(
 )
 
 
-class SlipCheck:
+class _SpeedBatch(StackedBatch):
+    """Roller surface speeds against the web speed, all rollers of a kind at once (rollers x frames)."""
+
+    def __init__(self, checks: Sequence[SlipCheck | IdlerLagCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.speeds = [c.speed for c in checks]
+        self.draw = column(getattr(c, "draw", 0.0) for c in checks)
+        self.min_speed = column(c.min_speed for c in checks)
+
+    def _rows(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
+        """Per roller and frame: speed slip against the web speed (the commanded draw included) and the reason."""
+        vr, vr_ok = signal_rows(block, self.speeds)
+        vw = block.signal("speed/web")
+        s = slip_ratio(vr, vw.value, self.draw, self.min_speed)
+        reason = combine_rows(
+            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
+            (~(vr_ok & vw.ok), Reason.INPUT_BAD),
+            (np.abs(vw.value) <= self.min_speed, Reason.OUT_OF_DOMAIN),
+            shape=vr.shape,
+        )
+        return s, reason
+
+
+class _SlipBatch(_SpeedBatch):
+    def update(self, block: Block) -> list[CheckResult]:
+        s, reason = self._rows(block)
+        return finalise_rows(s, reason)
+
+
+class _LagBatch(_SpeedBatch):
+    def update(self, block: Block) -> list[CheckResult]:
+        s, reason = self._rows(block)
+        return finalise_rows(-s, reason)
+
+
+class SlipCheck(Stacked):
     """Speed slip of a driven roller against the web speed (valid while the line runs)."""
 
     kind: ClassVar[str] = "slip"
     rests_on: ClassVar[str] = ("roller encoder and web-speed reference agree at no slip after the "
                                "commanded draw; diameter of the roller is its configured value")
     defaults: ClassVar[AlarmDefaults] = SLIP_DEFAULTS
+    _batch = _SlipBatch
 
     def __init__(self, object_id: str, *, draw: float, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
@@ -107,27 +144,14 @@ class SlipCheck:
                 yield cls(r.id, draw=r.draw, min_speed=line.settings.thread_speed,
                           blames=tuple(x for x in (r.id, r.speed_tag) if x))
 
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
 
-    def update(self, block: Block) -> CheckResult:
-        vr, vw = block.signal(self.speed), block.signal("speed/web")
-        s = slip_ratio(vr.value, vw.value, self.draw, self.min_speed)
-        reason = combine_reasons(
-            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
-            (~(vr.ok & vw.ok), Reason.INPUT_BAD),
-            (np.abs(vw.value) <= self.min_speed, Reason.OUT_OF_DOMAIN),
-            n=block.n,
-        )
-        return finalise(s, reason)
-
-
-class IdlerLagCheck:
+class IdlerLagCheck(Stacked):
     """Lag of an idler with an encoder: ``(V_web - V_idler) / V_web`` (positive = lagging)."""
 
     kind: ClassVar[str] = "idler_lag"
     rests_on: ClassVar[str] = "idler diameter is its configured value; web speed reference is true web speed"
     defaults: ClassVar[AlarmDefaults] = LAG_DEFAULTS
+    _batch = _LagBatch
 
     def __init__(self, object_id: str, *, min_speed: float, blames: tuple[str, ...] = ()) -> None:
         self.object_id = object_id
@@ -143,17 +167,3 @@ class IdlerLagCheck:
             if not r.driven and r.has_encoder and r.id != line.settings.web_speed_from:
                 yield cls(r.id, min_speed=line.settings.thread_speed,
                           blames=tuple(x for x in (r.id, r.speed_tag) if x))
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
-
-    def update(self, block: Block) -> CheckResult:
-        vr, vw = block.signal(self.speed), block.signal("speed/web")
-        lag = -slip_ratio(vr.value, vw.value, 0.0, self.min_speed)
-        reason = combine_reasons(
-            (~block.in_states((LineState.RUNNING,)), Reason.LINE_STATE),
-            (~(vr.ok & vw.ok), Reason.INPUT_BAD),
-            (np.abs(vw.value) <= self.min_speed, Reason.OUT_OF_DOMAIN),
-            n=block.n,
-        )
-        return finalise(lag, reason)

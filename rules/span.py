@@ -9,7 +9,7 @@ Pagilla, Siraskar & Dwivedula, IEEE Trans. Control Syst. Technol. 15(1), 2007.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import ClassVar
 
 import numpy as np
@@ -17,15 +17,22 @@ from numpy.typing import ArrayLike
 from spanwatch.rules.base import (
     AlarmDefaults,
     Block,
+    CheckBatch,
     CheckResult,
     LineState,
+    OneByOne,
     Reason,
-    Signal,
-    combine_reasons,
-    finalise,
 )
 from spanwatch.rules.linemodel import LineModel
-from spanwatch.rules.windows import Lagged, RollingMean
+from spanwatch.rules.stacked import (
+    Stacked,
+    StackedBatch,
+    column,
+    combine_rows,
+    finalise_rows,
+    rolling_mean_rows,
+    signal_rows,
+)
 
 
 def span_tension_rate(t2: ArrayLike, t1: ArrayLike, v1: ArrayLike, v2: ArrayLike, et: ArrayLike,
@@ -147,7 +154,105 @@ DEFAULTS = AlarmDefaults(
 )
 
 
-class DrawCheck:
+# the windows a draw check keeps, in the order of its stacked window rows
+_WINDOWS = ("t1", "t2", "v1", "v2", "steady", "x", "xprev", "xx", "xlag")
+
+
+class _DrawBatch(StackedBatch):
+    """Draw checks of all zones at once: zones x frames matrices, and the nine rolling windows of every zone
+    (its four averaged inputs, the steady-running window and the five sums of the speed ratio's noise) as the
+    rows of one window computation; every zone's windows, commanded ratio and tolerances as columns.
+
+    Draw checks are stacked only with the same window (a line's ``draw_window``); see :meth:`DrawCheck.batch`.
+    """
+
+    def __init__(self, checks: Sequence[DrawCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.names = [[c.names[j] for c in checks] for j in range(4)]
+        self.w = checks[0].window_frames
+        self.et = column(c.et for c in checks)
+        self.modulus_tol, self.ratio_tol = column(c.modulus_tol for c in checks), column(c.ratio_tol for c in checks)
+        self.acc = [column(getattr(c, f)[j] for c in checks) for f in ("t1_acc", "t2_acc") for j in (0, 1)]
+        self.min_speed = column(c.min_speed for c in checks)
+        self.has_cmd = np.array([c.commanded_ratio is not None for c in checks]).reshape(-1, 1)
+        self.r_cmd = column(np.nan if c.commanded_ratio is None else c.commanded_ratio for c in checks)
+
+    @classmethod
+    def carried(cls, check: DrawCheck) -> dict[str, tuple[float | bool | int, tuple[int, ...]]]:
+        """Its windows' tails (nine rows of ``window - 1`` frames), how full they are, and the last ratio frame."""
+        tail = (len(_WINDOWS), max(check.window_frames - 1, 0))
+        return {"tail_x": (0.0, tail), "tail_ok": (False, tail), "filled": (0, ()),
+                "prev_x": (np.nan, ()), "prev_ok": (False, ())}
+
+    def update(self, block: Block) -> list[CheckResult]:
+        (t1s, ok1s), (t2s, ok2s), (v1s, okv1s), (v2s, okv2s) = (signal_rows(block, names) for names in self.names)
+        k, n = t1s.shape
+        slots, rows = self.where()
+        a = slots.a
+        running = block.line_state == int(LineState.RUNNING)
+        # the speed ratio's random uncertainty over the window, from its variance and lag-one autocorrelation:
+        # its samples x (speed ratio - 1) and x_k-1 (the two means differ by the window's end samples)
+        with np.errstate(all="ignore"):
+            x = v2s / v1s - 1.0
+        okx = okv1s & okv2s & np.isfinite(x)
+        x = np.where(okx, x, 0.0)
+        prev = np.concatenate([a["prev_x"][rows, None], x], axis=1)[:, :n]
+        ok_prev = np.concatenate([a["prev_ok"][rows, None], okx], axis=1)[:, :n]
+        if n:
+            a["prev_x"][rows], a["prev_ok"][rows] = x[:, -1], okx[:, -1]
+        prev = np.where(ok_prev, prev, 0.0)
+        run = np.broadcast_to(running, (k, n))
+        xs = np.stack([t1s, t2s, v1s, v2s, run.astype(float), x, prev, x * x, x * prev], axis=1)
+        oks = np.stack([ok1s, ok2s, okv1s, okv2s, run, okx, ok_prev, okx, okx & ok_prev], axis=1)
+        tail_x, tail_ok = a["tail_x"][rows], a["tail_ok"][rows]
+        width = tail_x.shape[-1]
+        mean, all_ok = rolling_mean_rows(xs.reshape(-1, n), oks.reshape(-1, n), tail_x.reshape(-1, width),
+                                         tail_ok.reshape(-1, width), a["filled"][rows], self.w)
+        mean, all_ok = mean.reshape(k, len(_WINDOWS), n), all_ok.reshape(k, len(_WINDOWS), n)
+        (t1, t2, v1, v2, _, m, m_prev, mm, ml) = (mean[:, j] for j in range(len(_WINDOWS)))
+        ok1, ok2, okv1, okv2, steady = (all_ok[:, j] for j in range(5))
+        w = self.w
+        with np.errstate(all="ignore"):
+            var = np.maximum(mm - m * m, 0.0) * w / max(w - 1, 1)
+            cov = ml - m * m_prev
+            r1 = np.where(var > 0, cov / var, 0.0)
+        noise = mean_ratio_uncertainty(var, r1, w)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            measured = v2 / v1
+        with np.errstate(invalid="ignore"):
+            agree = self.has_cmd & (np.abs(measured - self.r_cmd)
+                                    <= self.ratio_tol * self.r_cmd + np.nan_to_num(noise, nan=0.0))
+        ratio = np.where(agree, self.r_cmd, measured)
+        random = np.where(agree, 0.0, noise)
+        pred = steady_span_tension(t1, 1.0, ratio, self.et)
+        acc1 = self.acc[0] + self.acc[1] * np.abs(t1)
+        acc2 = self.acc[2] + self.acc[3] * np.abs(t2)
+        band = draw_band(t1, 1.0, ratio, self.et, modulus_tol=self.modulus_tol, ratio_tol=self.ratio_tol,
+                         t1_acc=acc1, t2_acc=acc2, ratio_random=random)
+        resid = t2 - pred
+        with np.errstate(invalid="ignore", divide="ignore"):
+            et_eff = (t2 * ratio - t1) / (ratio - 1.0)
+            gain = t2 / pred
+        et_eff = np.where(np.abs(ratio - 1.0) > 1e-4 * np.abs(ratio), et_eff, np.nan)
+        with np.errstate(invalid="ignore"):
+            slack = ~(pred > 0)
+            # the window's means and the rollers now: a long window must not judge a line that has just stopped
+            slow = (np.fmin(v1, v2) <= self.min_speed) | ~(np.fmin(v1s, v2s) > self.min_speed)
+        reason = combine_rows(
+            (~steady, Reason.LINE_STATE),
+            (~(ok1 & ok2 & okv1 & okv2), Reason.INPUT_BAD),
+            (slow | slack, Reason.OUT_OF_DOMAIN),
+            shape=(k, n),
+        )
+        with np.errstate(invalid="ignore", divide="ignore"):
+            value = resid / band
+        valid = reason == int(Reason.OK)
+        return finalise_rows(value, reason, residual=resid, band=band, predicted=pred,
+                             ratio=np.where(valid, gain, np.nan), speed_ratio=ratio, ratio_random=random,
+                             commanded=agree.astype(float), stiffness_eff=et_eff)
+
+
+class DrawCheck(Stacked):
     """Draw-versus-tension residual of a tension zone bounded by two driven rollers.
 
     Inputs are averaged over ``window`` seconds (the line's ``draw_window``); valid only after
@@ -176,6 +281,7 @@ class DrawCheck:
                                "the configured modulus and nominal caliper, idlers without drag, load cells "
                                "of this zone and the zone upstream reading true")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
+    _batch = _DrawBatch
 
     def __init__(self, object_id: str, *, zone_up: str, roller_up: str, roller_down: str, et: float,
                  modulus_tol: float, ratio_tol: float, t1_acc: tuple[float, float],
@@ -191,7 +297,7 @@ class DrawCheck:
         self.min_speed = min_speed
         self.window_frames = window_frames
         self.commanded_ratio = commanded_ratio
-        self.reset()
+        self._init_slots()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[DrawCheck]:
@@ -213,77 +319,9 @@ class DrawCheck:
                       window_frames=s.frames(s.draw_window), min_speed=s.thread_speed, commanded_ratio=commanded,
                       blames=(*line.zone_blames(z), z.upstream, z.downstream))
 
-    def reset(self) -> None:
-        """Forget the averaging windows (the next window must fill again)."""
-        self._means = [RollingMean(self.window_frames) for _ in range(4)]
-        self._steady = RollingMean(self.window_frames)
-        self._x = RollingMean(self.window_frames)  # speed ratio - 1
-        self._xx = RollingMean(self.window_frames)
-        self._xprev = RollingMean(self.window_frames)  # x_k-1
-        self._xlag = RollingMean(self.window_frames)  # x_k x_k-1
-        self._prev = Lagged(1)
-
-    def _ratio_noise(self, v1: Signal, v2: Signal) -> np.ndarray:
-        """Random uncertainty of the window's mean speed ratio (coverage 2), from its variance and lag-one
-        autocorrelation over the window."""
-        with np.errstate(all="ignore"):
-            x = v2.value / v1.value - 1.0
-        ok = v1.ok & v2.ok & np.isfinite(x)
-        x = np.where(ok, x, 0.0)
-        prev, ok_prev = self._prev.update(x, ok)
-        prev = np.where(ok_prev, prev, 0.0)
-        m, _ = self._x.update(x, ok)
-        m_prev, _ = self._xprev.update(prev, ok_prev)
-        mm, _ = self._xx.update(x * x, ok)
-        ml, _ = self._xlag.update(x * prev, ok & ok_prev)
-        n = self.window_frames
-        with np.errstate(all="ignore"):
-            var = np.maximum(mm - m * m, 0.0) * n / max(n - 1, 1)
-            cov = ml - m * m_prev  # the two means differ by the window's end samples: not m * m
-            r1 = np.where(var > 0, cov / var, 0.0)
-        return mean_ratio_uncertainty(var, r1, n)
-
-    def update(self, block: Block) -> CheckResult:
-        sig = [block.signal(n) for n in self.names]
-        avg = [m.update(s.value, s.ok) for m, s in zip(self._means, sig, strict=True)]
-        (t1, ok1), (t2, ok2), (v1, okv1), (v2, okv2) = avg
-        running = block.line_state == int(LineState.RUNNING)
-        _, steady = self._steady.update(running.astype(float), running)
-        noise = self._ratio_noise(sig[2], sig[3])
-        with np.errstate(invalid="ignore", divide="ignore"):
-            measured = v2 / v1
-        if self.commanded_ratio is not None:
-            r_cmd = self.commanded_ratio
-            with np.errstate(invalid="ignore"):
-                agree = np.abs(measured - r_cmd) <= self.ratio_tol * r_cmd + np.nan_to_num(noise, nan=0.0)
-            ratio = np.where(agree, r_cmd, measured)
-            random = np.where(agree, 0.0, noise)
-        else:
-            agree = np.zeros(block.n, dtype=bool)
-            ratio, random = measured, noise
-        pred = steady_span_tension(t1, 1.0, ratio, self.et)
-        acc1 = self.t1_acc[0] + self.t1_acc[1] * np.abs(t1)
-        acc2 = self.t2_acc[0] + self.t2_acc[1] * np.abs(t2)
-        band = draw_band(t1, 1.0, ratio, self.et, modulus_tol=self.modulus_tol, ratio_tol=self.ratio_tol,
-                         t1_acc=acc1, t2_acc=acc2, ratio_random=random)
-        resid = t2 - pred
-        with np.errstate(invalid="ignore", divide="ignore"):
-            et_eff = (t2 * ratio - t1) / (ratio - 1.0)
-            gain = t2 / pred
-        et_eff = np.where(np.abs(ratio - 1.0) > 1e-4 * np.abs(ratio), et_eff, np.nan)
-        with np.errstate(invalid="ignore"):
-            slack = ~(pred > 0)
-            # the window's means and the rollers now: a long window must not judge a line that has just stopped
-            slow = (np.fmin(v1, v2) <= self.min_speed) | ~(np.fmin(sig[2].value, sig[3].value) > self.min_speed)
-        reason = combine_reasons(
-            (~steady, Reason.LINE_STATE),
-            (~(ok1 & ok2 & okv1 & okv2), Reason.INPUT_BAD),
-            (slow | slack, Reason.OUT_OF_DOMAIN),
-            n=block.n,
-        )
-        with np.errstate(invalid="ignore", divide="ignore"):
-            value = resid / band
-        valid = reason == int(Reason.OK)
-        return finalise(value, reason, residual=resid, band=band, predicted=pred,
-                        ratio=np.where(valid, gain, np.nan), speed_ratio=ratio, ratio_random=random,
-                        commanded=agree.astype(float), stiffness_eff=et_eff)
+    @classmethod
+    def batch(cls, checks: Sequence[DrawCheck]) -> CheckBatch:
+        """All zones' draw checks at once when they share one window (a line's ``draw_window``), else one by one."""
+        if len({c.window_frames for c in checks}) > 1:
+            return OneByOne(checks)
+        return _DrawBatch(checks)

@@ -15,12 +15,13 @@ tension), and the line state says stopped.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import ClassVar
 
 import numpy as np
-from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason, combine_reasons, finalise
+from spanwatch.rules.base import AlarmDefaults, Block, CheckResult, LineState, Reason
 from spanwatch.rules.linemodel import LineModel
+from spanwatch.rules.stacked import Stacked, StackedBatch, column, combine_rows, finalise_rows, signal_rows
 
 SLACK_SHARE = 0.1  # a reading below this share of the setpoint at standstill: the web is slack
 
@@ -44,13 +45,36 @@ DEFAULTS = AlarmDefaults(
 )
 
 
-class TensionZeroCheck:
+class _ZeroBatch(StackedBatch):
+    """The zero of every zone's load cell at once (zones x frames)."""
+
+    def __init__(self, checks: Sequence[TensionZeroCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.signals = [c.signal for c in checks]
+        self.setpoint = column(c.setpoint for c in checks)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        value, ok = signal_rows(block, self.signals)
+        share = value / self.setpoint
+        with np.errstate(invalid="ignore"):
+            tensioned = ~(np.abs(share) < SLACK_SHARE)
+        reason = combine_rows(
+            (block.line_state != int(LineState.STOPPED), Reason.LINE_STATE),
+            (~ok, Reason.INPUT_BAD),
+            (tensioned, Reason.OUT_OF_DOMAIN),
+            shape=value.shape,
+        )
+        return finalise_rows(share, reason)
+
+
+class TensionZeroCheck(Stacked):
     """The zero of one zone's load cell, judged at standstill with the web slack (see the module docstring)."""
 
     kind: ClassVar[str] = "tension_zero"
     rests_on: ClassVar[str] = ("the web is slack at standstill when the reading is below 10 % of the setpoint, so "
                                "the true tension is nil")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
+    _batch = _ZeroBatch
 
     def __init__(self, object_id: str, *, setpoint: float, tag: str, span: str | None) -> None:
         self.object_id = object_id
@@ -65,19 +89,3 @@ class TensionZeroCheck:
         for z in line.zones:
             if z.tension_tag is not None and z.setpoint is not None and z.setpoint > 0:
                 yield cls(z.id, setpoint=z.setpoint, tag=z.tension_tag, span=z.tension_span)
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
-
-    def update(self, block: Block) -> CheckResult:
-        sig = block.signal(self.signal)
-        share = sig.value / self.setpoint
-        with np.errstate(invalid="ignore"):
-            tensioned = ~(np.abs(share) < SLACK_SHARE)
-        reason = combine_reasons(
-            (block.line_state != int(LineState.STOPPED), Reason.LINE_STATE),
-            (~sig.ok, Reason.INPUT_BAD),
-            (tensioned, Reason.OUT_OF_DOMAIN),
-            n=block.n,
-        )
-        return finalise(share, reason)

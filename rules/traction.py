@@ -25,7 +25,7 @@ with the same relation. The safety factor on the capacity is common practice, no
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import ClassVar
 
 import numpy as np
@@ -38,11 +38,18 @@ from spanwatch.rules.base import (
     CheckResult,
     LineState,
     Reason,
-    combine_reasons,
-    finalise,
 )
 from spanwatch.rules.linemodel import LineModel
 from spanwatch.rules.slip import SLIP_DEFAULTS, slip_ratio
+from spanwatch.rules.stacked import (
+    Stacked,
+    StackedBatch,
+    column,
+    combine_rows,
+    finalise_rows,
+    forward_fill_rows,
+    signal_rows,
+)
 from spanwatch.rules.windows import forward_fill_index
 
 UTILISATION_CAP = 1e3
@@ -113,25 +120,26 @@ def demonstrated_cof(t_a: ArrayLike, t_b: ArrayLike, wrap: ArrayLike) -> np.ndar
     return np.where(ok, mu, np.nan)
 
 
-def settled_after_start(t: np.ndarray, stopped: np.ndarray, within: np.ndarray, settle: float,
-                        carried: tuple[bool, float]) -> tuple[np.ndarray, tuple[bool, float]]:
-    """Per frame: has the line settled since it last stood still? And the state to carry to the next block.
+def settled_after_start(t: np.ndarray, stopped: np.ndarray, within: np.ndarray, settle: ArrayLike,
+                        was_settled: np.ndarray, stop_t: np.ndarray) -> np.ndarray:
+    """Per object and frame: has the line settled since it last stood still? ``within`` is objects x frames.
 
     A start ends at the first frame after the last STOPPED frame where ``within`` holds (the
-    tensions have reached their setpoints) or ``settle`` seconds have passed since that stop.
-    ``carried`` is (settled at the end of the previous block, time of its last stopped frame);
-    a check that has never seen the line stop starts settled (it joined a running line).
+    tensions have reached their setpoints) or ``settle`` seconds (a scalar or an objects column) have
+    passed since that stop. ``was_settled`` and ``stop_t`` (one per object, updated in place to carry
+    them to the next block) are: settled at the end of the previous block, time of its last stopped
+    frame; a check that has never seen the line stop starts settled (it joined a running line).
     """
-    was_settled, stop_t = carried
     last_stop = forward_fill_index(stopped)
-    since = np.where(last_stop >= 0, t[np.maximum(last_stop, 0)], stop_t)
+    since = np.where(last_stop >= 0, t[np.maximum(last_stop, 0)], stop_t[:, None])
     with np.errstate(invalid="ignore"):
         cond = ~stopped & (within | (t - since >= settle))
-    last_cond = forward_fill_index(cond)
-    settled = (last_cond > last_stop) | ((last_stop < 0) & was_settled)
-    if t.size == 0:
-        return settled, carried
-    return settled, (bool(settled[-1]), float(since[-1]))
+    last_cond = forward_fill_rows(cond)
+    settled = (last_cond > last_stop) | ((last_stop < 0) & was_settled[:, None])
+    if t.size:
+        was_settled[:] = settled[:, -1]
+        stop_t[:] = since[:, -1]
+    return settled
 
 
 DEFAULTS = AlarmDefaults(
@@ -173,7 +181,94 @@ NO_DRIVE_DEFAULTS = AlarmDefaults(
 )
 
 
-class TractionCheck:
+class _TractionBatch(StackedBatch):
+    """Traction over all driven rollers at once: rollers x frames matrices of their tensions and roller speeds,
+    each roller's parameters as a column; the start-up state is carried per roller (settled, last stop time)."""
+
+    carries: ClassVar[dict[str, float | bool]] = {"settled": True, "stop_t": -np.inf}
+
+    def __init__(self, checks: Sequence[TractionCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.up = [c.t_up for c in checks]
+        self.down = [c.t_down for c in checks]
+        self.vr = [c.roller_speed for c in checks]
+        for name in ("mu", "wrap", "radius", "sigma", "film_factor", "sf", "min_t", "viscosity", "floor", "draw",
+                     "min_speed", "settle"):
+            setattr(self, name, column(getattr(c, name) for c in checks))
+        self.encoder = np.array([c.has_encoder for c in checks]).reshape(-1, 1)
+        # the start-up band around each zone's setpoint range (no range: any tension is within)
+        self.bands = []
+        for side in (0, 1):
+            sps = [(c.setpoints[side], c.band) for c in checks]
+            lo = column(sp[0] * (1.0 - band) if sp is not None else -np.inf for sp, band in sps)
+            hi = column(sp[1] * (1.0 + band) if sp is not None else np.inf for sp, band in sps)
+            free = np.array([sp is None for sp, _ in sps]).reshape(-1, 1)
+            self.bands.append((lo, hi, free))
+        groups: dict[tuple[str, str], list[int]] = {}
+        for i, c in enumerate(checks):
+            groups.setdefault((c.air_model, c.convention), []).append(i)
+        self.air = [(model, conv, slice(None) if len(groups) == 1 else np.array(rows, dtype=np.intp))
+                    for (model, conv), rows in groups.items()]
+
+    def _within_setpoints(self, up: np.ndarray, down: np.ndarray) -> np.ndarray:
+        """Both tensions within the start-up band of their zone's setpoint range (a zone without one: True)."""
+        out = np.ones(up.shape, dtype=bool)
+        for x, (lo, hi, free) in zip((up, down), self.bands, strict=True):
+            with np.errstate(invalid="ignore"):
+                out &= ((x >= lo) & (x <= hi)) | free
+        return out
+
+    def _effective_cof(self, lower: np.ndarray, vw: np.ndarray, vr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """mu_eff and the air film per roller, each group of rollers with the same air-film model together."""
+        if len(self.air) == 1:
+            model, conv, _ = self.air[0]
+            return effective_cof(self.mu, self.radius, lower, vw, vr, self.sigma, viscosity=self.viscosity,
+                                 film_factor=self.film_factor, model=model, convention=conv, floor=self.floor)
+        mu_eff, h = np.empty(lower.shape), np.empty(lower.shape)
+        for model, conv, rows in self.air:
+            mu_eff[rows], h[rows] = effective_cof(
+                self.mu[rows], self.radius[rows], lower[rows], vw, vr[rows], self.sigma[rows],
+                viscosity=self.viscosity[rows], film_factor=self.film_factor[rows], model=model, convention=conv,
+                floor=self.floor[rows])
+        return mu_eff, h
+
+    def update(self, block: Block) -> list[CheckResult]:
+        up, up_ok = signal_rows(block, self.up)
+        down, down_ok = signal_rows(block, self.down)
+        vr, vr_ok = signal_rows(block, self.vr)
+        vw = block.signal("speed/web")
+        lower = np.fmin(up, down)
+        mu_eff, h = self._effective_cof(lower, vw.value, vr)
+        u = traction_utilisation(up, down, mu_eff, self.wrap)
+        mu_shown = demonstrated_cof(up, down, self.wrap)
+        with np.errstate(invalid="ignore"):
+            no_drive = np.fmax(up, down) < self.min_t
+            lifted = (np.asarray(mu_eff) * self.wrap <= 0) & (mu_shown > 0)
+        stopped = block.line_state == int(LineState.STOPPED)
+        slots, rows = self.where()
+        settled = settled_after_start(block.t, stopped, self._within_setpoints(up, down), self.settle,
+                                      slots.a["settled"][rows], slots.a["stop_t"][rows])
+        reason = combine_rows(
+            (stopped | (block.line_state == int(LineState.THREADING)) | ~settled, Reason.LINE_STATE),
+            (~(up_ok & down_ok & vw.ok & vr_ok), Reason.INPUT_BAD),
+            (no_drive | (lower <= 0) | lifted, Reason.OUT_OF_DOMAIN),
+            shape=up.shape,
+        )
+        valid = reason == int(Reason.OK)
+        # a roller without an encoder of its own does not see slip: the bound is reported as if it grips
+        s = np.where(self.encoder, slip_ratio(vr, vw.value, self.draw, self.min_speed), np.nan)
+        with np.errstate(invalid="ignore"):
+            slipping = self.encoder & (np.abs(s) >= SLIPPING)
+        with np.errstate(divide="ignore"):
+            margin = np.where(u > 0, 1.0 / u, np.inf)
+        return finalise_rows(u, reason, mu_eff=mu_eff, air_film=h, utilisation=np.where(valid, u, np.nan),
+                             share_of_safe=np.where(valid, u * self.sf, np.nan), margin=margin,
+                             no_drive=no_drive.astype(float), lifted=lifted.astype(float),
+                             mu_demonstrated=np.where(valid & ~slipping, mu_shown, np.nan),
+                             mu_at_slip=np.where(valid & slipping, mu_shown, np.nan), slip=s)
+
+
+class TractionCheck(Stacked):
     """Streaming traction utilisation of one driven roller: the share of its capacity at the current speed.
 
     Valid while the line moves in production (not stopped, not threading) and, after a start, once
@@ -197,6 +292,7 @@ class TractionCheck:
         "Knox–Sweeney with the configured speed convention, derated against combined roughness; "
         "both load cells read true (a drifting load cell moves the ratio)")
     defaults: ClassVar[AlarmDefaults] = DEFAULTS
+    _batch = _TractionBatch
 
     def __init__(self, object_id: str, *, zone_up: str, zone_down: str, mu: float, wrap: float,
                  radius: float, sigma: float, film_factor: float, safety_factor: float,
@@ -219,7 +315,7 @@ class TractionCheck:
         self.draw, self.min_speed = draw, min_speed
         self.setpoints = setpoints
         self.settle, self.band = startup_settle, startup_band
-        self.reset()
+        self._init_slots()
 
     @classmethod
     def for_line(cls, line: LineModel) -> Iterator[TractionCheck]:
@@ -240,65 +336,36 @@ class TractionCheck:
                       setpoints=(zb.setpoint_range, za.setpoint_range), startup_settle=s.startup_settle,
                       startup_band=s.startup_band, blames=blames)
 
-    def reset(self) -> None:
-        """Forget the start-up state: a check that joins a running line judges it at once."""
-        self._start: tuple[bool, float] = (True, -np.inf)
 
-    def _within_setpoints(self, up: np.ndarray, down: np.ndarray) -> np.ndarray:
-        """Both tensions within the start-up band of their zone's setpoint range (a zone without one: True)."""
-        out = np.ones(up.shape, dtype=bool)
-        for x, sp in zip((up, down), self.setpoints, strict=True):
-            if sp is None:
-                continue
-            lo, hi = sp
-            with np.errstate(invalid="ignore"):
-                out &= (x >= lo * (1.0 - self.band)) & (x <= hi * (1.0 + self.band))
-        return out
+class _NoDriveBatch(StackedBatch):
+    """No-drive flags of all driven rollers at once (rollers x frames)."""
 
-    def update(self, block: Block) -> CheckResult:
-        up, down = block.signal(self.t_up), block.signal(self.t_down)
-        vw, vr = block.signal("speed/web"), block.signal(self.roller_speed)
-        lower = np.fmin(up.value, down.value)
-        mu_eff, h = effective_cof(self.mu, self.radius, lower, vw.value, vr.value, self.sigma,
-                                  viscosity=self.viscosity, film_factor=self.film_factor,
-                                  model=self.air_model, convention=self.convention, floor=self.floor)
-        u = traction_utilisation(up.value, down.value, mu_eff, self.wrap)
-        mu_shown = demonstrated_cof(up.value, down.value, self.wrap)
+    def __init__(self, checks: Sequence[NoDriveCheck], *, alone: bool = False) -> None:
+        super().__init__(checks, alone=alone)
+        self.up, self.down = [c.t_up for c in checks], [c.t_down for c in checks]
+        self.min_t = column(c.min_t for c in checks)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        up, up_ok = signal_rows(block, self.up)
+        down, down_ok = signal_rows(block, self.down)
+        finite = np.isfinite(up) & np.isfinite(down)
         with np.errstate(invalid="ignore"):
-            no_drive = np.fmax(up.value, down.value) < self.min_t
-            lifted = (np.asarray(mu_eff) * self.wrap <= 0) & (mu_shown > 0)
-        stopped = block.line_state == int(LineState.STOPPED)
-        settled, self._start = settled_after_start(block.t, stopped, self._within_setpoints(up.value, down.value),
-                                                   self.settle, self._start)
-        reason = combine_reasons(
-            (stopped | (block.line_state == int(LineState.THREADING)) | ~settled, Reason.LINE_STATE),
-            (~(up.ok & down.ok & vw.ok & vr.ok), Reason.INPUT_BAD),
-            (no_drive | (lower <= 0) | lifted, Reason.OUT_OF_DOMAIN),
-            n=block.n,
+            flag = (np.maximum(up, down) < self.min_t).astype(float)
+        reason = combine_rows(
+            (~block.in_states(PRODUCTION_STATES), Reason.LINE_STATE),
+            (~(up_ok & down_ok & finite), Reason.INPUT_BAD),
+            shape=up.shape,
         )
-        valid = reason == int(Reason.OK)
-        if self.has_encoder:
-            s = slip_ratio(vr.value, vw.value, self.draw, self.min_speed)
-            with np.errstate(invalid="ignore"):
-                slipping = np.abs(s) >= SLIPPING
-        else:  # no encoder of its own: slip is not seen here, the bound is reported as if it grips
-            s = np.full(block.n, np.nan)
-            slipping = np.zeros(block.n, dtype=bool)
-        with np.errstate(divide="ignore"):
-            margin = np.where(u > 0, 1.0 / u, np.inf)
-        return finalise(u, reason, mu_eff=mu_eff, air_film=h, utilisation=np.where(valid, u, np.nan),
-                        share_of_safe=np.where(valid, u * self.sf, np.nan), margin=margin,
-                        no_drive=no_drive.astype(float), lifted=lifted.astype(float),
-                        mu_demonstrated=np.where(valid & ~slipping, mu_shown, np.nan),
-                        mu_at_slip=np.where(valid & slipping, mu_shown, np.nan), slip=s)
+        return finalise_rows(flag, reason)
 
 
-class NoDriveCheck:
+class NoDriveCheck(Stacked):
     """Flag a driven roller whose tensions are both below the minimum drive tension in production."""
 
     kind: ClassVar[str] = "no_drive"
     rests_on: ClassVar[str] = "load cells read true near zero; a driven roller needs tension to transmit drive"
     defaults: ClassVar[AlarmDefaults] = NO_DRIVE_DEFAULTS
+    _batch = _NoDriveBatch
 
     def __init__(self, object_id: str, *, zone_up: str, zone_down: str, min_drive_tension: float,
                  blames: tuple[str, ...] = ()) -> None:
@@ -318,18 +385,3 @@ class NoDriveCheck:
             if zb is not None and za is not None:
                 yield cls(r.id, zone_up=zb.id, zone_down=za.id, min_drive_tension=line.settings.min_drive_tension,
                           blames=tuple(x for x in (r.id, zb.tension_tag, za.tension_tag) if x))
-
-    def reset(self) -> None:
-        """Nothing is carried from one block to the next."""
-
-    def update(self, block: Block) -> CheckResult:
-        up, down = block.signal(self.t_up), block.signal(self.t_down)
-        finite = np.isfinite(up.value) & np.isfinite(down.value)
-        with np.errstate(invalid="ignore"):
-            flag = (np.maximum(up.value, down.value) < self.min_t).astype(float)
-        reason = combine_reasons(
-            (~block.in_states(PRODUCTION_STATES), Reason.LINE_STATE),
-            (~(up.ok & down.ok & finite), Reason.INPUT_BAD),
-            n=block.n,
-        )
-        return finalise(flag, reason)

@@ -18,7 +18,21 @@ from spanwatch.monitor.line import load_line
 from spanwatch.monitor.pipeline import Pipeline
 from spanwatch.monitor.simline import SimulatedLine
 from spanwatch.monitor.simline.scenario import parse_scenario
-from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult, batches_of
+from spanwatch.rules.base import (
+    QUALITY_BAD,
+    QUALITY_NONE,
+    QUALITY_UNCERTAIN,
+    AlarmDefaults,
+    Block,
+    Check,
+    CheckResult,
+    LineState,
+    OneByOne,
+    Reason,
+    Signal,
+    TagFrames,
+    batches_of,
+)
 from spanwatch.rules.catalog import CHECK_CLASSES, CHECK_KINDS, DERIVED_CLASSES, checks_for
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -173,3 +187,122 @@ def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, block
         assert list(a) == list(b)
         for key in a:
             _same_with_extras(a[key], b[key])
+
+
+# Kinds that evaluate all their objects at once; the test above must exercise their batches, not OneByOne.
+STACKED_KINDS = {"tag_range", "tag_quality", "tag_stale", "tag_frozen", "traction", "no_drive", "slip", "idler_lag",
+                 "draw", "tension_zero", "drive_fault"}
+
+
+def test_the_stacked_kinds_are_evaluated_together(line):
+    batches = batches_of(checks_for(line.model))
+    stacked = {b.checks[0].kind for b in batches if not isinstance(b, OneByOne)}
+    assert stacked >= STACKED_KINDS
+
+
+def _faulty(blocks: list[Block]) -> list[Block]:
+    """The fixture's blocks with faults put in by hand, so every stacked kind meets its non-trivial states.
+
+    Tags (columns of ``block.tags``): speed_ref out of range on a stretch of every block, pull_1's speed
+    uncertain and s5's tension bad there, the unwind rpm never sampled (quality 3), the rewind length NaN on a
+    stretch, the idler_5 speed without a new sample from the third block on (its age grows: stale), s8's tension
+    held from the second block on (frozen after its 10 s). The source ``plc`` is silent on a stretch of the fourth
+    block.
+    Signals: the line stops for a stretch of the fifth block with the webs slack (traction restarts, tension
+    zero judged, no drive), pull_2's drive reports a fault and the middle zone's load cell is not usable on a
+    stretch of the sixth.
+    """
+    out = []
+    held = None
+    age0 = None
+    for i, b in enumerate(blocks):
+        names = b.tags.names
+        v, q, age = b.tags.value.copy(), b.tags.quality.copy(), b.tags.age.copy()
+        n = b.n
+        a, z = n // 4, n // 2
+        col = names.index
+        v[a:z, col("q2.line.speed_ref")] = 40.0  # 2400 m/min: beyond its 800 m/min range
+        q[a:z, col("q2.pull_1.speed")] = QUALITY_UNCERTAIN
+        q[a:z, col("q2.s5.tension")] = QUALITY_BAD
+        q[:, col("q2.unwind.rpm")] = QUALITY_NONE
+        v[a:z, col("q2.rewind.length")] = np.nan
+        if i >= 2:
+            age0 = b.t[0] if age0 is None else age0
+            age[:, col("q2.idler_5.speed")] = b.t - age0
+        if i >= 1:
+            held = v[0, col("q2.s8.tension")] if held is None else held
+            v[:, col("q2.s8.tension")] = held
+        signals = dict(b.signals)
+        quiet = np.full(n, 1e3)
+        if i == 3:
+            quiet[a:z] = 0.0
+        signals["source_quiet/plc"] = Signal(quiet, np.ones(n, dtype=bool))
+        state = b.line_state.copy()
+        if i == 4:
+            state[a:z] = int(LineState.STOPPED)
+            for zone in ("unwind-pull_1", "pull_1-pull_2", "pull_2-rewind"):
+                s = signals[f"tension/{zone}"]
+                value = s.value.copy()
+                value[a:z] = 3.0 + i  # slack: a few N/m against setpoints over 100 N/m
+                signals[f"tension/{zone}"] = Signal(value, s.ok)
+        if i == 5:
+            s = signals["tension/pull_1-pull_2"]
+            ok = s.ok.copy()
+            ok[a:z] = False
+            signals["tension/pull_1-pull_2"] = Signal(s.value, ok)
+            word = np.zeros(n)
+            word[a:] = 7.0
+            signals["drive_fault/pull_2"] = Signal(word, np.ones(n, dtype=bool))
+        out.append(Block(t=b.t, signals=signals, line_state=state, tags=TagFrames(names, v, q, age),
+                         roll_start=b.roll_start, roll_settling=b.roll_settling))
+    return out
+
+
+def test_stacked_kinds_answer_as_their_objects_one_by_one_through_faults(line, blocks):
+    # Tags of a live source (the OPC UA example: each tag's source is "plc") and the fault tags of the contract
+    # line; faults placed by hand (see _faulty) must be flagged where they were placed, batch and one by one alike.
+    live = load_line(ROOT / "config" / "quillmere-q2-opcua.toml").model
+    def build():
+        tags = [c for c in checks_for(live) if c.kind.startswith("tag_")]
+        return tags + [c for c in checks_for(line.model) if c.kind in STACKED_KINDS and not c.kind.startswith("tag_")]
+    one, together = build(), build()
+    batches = batches_of(together)
+    assert {b.checks[0].kind for b in batches if isinstance(b, OneByOne)} == set()
+    faulty = _faulty(blocks)
+    seen: dict = {}
+    for i, block in enumerate(faulty):
+        if i == 6:
+            for c in one:
+                c.reset()
+            for b in batches:
+                b.reset()
+        a, b = _one_by_one(one, block), _together(batches, block)
+        assert list(a) == list(b)
+        for key in a:
+            _same_with_extras(a[key], b[key])
+            seen.setdefault(key, []).append(a[key])
+    n = faulty[0].n
+
+    def flagged(kind, obj, i):
+        r = seen[(kind, obj)][i]
+        return np.flatnonzero(r.valid & (r.value == 1.0))
+
+    q = n // 4, n // 2
+    assert flagged("tag_range", "q2.line.speed_ref", 0).tolist() == list(range(*q))
+    assert flagged("tag_quality", "q2.pull_1.speed", 0).tolist() == list(range(*q))
+    assert flagged("tag_quality", "q2.s5.tension", 0).tolist() == list(range(*q))
+    assert flagged("tag_quality", "q2.rewind.length", 0).tolist() == list(range(*q))  # NaN value
+    assert (seen[("tag_quality", "q2.unwind.rpm")][0].reason == int(Reason.INPUT_BAD)).all()  # never sampled
+    stale = seen[("tag_stale", "q2.idler_5.speed")]
+    assert not flagged("tag_stale", "q2.idler_5.speed", 1).size and sum(flagged(
+        "tag_stale", "q2.idler_5.speed", i).size for i in range(2, 6)) > 0
+    assert (stale[3].reason[q[0]:q[1]] == int(Reason.INPUT_BAD)).all()  # the source was silent: its alarm speaks
+    assert not flagged("tag_frozen", "q2.s8.tension", 1).size  # held for less than 10 s yet
+    assert sum(flagged("tag_frozen", "q2.s8.tension", i).size for i in range(2, 6)) > 0
+    assert (seen[("tag_frozen", "q2.s8.tension")][4].reason[q[0]:q[1]] == int(Reason.LINE_STATE)).all()
+    zero = seen[("tension_zero", "pull_1-pull_2")][4]
+    assert zero.valid[q[0]:q[1]].all() and not zero.valid[:q[0]].any()
+    assert flagged("no_drive", "pull_1", 4).size == 0  # stopped: not judged
+    assert flagged("drive_fault", "pull_2", 5).tolist() == list(range(q[0], n))
+    assert (seen[("traction", "pull_1")][5].reason[q[0]:q[1]] == int(Reason.INPUT_BAD)).all()
+    assert (seen[("traction", "pull_1")][4].reason[q[0]:q[1]] == int(Reason.LINE_STATE)).all()

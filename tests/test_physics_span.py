@@ -19,7 +19,7 @@ from hostile import ANY_FLOAT, any_array, no_runtime_warning, special_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
-from spanwatch.rules.base import Block, LineState, Reason, Signal, TagFrames
+from spanwatch.rules.base import Block, LineState, OneByOne, Reason, Signal, TagFrames
 from spanwatch.rules.span import (
     DrawCheck,
     draw_band,
@@ -337,3 +337,63 @@ def test_draw_check_slack_span_is_out_of_domain():
     res = _draw_check().update(_draw_block(n, 100.0, 0.0, 5.0, 4.95))
     assert np.all(res.reason[499:] == int(Reason.OUT_OF_DOMAIN))
     assert np.all(np.isnan(res.value))
+
+
+def test_draw_checks_of_several_zones_evaluated_together_answer_as_each_alone():
+    # Three zones in a row (a commanded draw the encoders follow, a free one, a commanded one the drive does not
+    # hold), noisy encoders, an unusable load cell and a stop, blocks shorter and longer than the window, a reset:
+    # the zones evaluated together (DrawCheck.batch) answer exactly as each check alone.
+    rng = np.random.default_rng(5)
+    r = (1.001064, 1.0008, 1.0012)
+    t = [105.0]
+    for x in r:
+        t.append(exact_steady(t[-1], x))
+
+    def checks():
+        cmd = (r[0], None, r[2] / 1.005)
+        return [DrawCheck(z, zone_up=u, roller_up=f"r{i + 1}", roller_down=f"r{i + 2}", et=ET, modulus_tol=0.15,
+                          ratio_tol=1e-4, t1_acc=(3.0, 0.01 * i), t2_acc=(3.0, 0.0), window_frames=250, min_speed=0.3,
+                          commanded_ratio=cmd[i])
+                for i, (u, z) in enumerate((("a", "b"), ("b", "c"), ("c", "d")))]
+
+    def block(n, t0, stop=False, bad=False):
+        ok = np.ones(n, dtype=bool)
+        v = 5.0 * np.cumprod((1.0, *r))
+        sig = {f"tension/{z}": Signal(t[i] * (1 + 1e-3 * rng.standard_normal(n)), ok)
+               for i, z in enumerate("abcd")}
+        sig |= {f"speed/r{i + 1}": Signal(v[i] * (1 + 2e-5 * rng.standard_normal(n)), ok) for i in range(4)}
+        state = np.full(n, int(LineState.RUNNING), dtype=np.int8)
+        if stop:
+            state[n // 3: n // 2] = int(LineState.STOPPED)
+        if bad:
+            nok = ok.copy()
+            nok[n // 4: n // 3] = False
+            sig["tension/c"] = Signal(np.where(nok, sig["tension/c"].value, np.nan), nok)
+        tags = TagFrames(("x",), np.zeros((n, 1)), np.zeros((n, 1), dtype=np.int8), np.zeros((n, 1)))
+        return Block(t=t0 + np.arange(n) / 50.0, signals=sig, line_state=state, tags=tags)
+
+    alone, together = checks(), checks()
+    batch = DrawCheck.batch(together)
+    assert not isinstance(batch, OneByOne)
+    t0, valid = 0.0, 0
+    for i, (n, stop, bad) in enumerate(((300, False, False), (120, False, True), (700, True, False), (40, False, False),
+                                        (600, False, False), (400, False, True))):
+        if i == 4:
+            batch.reset()
+            for c in alone:
+                c.reset()
+        b = block(n, t0, stop, bad)
+        t0 += n / 50.0
+        for c, got in zip(alone, batch.update(b), strict=True):
+            want = c.update(b)
+            np.testing.assert_array_equal(got.reason, want.reason)
+            np.testing.assert_array_equal(got.value, want.value)
+            assert set(got.extras) == set(want.extras)
+            for name in want.extras:
+                np.testing.assert_array_equal(got.extras[name], want.extras[name], err_msg=name)
+            valid += int(want.valid.sum())
+            if c.object_id == "b" and want.valid.any():  # the encoders follow the command: it is used
+                assert np.all(want.extras["commanded"][want.valid] == 1.0)
+            if c.object_id == "d" and want.valid.any():  # the drive does not hold the command: the encoders are
+                assert np.all(want.extras["commanded"][want.valid] == 0.0)
+    assert valid > 1000
