@@ -106,7 +106,10 @@ def make_recording(path: Path, config: Path, hours: int) -> None:
 
     sc, cfg = parse_scenario(scenario_data(config, hours), ROOT / "config" / "scenarios" / "bench.toml")
     t = time.perf_counter()
-    rows, _ = simulate_to_file(SimulatedLine(load_line(cfg), sc), path, time_format="iso", progress=False)
+    part = path.with_name(path.name.replace(".csv.gz", ".part.csv.gz"))
+    rows, truth = simulate_to_file(SimulatedLine(load_line(cfg), sc), part, time_format="iso", progress=False)
+    part.rename(path)  # a cut run leaves no recording that looks whole
+    truth.unlink(missing_ok=True)
     print(f"simulated {hours} h of {config.name}: {rows:,} samples in {time.perf_counter() - t:.0f} s -> {path} "
           f"({path.stat().st_size / 1e6:.1f} MB)", flush=True)
 
