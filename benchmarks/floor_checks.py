@@ -19,6 +19,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
 from spanwatch.monitor.line import Line
 from spanwatch.rules.airfilm import combined_roughness, effective_cof
 from spanwatch.rules.alarms import severity
@@ -43,9 +44,12 @@ _MOVING = (int(LineState.THREADING), *_PRODUCTION)
 
 
 def read_fast(path: str, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """(t epoch s, tag column in ``names`` (-1 unknown), value, quality code) of every row, read by pyarrow's CSV
-    reader on one thread: the time parsed as a UTC timestamp (ISO 8601) or a float (epoch s), the tag and quality
-    as dictionaries (their few distinct words mapped once), the value as float64."""
+    """(t epoch s, tag column in ``names`` (-1 unknown), value, quality code) of every row: a Parquet recording
+    (``.parquet``, the same columns) by pyarrow's Parquet reader, a CSV one by pyarrow's CSV reader, on one
+    thread: the time parsed as a UTC timestamp (ISO 8601) or a float (epoch s), the tag and quality as
+    dictionaries (their few distinct words mapped once), the value as float64."""
+    if str(path).endswith(".parquet"):
+        return _table_columns(pq.read_table(path, use_threads=False), names)
     opener = gzip.open if str(path).endswith(".gz") else open
     with opener(path, "rb") as f:
         first = f.readline()
@@ -62,11 +66,22 @@ def read_fast(path: str, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray
         types["quality"] = pa.dictionary(pa.int32(), pa.string())
     table = pacsv.read_csv(path, read_options=pacsv.ReadOptions(use_threads=False, block_size=16 << 20),
                            convert_options=pacsv.ConvertOptions(column_types=types, strings_can_be_null=False))
+    return _table_columns(table, names)
+
+
+def _table_columns(table: pa.Table, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The columns of a recording read as a table (CSV or Parquet): time as epoch s, tag and quality as codes."""
     tcol = table.column("time")
-    t = tcol.to_numpy() if t_type == pa.float64() else pc.cast(tcol, pa.int64()).to_numpy() * 1e-6
+    if pa.types.is_timestamp(tcol.type):
+        unit = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}[tcol.type.unit]
+        t = pc.cast(tcol, pa.int64()).to_numpy() * unit
+    else:
+        t = pc.cast(tcol, pa.float64()).to_numpy()
     index = {n: i for i, n in enumerate(names)}
 
     def codes(col: pa.ChunkedArray, lut_of: object) -> np.ndarray:
+        if not pa.types.is_dictionary(col.type):
+            col = pc.dictionary_encode(col)
         parts = []
         for chunk in col.chunks:
             lut = np.array([lut_of(w) for w in chunk.dictionary.to_pylist()], dtype=np.int64)  # type: ignore[operator]
@@ -74,11 +89,13 @@ def read_fast(path: str, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray
         return np.concatenate(parts) if parts else np.zeros(0, np.int64)
 
     tag = codes(table.column("tag"), lambda w: index.get(w, -1))
-    value = table.column("value").to_numpy()
-    if "quality" in columns:
-        quality = codes(table.column("quality"), lambda w: _QUALITY.get(w.strip().lower(), 2)).astype(np.int8)
-    else:
+    value = pc.cast(table.column("value"), pa.float64()).to_numpy()
+    if "quality" not in table.column_names:
         quality = np.zeros(t.size, np.int8)
+    elif pa.types.is_integer(table.column("quality").type):
+        quality = table.column("quality").to_numpy().astype(np.int8)
+    else:
+        quality = codes(table.column("quality"), lambda w: _QUALITY.get(str(w).strip().lower(), 2)).astype(np.int8)
     return t, tag, value, quality
 
 

@@ -3,6 +3,7 @@
 Usage::
 
     python benchmarks/replay_floor.py [--line q2|big] [--keep DIR]     # floor and replay, side by side
+    python benchmarks/replay_floor.py --recording FILE                  # the same on another recording of line Q2
     python benchmarks/replay_floor.py --scaling 1 4 16 [--keep DIR]     # replay of 1 h, 4 h, 16 h of line Q2
     python benchmarks/replay_floor.py --sweep 20 [--keep DIR]           # 20 traction warning limits vs one replay
 
@@ -315,6 +316,8 @@ def main() -> None:
     ap.add_argument("--scaling", type=int, nargs="*", help="hours of line Q2 to replay, e.g. 1 4 16")
     ap.add_argument("--sweep", type=int, default=0, help="number of traction warning limits to sweep")
     ap.add_argument("--repeats", type=int, default=46, help="--line big: middle sections (46: 150 tags)")
+    ap.add_argument("--recording", type=Path, default=None,
+                    help="--line q2: another recording of line Q2 (a Parquet one, once replay reads it)")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
@@ -352,7 +355,7 @@ def main() -> None:
             print(f"  {setting:.3f} x configured: {raises} raises, {t_alarm:.0f} s in alarm")
         return
     if args.line == "q2":
-        floor_vs_replay(CONFIG, q2(1), work, "q2")
+        floor_vs_replay(CONFIG, args.recording or q2(1), work, "q2")
         return
     config = big_line(work / f"big-x{args.repeats}.toml", args.repeats)
     rec = work / f"big-x{args.repeats}-60min.csv.gz"
