@@ -116,12 +116,14 @@ def align(line: Line, names: tuple[str, ...], t: np.ndarray, tag: np.ndarray, va
     keep = tag >= 0
     t, tag, value, quality = t[keep], tag[keep], value[keep], quality[keep]
     grid = np.arange(np.ceil(t.min() * rate), np.floor(t.max() * rate) + 1) / rate
-    order = np.argsort(tag, kind="stable")  # a counting sort on small ints; rows of a tag keep their time order
-    bounds = np.searchsorted(tag[order], np.arange(len(names) + 1))
+    small = tag.astype(np.int16) if len(names) < 2**15 else tag
+    order = np.argsort(small, kind="stable")  # radix sort on 16-bit codes; rows of a tag keep their time order
+    bounds = np.searchsorted(small[order], np.arange(len(names) + 1))
     n, k = grid.size, len(names)
-    out_v = np.full((n, k), np.nan)
-    out_q = np.full((n, k), 3, dtype=np.int8)
-    out_a = np.full((n, k), np.inf)
+    # column-major: a tag's frames are contiguous (filled tag by tag, read tag by tag by the per-object checks)
+    out_v = np.full((n, k), np.nan, order="F")
+    out_q = np.full((n, k), 3, dtype=np.int8, order="F")
+    out_a = np.full((n, k), np.inf, order="F")
     for c, name in enumerate(names):
         sel = order[bounds[c]:bounds[c + 1]]
         if sel.size == 0:
@@ -178,6 +180,15 @@ class Context:
     state: np.ndarray
     roll_start: dict[str, np.ndarray] = field(default_factory=dict)
     settling: dict[str, np.ndarray] = field(default_factory=dict)
+    matrix: tuple[np.ndarray, np.ndarray, dict[str, int]] | None = None  # (values, usable, column of each signal)
+
+    def m(self, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+        """The named signals as (frames, len(names)) matrices of values and usable flags (one gather)."""
+        if self.matrix is not None and all(n in self.matrix[2] for n in names):
+            idx = [self.matrix[2][n] for n in names]
+            return self.matrix[0][:, idx], self.matrix[1][:, idx]
+        got = [self.s(n) for n in names]
+        return np.stack([v for v, _ in got], axis=1), np.stack([o for _, o in got], axis=1)
 
     def s(self, name: str) -> tuple[np.ndarray, np.ndarray]:
         got = self.sig.get(name)
@@ -197,7 +208,11 @@ def context(line: Line, names: tuple[str, ...], fr: Frames) -> Context:
     with np.errstate(invalid="ignore"):
         usable = (np.isfinite(fr.value) & (fr.quality == 0) & (fr.age <= stale) & (fr.value >= low)
                   & (fr.value <= high))
-    sig = {s.name: (fr.value[:, col[s.tag]] * s.factor, usable[:, col[s.tag]]) for s in line.signals if s.tag in col}
+    specs = [sp for sp in line.signals if sp.tag in col]
+    cols = [col[sp.tag] for sp in specs]
+    values = np.asfortranarray(fr.value[:, cols] * np.array([sp.factor for sp in specs]))
+    oks = np.asfortranarray(usable[:, cols])
+    sig = {sp.name: (values[:, i], oks[:, i]) for i, sp in enumerate(specs)}
     for name in line.computed_signals:
         w = name.split("/", 1)[1]
         if f"rotation/{w}" in sig and "speed/web" in sig:
@@ -221,7 +236,7 @@ def context(line: Line, names: tuple[str, ...], fr: Frames) -> Context:
     idx = ffill_index((state == _STOPPED) | (state == _THREADING))
     state[(state == _RUNNING) & (idx >= 0) & (t - t[np.maximum(idx, 0)] < lw.settle_time)] = \
         int(LineState.ACCELERATING)
-    ctx = Context(t, sig, state)
+    ctx = Context(t, sig, state, matrix=(values, oks, {sp.name: i for i, sp in enumerate(specs)}))
     for w in line.model.winders_in_path:
         d, okd = ctx.s(f"diameter/{w.id}")
         dd = np.where(okd, d, np.nan)
@@ -259,13 +274,9 @@ def physics_checks(line: Line, ctx: Context, extras: dict[tuple[str, ...], np.nd
     rolls = [(r, m.zone_before(r.id), m.zone_after(r.id)) for r in m.driven_rollers]
     rolls = [(r, a, b) for r, a, b in rolls if a is not None and b is not None]
     if rolls:
-        up = np.stack([ctx.s(f"tension/{a.id}")[0] for _, a, _ in rolls], axis=1)
-        ok_up = np.stack([ctx.s(f"tension/{a.id}")[1] for _, a, _ in rolls], axis=1)
-        dn = np.stack([ctx.s(f"tension/{b.id}")[0] for _, _, b in rolls], axis=1)
-        ok_dn = np.stack([ctx.s(f"tension/{b.id}")[1] for _, _, b in rolls], axis=1)
-        names = [f"speed/{r.id}" if m.has_signal(f"speed/{r.id}") else "speed/web" for r, _, _ in rolls]
-        vr = np.stack([ctx.s(x)[0] for x in names], axis=1)
-        ok_vr = np.stack([ctx.s(x)[1] for x in names], axis=1)
+        up, ok_up = ctx.m([f"tension/{a.id}" for _, a, _ in rolls])
+        dn, ok_dn = ctx.m([f"tension/{b.id}" for _, _, b in rolls])
+        vr, ok_vr = ctx.m([f"speed/{r.id}" if m.has_signal(f"speed/{r.id}") else "speed/web" for r, _, _ in rolls])
         mu = np.array([r.cof for r, _, _ in rolls])
         wrap = np.array([r.wrap for r, _, _ in rolls])
         sigma = combined_roughness(mat.roughness, np.array([r.roughness for r, _, _ in rolls]))
@@ -293,8 +304,7 @@ def physics_checks(line: Line, ctx: Context, extras: dict[tuple[str, ...], np.nd
     # slip and idler lag: all rollers with an encoder at once
     enc = [r for r in m.rollers_in_path if r.has_encoder and r.id != s.web_speed_from]
     if enc:
-        vr = np.stack([ctx.s(f"speed/{r.id}")[0] for r in enc], axis=1)
-        ok_vr = np.stack([ctx.s(f"speed/{r.id}")[1] for r in enc], axis=1)
+        vr, ok_vr = ctx.m([f"speed/{r.id}" for r in enc])
         draw = np.array([r.draw if r.driven else 0.0 for r in enc])
         sr = slip_ratio(vr, vw[:, None], draw, s.thread_speed)
         valid = running[:, None] & ok_vr & okw[:, None] & (np.abs(vw) > s.thread_speed)[:, None] & np.isfinite(sr)
@@ -303,8 +313,9 @@ def physics_checks(line: Line, ctx: Context, extras: dict[tuple[str, ...], np.nd
             val = sr[:, i] if r.driven else -sr[:, i]
             out[(kind, r.id)] = (val, valid[:, i])
             extras[(kind, r.id, "value")] = np.where(valid[:, i], val, np.nan)
-    # draw: zones between two driven rollers with load cells in and upstream of them
+    # draw: zones between two driven rollers with load cells in and upstream of them, all at once (frames, zones)
     wdraw = s.frames(s.draw_window)
+    zs = []
     for z in m.zones:
         if m.is_winder(z.upstream) or m.is_winder(z.downstream) or z.tension_tag is None:
             continue
@@ -312,44 +323,51 @@ def physics_checks(line: Line, ctx: Context, extras: dict[tuple[str, ...], np.nd
         if zb is None or zb.tension_tag is None or not (m.has_signal(f"speed/{z.upstream}")
                                                         and m.has_signal(f"speed/{z.downstream}")):
             continue
-        r1, r2 = m.rollers[z.upstream], m.rollers[z.downstream]
-        cmd = (1.0 + r2.draw) / (1.0 + r1.draw) if (r1.draw_configured or r2.draw_configured) else None
-        raw = [ctx.s(x) for x in (f"tension/{zb.id}", f"tension/{z.id}", f"speed/{z.upstream}",
-                                  f"speed/{z.downstream}")]
-        (t1, t2, v1, v2), oks = _means3(tuple(x for x, _ in raw), tuple(o for _, o in raw), wdraw)
+        zs.append((z, zb))
+    if zs:
+        r1s, r2s = [m.rollers[z.upstream] for z, _ in zs], [m.rollers[z.downstream] for z, _ in zs]
+        cmd = np.array([(1.0 + r2.draw) / (1.0 + r1.draw) if (r1.draw_configured or r2.draw_configured) else np.nan
+                        for r1, r2 in zip(r1s, r2s, strict=True)])
+        raw1, ok1 = ctx.m([f"tension/{zb.id}" for _, zb in zs])
+        raw2, ok2 = ctx.m([f"tension/{z.id}" for z, _ in zs])
+        rv1, okv1 = ctx.m([f"speed/{z.upstream}" for z, _ in zs])
+        rv2, okv2 = ctx.m([f"speed/{z.downstream}" for z, _ in zs])
+        (t1, f1), (t2, f2) = rolling_mean(raw1, ok1, wdraw), rolling_mean(raw2, ok2, wdraw)
+        (v1, g1), (v2, g2) = rolling_mean(rv1, okv1, wdraw), rolling_mean(rv2, okv2, wdraw)
         _, steady = rolling_mean(running.astype(float), running, wdraw)
         with np.errstate(all="ignore"):
-            x = raw[3][0] / raw[2][0] - 1.0
-        okx = raw[2][1] & raw[3][1] & np.isfinite(x)
+            x = rv2 / rv1 - 1.0
+        okx = okv1 & okv2 & np.isfinite(x)
         x = np.where(okx, x, 0.0)
         mx = rolling_mean(x, okx, wdraw)[0]
         mxx = rolling_mean(x * x, okx, wdraw)[0]
-        prev = np.r_[0.0, x[:-1]]
-        mxl = rolling_mean(x * prev, okx & np.r_[False, okx[:-1]], wdraw)[0]
+        prev = np.vstack([np.zeros((1, x.shape[1])), x[:-1]])
+        okp = np.vstack([np.zeros((1, x.shape[1]), bool), okx[:-1]])
+        mxl = rolling_mean(x * prev, okx & okp, wdraw)[0]
         with np.errstate(all="ignore"):
             var = np.maximum(mxx - mx * mx, 0.0) * wdraw / max(wdraw - 1, 1)
             r1c = np.where(var > 0, (mxl - mx * mx) / var, 0.0)
             noise = mean_ratio_uncertainty(var, r1c, wdraw)
             measured = v2 / v1
-        if cmd is not None:
-            with np.errstate(invalid="ignore"):
-                agree = np.abs(measured - cmd) <= s.encoder_ratio_tolerance * cmd + np.nan_to_num(noise, nan=0.0)
-            ratio, rnd = np.where(agree, cmd, measured), np.where(agree, 0.0, noise)
-        else:
-            ratio, rnd = measured, noise
+            agree = np.isfinite(cmd) & (np.abs(measured - cmd) <= s.encoder_ratio_tolerance * cmd
+                                        + np.nan_to_num(noise, nan=0.0))
+        ratio, rnd = np.where(agree, cmd, measured), np.where(agree, 0.0, noise)
         et = mat.modulus * mat.caliper
+        acc1 = np.array([zb.tension_accuracy for _, zb in zs])
+        acc2 = np.array([z.tension_accuracy for z, _ in zs])
         pred = steady_span_tension(t1, 1.0, ratio, et)
         band = draw_band(t1, 1.0, ratio, et, modulus_tol=mat.modulus_tolerance, ratio_tol=s.encoder_ratio_tolerance,
-                         t1_acc=zb.tension_accuracy[0] + zb.tension_accuracy[1] * np.abs(t1),
-                         t2_acc=z.tension_accuracy[0] + z.tension_accuracy[1] * np.abs(t2), ratio_random=rnd)
+                         t1_acc=acc1[:, 0] + acc1[:, 1] * np.abs(t1), t2_acc=acc2[:, 0] + acc2[:, 1] * np.abs(t2),
+                         ratio_random=rnd)
         with np.errstate(all="ignore"):
             value = (t2 - pred) / band
-            slow = (np.fmin(v1, v2) <= s.thread_speed) | ~(np.fmin(raw[2][0], raw[3][0]) > s.thread_speed)
-            valid = steady & oks & ~slow & (pred > 0) & np.isfinite(value)
+            slow = (np.fmin(v1, v2) <= s.thread_speed) | ~(np.fmin(rv1, rv2) > s.thread_speed)
+            valid = steady[:, None] & f1 & f2 & g1 & g2 & ~slow & (pred > 0) & np.isfinite(value)
             gain = t2 / pred
-        out[("draw", z.id)] = (value, valid)
-        extras[("draw", z.id, "residual")] = np.where(valid, t2 - pred, np.nan)
-        extras[("draw", z.id, "ratio")] = np.where(valid, gain, np.nan)
+        for i, (z, _) in enumerate(zs):
+            out[("draw", z.id)] = (value[:, i], valid[:, i])
+            extras[("draw", z.id, "residual")] = np.where(valid[:, i], t2[:, i] - pred[:, i], np.nan)
+            extras[("draw", z.id, "ratio")] = np.where(valid[:, i], gain[:, i], np.nan)
     # tension zero: every zone with a load cell and a setpoint
     stopped = ctx.state == _STOPPED
     for z in m.zones:
@@ -594,7 +612,7 @@ def drift_checks(line: Line, ctx: Context, objects: list[str], extras: dict) -> 
             hi = cu - np.minimum(np.minimum.accumulate(cu), 0.0)
             lo = cl - np.minimum(np.minimum.accumulate(cl), 0.0)
             stat[good, j] = np.maximum(hi, lo) / h
-    frame_stat = np.full((n, len(objects)), np.nan)
+    frame_stat = np.full((n, len(objects)), np.nan, order="F")
     frame_stat[per: (nb + 1) * per] = np.repeat(stat, per, axis=0)[: n - per]
     for j, obj in enumerate(objects):
         out[("drift", obj)] = (frame_stat[:, j], running & np.isfinite(frame_stat[:, j]))
@@ -613,9 +631,8 @@ def _cut(segments: list[tuple[int, int, float, bool]], at: np.ndarray) -> list[t
 
 def alarm_pass(t: np.ndarray, results: dict[tuple[str, str], Result], points: list) -> tuple[int, dict[str, int]]:
     """Threshold and on-delay over every alarm point (no deadband, off-delay, chattering or first-out): a raise
-    where a run of valid frames beyond the limit first lasts the on-delay."""
+    where a run of valid frames beyond the limit lasts the on-delay (the runs' starts and ends from one ``diff``)."""
     raised: dict[str, int] = {}
-    total = 0
     for p in points:
         res = results.get((p.kind, p.object_id))
         if res is None:
@@ -626,11 +643,9 @@ def alarm_pass(t: np.ndarray, results: dict[tuple[str, str], Result], points: li
             beyond = valid & (severity(value, p.direction) >= limit)
         if not beyond.any():
             continue
-        edges = np.flatnonzero(np.diff(np.r_[0, beyond.astype(np.int8), 0]))
+        edges = np.flatnonzero(np.diff(np.r_[np.int8(0), beyond.astype(np.int8), np.int8(0)]))
         begin, end = edges[0::2], edges[1::2] - 1
-        ready = t[end] - t[begin] >= p.on_delay - 1e-9
-        c = int(ready.sum())
+        c = int((t[end] - t[begin] >= p.on_delay - 1e-9).sum())
         if c:
             raised[p.kind] = raised.get(p.kind, 0) + c
-            total += c
-    return total, raised
+    return sum(raised.values()), raised
