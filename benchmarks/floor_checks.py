@@ -84,9 +84,12 @@ def _table_columns(table: pa.Table, names: tuple[str, ...]) -> tuple[np.ndarray,
             col = pc.dictionary_encode(col)
         parts = []
         for chunk in col.chunks:
-            lut = np.array([lut_of(w) for w in chunk.dictionary.to_pylist()], dtype=np.int64)  # type: ignore[operator]
-            parts.append(lut[chunk.indices.to_numpy(zero_copy_only=False)])
-        return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+            lut = np.array([lut_of(w) for w in chunk.dictionary.to_pylist()], dtype=np.int16)  # type: ignore[operator]
+            if lut.size and (lut == lut[0]).all():  # one word in this chunk (quality "good" throughout)
+                parts.append(np.full(len(chunk), lut[0], np.int16))
+            else:
+                parts.append(lut[chunk.indices.to_numpy(zero_copy_only=False)])
+        return np.concatenate(parts) if parts else np.zeros(0, np.int16)
 
     tag = codes(table.column("tag"), lambda w: index.get(w, -1))
     value = pc.cast(table.column("value"), pa.float64()).to_numpy()
@@ -114,9 +117,10 @@ def align(line: Line, names: tuple[str, ...], t: np.ndarray, tag: np.ndarray, va
     """Sample-and-hold of every tag onto the line's frame grid in one pass (``searchsorted`` per tag)."""
     rate = line.config.line.frame_rate
     keep = tag >= 0
-    t, tag, value, quality = t[keep], tag[keep], value[keep], quality[keep]
+    if not keep.all():
+        t, tag, value, quality = t[keep], tag[keep], value[keep], quality[keep]
     grid = np.arange(np.ceil(t.min() * rate), np.floor(t.max() * rate) + 1) / rate
-    small = tag.astype(np.int16) if len(names) < 2**15 else tag
+    small = tag.astype(np.int16, copy=False)
     order = np.argsort(small, kind="stable")  # radix sort on 16-bit codes; rows of a tag keep their time order
     bounds = np.searchsorted(small[order], np.arange(len(names) + 1))
     n, k = grid.size, len(names)
@@ -152,15 +156,17 @@ def ffill_index(mask: np.ndarray) -> np.ndarray:
 
 
 def rolling_mean(x: np.ndarray, ok: np.ndarray, w: int) -> tuple[np.ndarray, np.ndarray]:
-    """Mean over the last ``w`` frames (cumulative sums), usable where all ``w`` were usable."""
-    xs = np.where(ok, x, 0.0)
-    c = np.concatenate([np.zeros((1, *x.shape[1:])), np.cumsum(xs, axis=0)])
-    b = np.concatenate([np.zeros((1, *x.shape[1:]), np.int64), np.cumsum(~ok, axis=0)])
-    n = x.shape[0]
-    lo = np.maximum(np.arange(n) + 1 - w, 0)
-    hi = np.arange(1, n + 1)
-    mean = (c[hi] - c[lo]) / w
-    full = (hi - lo == w).reshape((-1,) + (1,) * (x.ndim - 1)) & (b[hi] - b[lo] == 0)
+    """Mean over the last ``w`` frames (differences of cumulative sums, by slices), usable where all ``w`` were
+    usable; the first ``w - 1`` frames are not (the window is not full)."""
+    c = np.cumsum(np.where(ok, x, 0.0), axis=0)
+    b = np.cumsum(~ok, axis=0, dtype=np.int32)
+    mean = np.full(x.shape, np.nan)
+    full = np.zeros(x.shape, bool)
+    if x.shape[0] >= w:
+        mean[w - 1] = c[w - 1] / w
+        mean[w:] = (c[w:] - c[:-w]) / w
+        full[w - 1] = b[w - 1] == 0
+        full[w:] = (b[w:] - b[:-w]) == 0
     return mean, full
 
 
@@ -558,16 +564,18 @@ def drift_checks(line: Line, ctx: Context, objects: list[str], extras: dict) -> 
     n = ctx.t.size
     nb = n // per
     running = ctx.state == _RUNNING
-    xs, residuals = [], []
-    for obj in objects:
-        r = residual_of(obj)
-        residuals.append(r)
+    residuals = [residual_of(obj) for obj in objects]
+    bm = np.full((nb, len(objects)), np.nan)  # batch means (batches, detectors); a batch needs half its frames
+    run_b = running[: nb * per].reshape(nb, per)
+    for j, (obj, r) in enumerate(zip(objects, residuals, strict=True)):
         x = extras.get((r.source, obj[len(r.name) + 1:], r.field)) if r is not None else None
-        xs.append(np.where(running, x, np.nan) if x is not None else np.full(n, np.nan))
-    x = np.stack(xs, axis=1)[: nb * per].reshape(nb, per, len(objects))
-    okc = np.isfinite(x).sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        bm = np.where(okc >= per / 2, np.nansum(x, axis=1) / okc, np.nan)  # (batches, detectors)
+        if x is None:
+            continue
+        xb = x[: nb * per].reshape(nb, per)
+        ok = run_b & np.isfinite(xb)
+        cnt = ok.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            bm[:, j] = np.where(cnt >= per / 2, np.where(ok, xb, 0.0).sum(axis=1) / cnt, np.nan)
     k, h = design_cusum(d.shift, arl0_for(d.false_alarm_interval, d.period, len(objects)))
     learn = max(20, round(d.learn / d.period))
     # operating points: runs of batches whose mean line speed stays within the speed band of the run's first
