@@ -48,8 +48,9 @@ alarms, history) against the floor's read + align + checks + alarms; both whole-
 load-cell idler and a driven pull roll, with its zone) repeated until the line has about 150 tags; simulated with
 the project's simulator for one hour of the same scenario.
 
-**The sweep** (``--sweep N``): ``spanwatch.monitor.sweep.sweep`` of the traction warning limit at N settings
-(0.5 to 1.2 times the configured limits) over the benchmark hour, against one replay in the same run.
+**The sweep** (``--sweep N``): ``spanwatch.monitor.sweep`` (one pass keeping the traction results, then the alarm
+engine per setting) of the traction warning limit of both pull rolls at N settings from 0.30 to 0.95 of the
+capacity over the benchmark hour, against one replay in the same run.
 
 Targets (issue 11): replay within 1.5x of the floor on line Q2 and at least 2,000x real time; within 2x on the
 150-tag line; linear time and flat memory from 1 h to 16 h; a sweep of 20 limits at most 3x one replay.
@@ -269,8 +270,8 @@ def child_sweep(config: str, recording: str, count: str) -> dict:
     t0 = time.perf_counter()
     kept = keep_results(line, recording, "traction")
     t1 = time.perf_counter()
-    settings = np.linspace(0.5, 1.2, int(count))
-    res = [evaluate_setting(kept, line, float(x), level="warning", relative=True) for x in settings]
+    settings = np.linspace(0.30, 0.95, int(count))  # warning limit, share of the capacity, on both pull rolls
+    res = [evaluate_setting(kept, line, float(x), level="warning") for x in settings]
     t2 = time.perf_counter()
     return {"keep": t1 - t0, "settings": t2 - t1, "wall": t2 - t0, "frames": kept.frames,
             "table": [(r.setting, r.raises, r.time_in_alarm) for r in res], "peak_mb": _peak_mb()}
@@ -354,7 +355,7 @@ def main() -> None:
               f"{args.sweep} alarm-engine runs {s['settings']:.2f} s = {s['wall']:.2f} s (whole process "
               f"{s_wall:.2f} s, peak RSS {s['peak_mb']:.0f} MB) = {s['wall'] / r['wall']:.2f}x one replay; {load()}")
         for setting, raises, t_alarm in s["table"]:
-            print(f"  {setting:.3f} x configured: {raises} raises, {t_alarm:.0f} s in alarm")
+            print(f"  traction warning at {setting:.3f} of capacity: {raises} raises, {t_alarm:.0f} s in alarm")
         return
     if args.line == "q2":
         floor_vs_replay(CONFIG, args.recording or q2(1), work, "q2")
