@@ -309,7 +309,10 @@ def floor_vs_replay(config: Path, rec: Path, work: Path, label: str) -> None:
           f"({r['seconds_of_data'] / r['wall']:,.0f}x real time, {r['samples'] / r['wall']:,.0f} samples/s); "
           f"whole process {r_wall:.2f} s; peak RSS {r['peak_mb']:.0f} MB; raised {r['raised'] or 'none'}")
     print(f"ratio replay / floor: {r['wall'] / f['total']:.2f}x (whole processes {r_wall / f_wall:.2f}x)")
-    print("floor medians: " + ", ".join(f"{k} {v:.3f}" for k, v in f["medians"].items()))
+    med = list(f["medians"].items())
+    shown = med if len(med) <= 8 else [*med[:3], *med[-5:]]
+    print("floor medians (valid frames): " + ", ".join(f"{k} {v:.4g}" for k, v in shown)
+          + (f" ({len(med) - len(shown)} more not shown)" if len(med) > len(shown) else ""))
 
 
 def main() -> None:
