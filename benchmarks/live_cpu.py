@@ -7,7 +7,8 @@ Usage: python benchmarks/live_cpu.py [--rate 5000] [--warmup 15] [--seconds 30] 
 2. Runs ``spanwatch run`` as a child process on line Q2 (``config/quillmere-q2.toml``) with one MQTT source whose
    15 tags are each on a topic of their own (JSON payload ``{"value", "time", "quality", "seq"}``), SQLite history
    and ``/metrics`` in a temporary folder.
-3. Publishes from another process: every tag at the same rate, ``--rate`` messages per second in all, each
+3. Publishes from ``--publishers`` other processes (the tags split among them): every tag at the same rate,
+   ``--rate`` messages per second in all, each
    message the latest value of that tag from the project's simulator (line Q2 at 400 m/min, advanced in real time),
    stamped with the wall clock.
 4. After ``--warmup`` seconds, measures the daemon process's CPU time (user + system of all its threads, from
@@ -60,15 +61,18 @@ def publisher(plan: dict) -> None:
     sim = SimulatedLine(load_line(cfg), sc)
     names = list(sim.tag_names)
     latest = {n: 0.0 for n in names}
-    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="bench-live-publisher", protocol=mqtt.MQTTv311)
+    mine = names[plan["part"]::plan["parts"]]  # this publisher's share of the tags
+    topics = {n: f"{PREFIX}/{n}" for n in mine}
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=f"bench-live-publisher-{plan['part']}",
+                         protocol=mqtt.MQTTv311)
     client.max_inflight_messages_set(1000)
     client.max_queued_messages_set(0)
     client.connect("127.0.0.1", plan["port"])
     client.loop_start()
     period = len(names) / plan["rate"]
     start = time.time()
-    nxt = dict.fromkeys(names, start)
-    seq = dict.fromkeys(names, 0)
+    nxt = dict.fromkeys(mine, start)
+    seq = dict.fromkeys(mine, 0)
     sim_wall = start
     sent = 0
     qos = plan["qos"]
@@ -81,8 +85,8 @@ def publisher(plan: dict) -> None:
         for n, due in nxt.items():
             if now >= due:
                 seq[n] += 1
-                client.publish(f"{PREFIX}/{n}", json.dumps({"value": latest[n], "time": now, "quality": "good",
-                                                            "seq": seq[n]}), qos=qos)
+                client.publish(topics[n], f'{{"value": {latest[n]!r}, "time": {now!r}, "quality": "good", '
+                                          f'"seq": {seq[n]}}}', qos=qos)
                 sent += 1
                 nxt[n] = due + period
         time.sleep(0.0005)
@@ -148,6 +152,7 @@ def main() -> None:
     ap.add_argument("--warmup", type=float, default=15.0)
     ap.add_argument("--seconds", type=float, default=30.0)
     ap.add_argument("--qos", type=int, default=1, choices=(0, 1))
+    ap.add_argument("--publishers", type=int, default=2, help="publishing processes (the tags split among them)")
     ap.add_argument("--publisher", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.publisher:
@@ -165,33 +170,40 @@ def main() -> None:
         exe = Path(sys.executable).with_name("spanwatch")
         daemon = subprocess.Popen([str(exe), "run", "--config", str(cfg), "--log-level", "warning"],
                                   stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-        pub = None
+        pubs: list[subprocess.Popen] = []
         try:
             wait_http(http_port, daemon)
             end = time.time() + args.warmup + args.seconds + 2.0
-            pub = subprocess.Popen([sys.executable, __file__, "--publisher",
-                                    json.dumps({"port": broker.port, "rate": args.rate, "end": end, "qos": args.qos})],
-                                   stdout=subprocess.PIPE, text=True)
+            pubs = [subprocess.Popen([sys.executable, __file__, "--publisher", json.dumps(
+                {"port": broker.port, "rate": args.rate, "end": end, "qos": args.qos, "part": i,
+                 "parts": args.publishers})], stdout=subprocess.PIPE, text=True) for i in range(args.publishers)]
             time.sleep(args.warmup)
-            w0, c0, p0, b0, s0 = (time.perf_counter(), cpu_seconds(daemon.pid), cpu_seconds(pub.pid),
+
+            def pub_cpu() -> float:
+                return sum(cpu_seconds(p.pid) for p in pubs)
+
+            w0, c0, p0, b0, s0 = (time.perf_counter(), cpu_seconds(daemon.pid), pub_cpu(),
                                   cpu_seconds(broker.proc.pid), samples_in(http_port))
             time.sleep(args.seconds)
-            w1, c1, p1, b1, s1 = (time.perf_counter(), cpu_seconds(daemon.pid), cpu_seconds(pub.pid),
+            w1, c1, p1, b1, s1 = (time.perf_counter(), cpu_seconds(daemon.pid), pub_cpu(),
                                   cpu_seconds(broker.proc.pid), samples_in(http_port))
             load = " ".join(f"{x:.2f}" for x in os.getloadavg())
-            out, _ = pub.communicate(timeout=60)
-            sent = json.loads(out.strip().splitlines()[-1])
+            outs = [json.loads(p.communicate(timeout=60)[0].strip().splitlines()[-1]) for p in pubs]
+            sent = {"sent": sum(o["sent"] for o in outs), "seconds": max(o["seconds"] for o in outs)}
             wall = w1 - w0
-            print(f"line Q2 over MQTT (QoS {args.qos}, 15 topics), publisher asked for {args.rate:,.0f} msg/s, sent "
+            print(f"line Q2 over MQTT (QoS {args.qos}, 15 topics), {args.publishers} publishers asked for "
+                  f"{args.rate:,.0f} msg/s in all, sent "
                   f"{sent['sent'] / sent['seconds']:,.0f} msg/s over its run")
             print(f"steady window {wall:.1f} s after {args.warmup:g} s warm-up: daemon took in "
                   f"{(s1 - s0) / wall:,.0f} samples/s")
             print(f"daemon CPU {c1 - c0:.2f} s in {wall:.1f} s = {100 * (c1 - c0) / wall:.1f} % of one core "
-                  f"({1e6 * (c1 - c0) / max(s1 - s0, 1):.0f} us per sample); publisher {100 * (p1 - p0) / wall:.1f} %, "
+                  f"({1e6 * (c1 - c0) / max(s1 - s0, 1):.0f} us per sample); publishers "
+                  f"{100 * (p1 - p0) / wall:.1f} %, "
                   f"mosquitto {100 * (b1 - b0) / wall:.1f} %; load average {load}")
         finally:
-            if pub is not None and pub.poll() is None:
-                pub.kill()
+            for p in pubs:
+                if p.poll() is None:
+                    p.kill()
             daemon.send_signal(signal.SIGTERM)
             try:
                 daemon.wait(timeout=20)

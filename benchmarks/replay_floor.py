@@ -22,14 +22,17 @@ computes, on one core:
 - derives the signals (``line.signals``: SI, usable = finite, good, fresh, in range), the line state
   (``classify_line_state`` on the same smoothed derivative, the settle holds by forward-filled indices) and the
   roll changes (diameter jump, core-change edge, length reset) for the whole recording at once;
-- evaluates every (kind, object) check of ``Pipeline(line).checks`` with the pure functions of ``spanwatch.rules``
+- evaluates every (kind, object) check a pipeline runs (``build_checks(line)``, the list ``Pipeline(line).checks``
+  is) with the pure functions of ``spanwatch.rules``
   (``effective_cof``, ``traction_utilisation``, ``demonstrated_cof``, ``slip_ratio``, ``steady_span_tension``,
   ``draw_band``, ``mean_ratio_uncertainty``, ``diameter_from_speed``, ``local_slope``, ``rotation_frequency``,
   ``classify_line_state``, ``learn_baseline``, ``standardise``, ``design_cusum``), traction, no-drive, slip and idler
   lag over a frames x rollers matrix, tag range, quality, stale and frozen over the frames x tags matrix, the drift
   CUSUMs over a batches x detectors matrix; windows (draw, speed-diameter, length rate, runout) as differences of
   cumulative sums, Page's CUSUM as the cumulative sum less its running minimum;
-- runs a threshold + on-delay pass over every alarm point of ``Pipeline(line).points`` (a raise where a run of
+- runs a threshold + on-delay pass over every alarm point (``alarm_points``, the list ``Pipeline(line).points`` is;
+  taken from ``spanwatch.monitor.checkset`` so the floor does not pay the rest of a pipeline's set-up: on the
+  150-tag line that is mostly resolving the suppression rules) (a raise where a run of
   valid frames beyond the limit lasts the on-delay).
 
 What the floor does **not** do (it is a floor, not a second implementation): no history database, no context
@@ -51,6 +54,13 @@ the project's simulator for one hour of the same scenario.
 **The sweep** (``--sweep N``): ``spanwatch.monitor.sweep`` (one pass keeping the traction results, then the alarm
 engine per setting) of the traction warning limit of both pull rolls at N settings from 0.30 to 0.95 of the
 capacity over the benchmark hour, against one replay in the same run.
+
+Line Q2 has 90 checks (72 source checks, 2 ``roll_caliper``, 16 ``drift``) and 108 alarm points; the 150-tag line
+(46 sections, 143 rollers) 1,125 checks (286 of them drift detectors) and 1,368 alarm points. The floor holds the
+whole recording in memory: about 0.6 GB for the hour of line Q2, 4.6 GB for the hour of the 150-tag line.
+
+The scaling recordings repeat the benchmark hour, so from the second hour on the rewind winds a whole hour per core
+and overfills: its diameter leaves the tag's range (``tag_range`` raises, 3 in 4 h, 15 in 16 h), a genuine alarm.
 
 Targets (issue 11): replay within 1.5x of the floor on line Q2 and at least 2,000x real time; within 2x on the
 150-tag line; linear time and flat memory from 1 h to 16 h; a sweep of 20 limits at most 3x one replay.
