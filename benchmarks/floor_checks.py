@@ -3,10 +3,10 @@
 Used by ``benchmarks/replay_floor.py`` (see its docstring for what the floor does and does not do). Every
 quantity is computed over the whole recording at once, every check kind over all its objects at once where its
 objects share a formula (a frames x objects matrix), with the pure functions of ``spanwatch.rules``. The line is
-read from the line model (``line.model``) and ``line.signals``, the list of checks and alarm points from a
-:class:`~spanwatch.monitor.pipeline.Pipeline` builds (``spanwatch.monitor.checkset``: kind, object, level, limit,
-direction, on-delay only), so the
-floor follows whatever the pipeline runs without depending on the check classes' internals.
+read from the line model (``line.model``) and ``line.signals``, the lists of checks and alarm points as a
+:class:`~spanwatch.monitor.pipeline.Pipeline` builds them (``spanwatch.monitor.checkset``; of a point the floor reads
+kind, object, level, limit, direction and on-delay only), so the floor follows whatever the pipeline runs without
+depending on the check classes' internals.
 """
 
 from __future__ import annotations
