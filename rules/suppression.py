@@ -123,11 +123,24 @@ class SuppressionRules:
     def __init__(self, rules: Iterable[SuppressionRule], points: Iterable[AlarmPoint]) -> None:
         points = list(points)
         self.rules = list(rules)
+        # an exact pattern (every derived one) is looked up, not matched against every point: a line of a thousand
+        # alarm points has thousands of derived rules
+        by_name: dict[str, list[int]] = {}
+        by_key: dict[str, list[int]] = {}
+        for i, p in enumerate(points):
+            by_name.setdefault(f"{p.kind}:{p.object_id}", []).append(i)
+            by_key.setdefault(p.key, []).append(i)
+
+        def hits(pattern: str) -> set[int]:
+            if any(ch in pattern for ch in "*?["):
+                return {i for i, p in enumerate(points) if matches(pattern, p)}
+            return {*by_name.get(pattern, ()), *by_key.get(pattern, ())}
+
         # suppressor key -> [(rule index, suppressed key, reason)], in rule order
         self._by_key: dict[str, list[tuple[int, str, str]]] = {}
         for i, r in enumerate(self.rules):
-            whiles = [p.key for p in points if matches(r.while_, p)]
-            targets = [p.key for p in points if any(matches(s, p) for s in r.suppress)]
+            whiles = [points[j].key for j in sorted(hits(r.while_))]
+            targets = [points[j].key for j in sorted(set().union(*(hits(x) for x in r.suppress)))]
             for w in whiles:
                 self._by_key.setdefault(w, []).extend((i, k, f"{r.reason} ({w} active)") for k in targets if k != w)
 

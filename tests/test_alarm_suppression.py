@@ -187,3 +187,20 @@ def test_source_lost_raises_no_later_than_a_stale_tag_by_default():
     # (rules/plausibility.py), so with one sample period per source it never speaks first. Its delays:
     assert SOURCE_LOST_DEFAULTS.on_delay <= STALE_DEFAULTS.on_delay == 0.0
     assert SOURCE_LOST_DEFAULTS.alarm == 0.5
+
+
+def test_exact_patterns_resolve_as_matching_every_point_would(tmp_path):
+    # Exact patterns (every derived rule) are looked up by name instead of matched against every point (a line
+    # of a thousand points has thousands of rules); with wildcard and exact configured rules, the resolved
+    # table must be what matching each pattern against every point gives.
+    extra = ('[[alarms.suppress]]\nwhile = "tag_stale:q2.s5.*"\nsuppress = ["draw:*", "traction:pull_2:warning"]\n'
+             'reason = "test"\n')
+    _, points, rules = _rules(extra=extra, tmp=tmp_path)
+    want: dict[str, list[tuple[int, str, str]]] = {}
+    for i, r in enumerate(rules.rules):
+        whiles = [p.key for p in points if matches(r.while_, p)]
+        targets = [p.key for p in points if any(matches(s, p) for s in r.suppress)]
+        for w in whiles:
+            want.setdefault(w, []).extend((i, k, f"{r.reason} ({w} active)") for k in targets if k != w)
+    assert rules._by_key == want
+    assert any(r.reason == "test" for r in rules.rules) and len(rules.rules) > 40
