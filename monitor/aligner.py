@@ -82,7 +82,8 @@ class Aligner:
         refused_dup = np.zeros(n, dtype=bool)
         if n == 0:
             return {REJECT_OUT_OF_ORDER: refused_ooo, REJECT_DUPLICATE: refused_dup, "late": refused_ooo}
-        order = np.argsort(col, kind="stable")
+        # small tag indices sort by radix (O(n)) as 16-bit integers
+        order = np.argsort(col.astype(np.int16) if len(self.names) < 32_768 else col, kind="stable")
         cs = col[order]
         starts = np.flatnonzero(np.r_[True, cs[1:] != cs[:-1]])
         ends = np.r_[starts[1:], n]

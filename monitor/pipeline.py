@@ -169,11 +169,14 @@ class Pipeline:
         src = self.source_col[col]
         future = np.zeros(t.size, dtype=bool)
         when = time.monotonic() if elapsed is None else elapsed
-        for s in np.unique(src):
-            sel = src == s
-            ts = t[sel]
-            future[sel] = self.clocks.accept(self.source_names[int(s)], ts, when, wall)
-            t[sel] = ts  # shifted when the source's clock stepped back
+        if len(self.source_names) == 1:  # one source (every recording): no selection to make
+            future = self.clocks.accept(self.source_names[0], t, when, wall)
+        else:
+            for s in np.unique(src):
+                sel = src == s
+                ts = t[sel]
+                future[sel] = self.clocks.accept(self.source_names[int(s)], ts, when, wall)
+                t[sel] = ts  # shifted when the source's clock stepped back
         if future.any():
             for c in np.unique(col[future]):
                 self.inputs.add(self.names[c], "future time", ref[future & (col == c)])
