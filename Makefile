@@ -26,6 +26,8 @@ demo: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) benchmarks/replay_throughput.py
+	$(PY) benchmarks/replay_floor.py --line q2
+	$(PY) benchmarks/recording_formats.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .ruff_cache
