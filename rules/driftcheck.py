@@ -25,19 +25,24 @@ by the check that owns the physics and read from :attr:`Block.results`; see :dat
 Its value is the detector's statistic (1.0 = drift detected); its extras give the estimated change
 time, the size of the change in the residual's own unit, and the baseline. The alarm is of its own
 kind, advisory by default, and blames what the source check blames.
+
+The pipeline evaluates all drift checks of a line together (:meth:`DriftCheck.batch`, :class:`DriftBatch`): their
+detectors' state is stacked in one :class:`~spanwatch.rules.drift.monitor.MonitorBank` and one pass over a
+detectors x frames matrix serves them all; a check's own ``update`` is the same evaluation for a batch of one.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
-from dataclasses import dataclass, fields
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from typing import ClassVar
 
 import numpy as np
 from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult, LineState, Reason, blames_of, state_mask
-from spanwatch.rules.drift import Baseline, DriftMonitor, DriftOutput
+from spanwatch.rules.drift import Baseline, DriftMonitor
 from spanwatch.rules.drift.design import arl0_for
+from spanwatch.rules.drift.monitor import MonitorBank
 from spanwatch.rules.linemodel import DriftSettings, LineModel
 
 RUNNING = (LineState.RUNNING,)
@@ -145,11 +150,10 @@ class DriftCheck:
         self._baselines: list[tuple[float, Baseline]] = []  # (line speed m/s, baseline learnt there)
         self._speed: float | None = None  # line speed of the current operating point
         self._grade: float | None = None  # the grade in production (``grade/line``), when the line publishes it
-        self._monitor = self._new_monitor()
-
-    def _new_monitor(self) -> DriftMonitor:
-        return DriftMonitor(self.detector, period=self.period, learn=self.learn, shift=self.shift, arl0=self.arl0,
-                            sigma_floor=self.sigma_floor, params=self.params or None)
+        # the winders whose roll change re-learns it
+        self._winders = frozenset(source.object_id if w == "*" else w for w in residual.roll_change)
+        self._monitor = DriftMonitor(self.detector, period=self.period, learn=self.learn, shift=self.shift,
+                                     arl0=self.arl0, sigma_floor=self.sigma_floor, params=self.params or None)
 
     @classmethod
     def for_line(cls, line: LineModel, sources: list[Check] | None = None) -> Iterator[DriftCheck]:
@@ -168,6 +172,21 @@ class DriftCheck:
                       shift=float(over.get("shift", s.shift)),  # type: ignore[arg-type]
                       arl0=arl0, sigma_floor=float(over.get("sigma_floor", r.sigma_floor)),  # type: ignore[arg-type]
                       speed_band=s.speed_band)
+
+    @classmethod
+    def batch(cls, checks: Sequence[DriftCheck]) -> DriftBatch:
+        """All ``checks`` evaluated together (see :class:`DriftBatch`)."""
+        return DriftBatch(checks)
+
+    @property
+    def baseline(self) -> Baseline | None:
+        """The baseline in use at the current operating point (None while learning)."""
+        return self._monitor.baseline
+
+    @property
+    def design(self) -> dict[str, float]:
+        """The detector's parameters (CUSUM ``k``, ``h``; EWMA ``lam``, ``L``; {} for river's)."""
+        return self._monitor.design
 
     def reset(self) -> None:
         """After a gap: forget the partial batch, keep the baselines."""
@@ -189,49 +208,13 @@ class DriftCheck:
             self._baselines = [(v, b) for v, b in self._baselines if abs(v / self._speed - 1.0) > self.speed_band / 2]
             self._baselines.append((self._speed, self._monitor.baseline))
         self._speed = speed
-        self._monitor = self._new_monitor()
+        self._monitor.renew()
         known = min(self._baselines, key=lambda vb: abs(vb[0] / speed - 1.0), default=None)
         if known is not None and abs(known[0] / speed - 1.0) <= self.speed_band / 2:
             self._monitor.use_baseline(known[1])
 
     def update(self, block: Block) -> CheckResult:
-        n = block.n
-        res = block.results.get(self.source_key)
-        value = np.full(n, np.nan)
-        reason = np.full(n, int(Reason.INPUT_BAD), dtype=np.int8)
-        extras = {k: np.full(n, np.nan) for k in ("change_time", "shift", "mean", "sigma", "residual")}
-        if res is None:
-            return CheckResult(value, reason, extras)
-        x = res.value if self.residual.field == "value" else res.extras.get(self.residual.field)
-        if x is None:
-            return CheckResult(value, reason, extras)
-        grade = block.signals.get("grade/line")
-        if grade is not None and grade.ok.any():
-            g = grade.value[grade.ok]
-            if (self._grade is not None and g[0] != self._grade) or (g[1:] != g[:-1]).any():
-                self.relearn()  # a new grade: its residuals have levels of their own
-            self._grade = float(g[-1])
-        for w in self.residual.roll_change:
-            starts = block.roll_start.get(self.source_key[1] if w == "*" else w)
-            if starts is not None and starts.any():
-                self.relearn()
-        ok = res.valid & state_mask(block.line_state, self.residual.states) & np.isfinite(x)
-        if self.hold and self._monitor.learning:
-            ok = np.zeros(n, dtype=bool)
-        xs = np.where(ok, x, np.nan)
-        parts = [self._monitor.update(block.t[a:b], xs[a:b], ok[a:b]) if point is None else
-                 self._at(point, block.t[a:b], xs[a:b], ok[a:b]) for a, b, point in self._pieces(block, ok)]
-        out = parts[0] if len(parts) == 1 else DriftOutput(
-            *(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(DriftOutput)))
-        reason = np.where(ok, out.state, np.where(res.valid, int(Reason.LINE_STATE), res.reason)).astype(np.int8)
-        value = np.where(reason == int(Reason.OK), out.value, np.nan)
-        extras = {"change_time": out.change_time, "shift": out.shift, "mean": out.mean, "sigma": out.sigma,
-                  "residual": xs}
-        return CheckResult(value, reason, extras)
-
-    def _at(self, speed: float, t: np.ndarray, x: np.ndarray, ok: np.ndarray) -> DriftOutput:
-        self._operating_point(speed)
-        return self._monitor.update(t, x, ok)
+        return evaluate([self], block)[0]
 
     def _pieces(self, block: Block, ok: np.ndarray) -> list[tuple[int, int, float | None]]:
         """The block cut where the operating point changes: (start, end, line speed there or None to keep it).
@@ -260,3 +243,152 @@ class DriftCheck:
         for i, (a, v) in enumerate(cuts):
             out.append((a, cuts[i + 1][0] if i + 1 < len(cuts) else n, v))
         return out
+
+
+class DriftBatch:
+    """The drift checks of a line evaluated together (:class:`~spanwatch.rules.base.CheckBatch`).
+
+    Building it moves the checks' detectors, state and all, into one
+    :class:`~spanwatch.rules.drift.monitor.MonitorBank` per batch period (one on a line); :meth:`update` is
+    :func:`evaluate` over all of them. Each check keeps working on its own (``update``, ``reset``, ``relearn``,
+    ``hold``): its state is its row of the bank."""
+
+    def __init__(self, checks: Sequence[DriftCheck]) -> None:
+        self.checks = tuple(checks)
+        periods: dict[float, list[DriftMonitor]] = {}
+        for c in self.checks:
+            periods.setdefault(c._monitor.period, []).append(c._monitor)
+        for monitors in periods.values():
+            MonitorBank(monitors)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        return evaluate(self.checks, block)
+
+    def reset(self) -> None:
+        for c in self.checks:
+            c.reset()
+
+
+_FIELDS = ("value", "state", "change_time", "shift", "mean", "sigma")
+_LINE_STATE, _OK, _INPUT_BAD = int(Reason.LINE_STATE), int(Reason.OK), int(Reason.INPUT_BAD)
+
+
+def _missing(n: int) -> CheckResult:
+    """The result of a check whose source result or field is missing: invalid, not a guess."""
+    return CheckResult(np.full(n, np.nan), np.full(n, _INPUT_BAD, dtype=np.int8),
+                       {k: np.full(n, np.nan) for k in ("change_time", "shift", "mean", "sigma", "residual")})
+
+
+def _relearn_on_events(live: list[DriftCheck], block: Block) -> None:
+    """Re-learn what a new grade (every check) or a roll change of a winder a check depends on calls for."""
+    grade = block.signals.get("grade/line")
+    if grade is not None and grade.ok.any():
+        g = grade.value[grade.ok]
+        changed = bool((g[1:] != g[:-1]).any())
+        first, last = g[0], float(g[-1])
+        for c in live:
+            if changed or (c._grade is not None and first != c._grade):
+                c.relearn()  # a new grade: its residuals have levels of their own
+            c._grade = last
+    started = {w for w, s in block.roll_start.items() if s.any()}
+    if started:
+        for c in live:
+            if c._winders & started:
+                c.relearn()
+
+
+def _cut(live: list[DriftCheck], block: Block, ok: np.ndarray) -> dict[int, list[tuple[int, int, float | None]]]:
+    """The checks (by position) whose block is cut by an operating point change, with their pieces.
+
+    A check's frames are not cut when every usable frame's line speed lies in its current band: the speeds the cut
+    looks at (the middle frames of its runs of usable frames) lie between the smallest and the largest of them, and
+    |v / v0 - 1| is largest at one of those two. That is tried for all checks at once; the others are cut as
+    :meth:`DriftCheck._pieces` says."""
+    speed = block.signal("speed/web").value
+    used = ok.any(axis=0)
+    with np.errstate(invalid="ignore"):
+        good = used & np.isfinite(speed) & (speed > 0)
+    if not good.any():
+        return {}
+    lo, hi = float(speed[good].min()), float(speed[good].max())
+    out = {}
+    for i, c in enumerate(live):
+        v0 = c._speed
+        if v0 is not None and abs(lo / v0 - 1.0) <= c.speed_band and abs(hi / v0 - 1.0) <= c.speed_band:
+            continue
+        pieces = c._pieces(block, ok[i])
+        if pieces[0][2] is not None or len(pieces) > 1:
+            out[i] = pieces
+    return out
+
+
+def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
+    """The results of ``checks`` for ``block``, in order: what each check's own evaluation gives, computed together.
+
+    Per check: its source's residual (from :attr:`Block.results`), re-learnt on a new grade or a roll change of a
+    winder it depends on, gated to the frames its source marks valid in the line states where the residual means
+    something (none while it holds and has no baseline), cut where the operating point changes, decimated,
+    standardised and charted by its monitor. All of this runs over a checks x frames matrix and each bank's
+    monitors in one call; only checks whose block an operating point change cuts run piece by piece."""
+    n = block.n
+    out: list[CheckResult | None] = [None] * len(checks)
+    live: list[DriftCheck] = []
+    where: list[int] = []
+    xs, results = [], []
+    for i, c in enumerate(checks):
+        res = block.results.get(c.source_key)
+        x = None if res is None else res.value if c.residual.field == "value" else res.extras.get(c.residual.field)
+        if res is None or x is None:
+            out[i] = _missing(n)
+            continue
+        live.append(c)
+        where.append(i)
+        xs.append(x)
+        results.append(res)
+    if not live:
+        return out  # type: ignore[return-value]
+    _relearn_on_events(live, block)
+    d = len(live)
+    x = np.stack(xs).astype(float, copy=False)
+    reasons = np.stack([r.reason for r in results])
+    src_ok = reasons == _OK
+    masks = {c.residual.states for c in live}
+    if len(masks) == 1:
+        states = state_mask(block.line_state, live[0].residual.states)
+    else:
+        states = np.stack([state_mask(block.line_state, c.residual.states) for c in live])
+    ok = src_ok & states & np.isfinite(x)
+    holding = [i for i, c in enumerate(live) if c.hold and c._monitor.learning]
+    if holding:
+        ok[holding] = False
+    xs_ok = np.where(ok, x, np.nan)
+    cut = _cut(live, block, ok)
+    fields = np.empty((len(_FIELDS), d, n))
+    banks: dict[int, tuple[MonitorBank, list[int], list[int]]] = {}
+    for i, c in enumerate(live):
+        if i not in cut:
+            bank, _, _ = banks.setdefault(id(c._monitor.bank), (c._monitor.bank, [], []))
+            banks[id(bank)][1].append(i)
+            banks[id(bank)][2].append(c._monitor.row)
+    t = block.t
+    for bank, pos, rows in banks.values():
+        whole = len(pos) == d == bank.size and rows == list(range(d))
+        got = bank.update(t, xs_ok if whole else xs_ok[pos], ok if whole else ok[pos], rows=None if whole else rows)
+        for f, a in enumerate(got):
+            fields[f, pos if not whole else slice(None)] = a
+    for i, pieces in cut.items():
+        c = live[i]
+        for a, b, point in pieces:
+            if point is not None:
+                c._operating_point(point)
+            got = c._monitor.bank.update(t[a:b], xs_ok[i:i + 1, a:b], ok[i:i + 1, a:b], rows=[c._monitor.row])
+            for f, arr in enumerate(got):
+                fields[f, i, a:b] = arr[0]
+    state = fields[1].astype(np.int8)
+    reason = np.where(ok, state, np.where(src_ok, _LINE_STATE, reasons)).astype(np.int8)
+    value = np.where(reason == _OK, fields[0], np.nan)
+    for k, i in enumerate(where):
+        out[i] = CheckResult(value[k], reason[k], {"change_time": fields[2, k], "shift": fields[3, k],
+                                                   "mean": fields[4, k], "sigma": fields[5, k],
+                                                   "residual": xs_ok[k]})
+    return out  # type: ignore[return-value]
