@@ -34,7 +34,7 @@ detectors x frames matrix serves them all; a check's own ``update`` is the same 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -273,6 +273,34 @@ _FIELDS = ("value", "state", "change_time", "shift", "mean", "sigma")
 _LINE_STATE, _OK, _INPUT_BAD = int(Reason.LINE_STATE), int(Reason.OK), int(Reason.INPUT_BAD)
 
 
+class _Extras(Mapping[str, np.ndarray]):
+    """A drift result's extras (``change_time``, ``shift``, ``mean``, ``sigma``, ``residual``), each spread over the
+    frames when first read: the alarm engine reads them only for a raise."""
+
+    __slots__ = ("_cols", "_frames", "_residual", "_row", "_seen")
+
+    def __init__(self, cols: np.ndarray, row: int, frames: np.ndarray, residual: np.ndarray) -> None:
+        self._cols, self._row, self._frames, self._residual = cols, row, frames, residual
+        self._seen: dict[str, np.ndarray] = {}
+
+    def __getitem__(self, key: str) -> np.ndarray:
+        if key == "residual":
+            return self._residual
+        got = self._seen.get(key)
+        if got is None:
+            got = self._seen[key] = np.repeat(self._cols[_EXTRAS.index(key) + 1, self._row], self._frames)
+        return got
+
+    def __iter__(self) -> Iterator[str]:
+        return iter((*_EXTRAS, "residual"))
+
+    def __len__(self) -> int:
+        return len(_EXTRAS) + 1
+
+
+_EXTRAS = ("change_time", "shift", "mean", "sigma")
+
+
 def _missing(n: int) -> CheckResult:
     """The result of a check whose source result or field is missing: invalid, not a guess."""
     return CheckResult(np.full(n, np.nan), np.full(n, _INPUT_BAD, dtype=np.int8),
@@ -297,17 +325,18 @@ def _relearn_on_events(live: list[DriftCheck], block: Block) -> None:
                 c.relearn()
 
 
-def _cut(live: list[DriftCheck], block: Block, ok: np.ndarray) -> dict[int, list[tuple[int, int, float | None]]]:
+def _cut(live: list[DriftCheck], block: Block, usable: np.ndarray,
+         ok: np.ndarray) -> dict[int, list[tuple[int, int, float | None]]]:
     """The checks (by position) whose block is cut by an operating point change, with their pieces.
 
-    A check's frames are not cut when every usable frame's line speed lies in its current band: the speeds the cut
-    looks at (the middle frames of its runs of usable frames) lie between the smallest and the largest of them, and
-    |v / v0 - 1| is largest at one of those two. That is tried for all checks at once; the others are cut as
-    :meth:`DriftCheck._pieces` says."""
+    A check's frames are not cut when the line speed of every ``usable`` frame (a mask holding at least the
+    frames any check uses) lies in its current band: the speeds the cut looks at (the middle frames of its runs
+    of usable frames) lie between the smallest and the largest of them, and |v / v0 - 1| is largest at one of
+    those two.
+    That is tried for all checks at once; the others are cut as :meth:`DriftCheck._pieces` says."""
     speed = block.signal("speed/web").value
-    used = ok.any(axis=0)
     with np.errstate(invalid="ignore"):
-        good = used & np.isfinite(speed) & (speed > 0)
+        good = usable & np.isfinite(speed) & (speed > 0)
     if not good.any():
         return {}
     lo, hi = float(speed[good].min()), float(speed[good].max())
@@ -320,6 +349,14 @@ def _cut(live: list[DriftCheck], block: Block, ok: np.ndarray) -> dict[int, list
         if pieces[0][2] is not None or len(pieces) > 1:
             out[i] = pieces
     return out
+
+
+def _reason(reasons: np.ndarray, src_ok: np.ndarray, ok: np.ndarray, state: np.ndarray) -> np.ndarray:
+    """Per check and frame: the monitor's state where the check could use the frame, else why not (its source's
+    reason, or the line state). The monitor's value is already NaN wherever its state is not OK."""
+    reason = (reasons + src_ok).astype(np.int8, copy=False)  # LINE_STATE (1) where the source is valid (0)
+    np.copyto(reason, state, where=ok)
+    return reason
 
 
 def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
@@ -349,46 +386,63 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
         return out  # type: ignore[return-value]
     _relearn_on_events(live, block)
     d = len(live)
-    x = np.stack(xs).astype(float, copy=False)
+    x = np.stack(xs).astype(float, copy=False)  # a new array (it is written below)
     reasons = np.stack([r.reason for r in results])
     src_ok = reasons == _OK
     masks = {c.residual.states for c in live}
     if len(masks) == 1:
         states = state_mask(block.line_state, live[0].residual.states)
+        usable = states
     else:
         states = np.stack([state_mask(block.line_state, c.residual.states) for c in live])
+        usable = states.any(axis=0)
     ok = src_ok & states & np.isfinite(x)
     holding = [i for i, c in enumerate(live) if c.hold and c._monitor.learning]
     if holding:
         ok[holding] = False
-    xs_ok = np.where(ok, x, np.nan)
-    cut = _cut(live, block, ok)
-    fields = np.empty((len(_FIELDS), d, n))
-    banks: dict[int, tuple[MonitorBank, list[int], list[int]]] = {}
+    xs_ok = x  # np.stack made it a copy of the sources' arrays: NaN where not usable
+    np.copyto(xs_ok, np.nan, where=~ok)
+    cut = _cut(live, block, usable, ok)
+    t = block.t
+    groups: dict[int, tuple[MonitorBank, list[int], list[int]]] = {}
     for i, c in enumerate(live):
         if i not in cut:
-            bank, _, _ = banks.setdefault(id(c._monitor.bank), (c._monitor.bank, [], []))
-            banks[id(bank)][1].append(i)
-            banks[id(bank)][2].append(c._monitor.row)
-    t = block.t
-    for bank, pos, rows in banks.values():
-        whole = len(pos) == d == bank.size and rows == list(range(d))
-        got = bank.update(t, xs_ok if whole else xs_ok[pos], ok if whole else ok[pos], rows=None if whole else rows)
-        for f, a in enumerate(got):
-            fields[f, pos if not whole else slice(None)] = a
+            bank = c._monitor.bank
+            groups.setdefault(id(bank), (bank, [], []))
+            groups[id(bank)][1].append(i)
+            groups[id(bank)][2].append(c._monitor.row)
+    only = next(iter(groups.values())) if len(groups) == 1 and not cut else None
+    if only is not None and only[0].size == d and only[2] == list(range(d)):
+        # the usual: one bank, all its detectors, in order; the extras spread over the frames when read
+        value, state, per_col, frames = only[0].columns(t, xs_ok, ok, finite=True)
+        reason = _reason(reasons, src_ok, ok, state)
+        for k, i in enumerate(where):
+            out[i] = CheckResult(value[k], reason[k], _Extras(per_col, k, frames, xs_ok[k]))
+        return out  # type: ignore[return-value]
+    # some checks cut by an operating point change, or in other banks: each group by itself
+    fields = tuple(np.empty((d, n), dtype=np.int8 if f == "state" else float) for f in _FIELDS)
+    for bank, pos, rows in groups.values():
+        got = bank.update(t, xs_ok[pos], ok[pos], rows=rows, finite=True)
+        for whole, part in zip(fields, got, strict=True):
+            whole[pos] = part
+    # checks cut alike (the same pieces, one bank) run together, piece by piece
+    alike: dict[tuple[object, ...], list[int]] = {}
     for i, pieces in cut.items():
-        c = live[i]
-        for a, b, point in pieces:
+        alike.setdefault((id(live[i]._monitor.bank), *pieces), []).append(i)
+    for pos in alike.values():
+        bank = live[pos[0]]._monitor.bank
+        rows = [live[i]._monitor.row for i in pos]
+        for a, b, point in cut[pos[0]]:
             if point is not None:
-                c._operating_point(point)
-            got = c._monitor.bank.update(t[a:b], xs_ok[i:i + 1, a:b], ok[i:i + 1, a:b], rows=[c._monitor.row])
-            for f, arr in enumerate(got):
-                fields[f, i, a:b] = arr[0]
-    state = fields[1].astype(np.int8)
-    reason = np.where(ok, state, np.where(src_ok, _LINE_STATE, reasons)).astype(np.int8)
-    value = np.where(reason == _OK, fields[0], np.nan)
+                for i in pos:
+                    live[i]._operating_point(point)
+            got = bank.update(t[a:b], xs_ok[pos, a:b], ok[pos, a:b], rows=rows, finite=True)
+            for whole, part in zip(fields, got, strict=True):
+                whole[pos, a:b] = part
+    value, state = fields[0], fields[1]
+    reason = _reason(reasons, src_ok, ok, state)
     for k, i in enumerate(where):
-        out[i] = CheckResult(value[k], reason[k], {"change_time": fields[2, k], "shift": fields[3, k],
-                                                   "mean": fields[4, k], "sigma": fields[5, k],
+        out[i] = CheckResult(value[k], reason[k], {"change_time": fields[2][k], "shift": fields[3][k],
+                                                   "mean": fields[4][k], "sigma": fields[5][k],
                                                    "residual": xs_ok[k]})
     return out  # type: ignore[return-value]

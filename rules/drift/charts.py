@@ -36,7 +36,8 @@ def _param(value: float | np.ndarray) -> tuple[float | np.ndarray, float | np.nd
 def _carried(per_sample: np.ndarray, old: np.ndarray, last: np.ndarray | None) -> np.ndarray:
     """The state to carry after a call: the value after the last sample, or, with ``last`` (real samples per chart,
     the rest padding), after each chart's last real sample (the old state where it had none)."""
-    if last is None:
+    n = per_sample.shape[-1]
+    if last is None or (last == n).all():
         return per_sample[..., -1].copy()
     at = np.take_along_axis(per_sample, np.maximum(last - 1, 0)[..., None], axis=-1)[..., 0]
     return np.where(last > 0, at, old)
@@ -137,16 +138,21 @@ class TabularCusum:
         z = np.asarray(z, dtype=float)
         if z.shape[-1] == 0:
             return np.zeros(z.shape)
-        cp, run_p = self._side(z - self._k, self._cp, self._np)
-        cm, run_m = self._side(-z - self._k, self._cm, self._nm)
+        lead = z.shape[:-1]
+        both = (2, *lead)  # the upper and the lower side in one pass
+        c0 = np.stack([np.broadcast_to(self._cp, lead), np.broadcast_to(self._cm, lead)])
+        n0 = np.stack([np.broadcast_to(self._np, lead), np.broadcast_to(self._nm, lead)])
+        c2, run2 = self._side(np.stack([z - self._k, -z - self._k]), c0, n0)
+        cp, cm, run_p, run_m = c2[0], c2[1], run2[0], run2[1]
         up = cp >= cm
         c = np.where(up, cp, cm)
         self.runs = np.where(up, run_p, run_m)
         with np.errstate(invalid="ignore", divide="ignore"):
             size = np.where(self.runs > 0, self._k + c / self.runs, 0.0)
         self.shifts = np.where(up, size, -size)
-        self._cp, self._cm = _carried(cp, self._cp, last), _carried(cm, self._cm, last)
-        self._np, self._nm = _carried(run_p, self._np, last), _carried(run_m, self._nm, last)
+        last2 = None if last is None else np.broadcast_to(last, both)
+        self._cp, self._cm = _carried(c2, c0, last2)
+        self._np, self._nm = _carried(run2, n0, last2)
         return c / self._h
 
     @property

@@ -341,8 +341,10 @@ class MonitorBank:
         self.dt[sel] = np.fmin(self.dt[sel], step)
         self.last_t[sel] = tt[-1]
         starts = np.flatnonzero(np.concatenate([[True], b[1:] != b[:-1]]))
-        sums = np.add.reduceat(np.where(valid, x, 0.0), starts, axis=1)
-        cnts = np.add.reduceat(valid, starts, axis=1, dtype=np.int64)
+        usable = x.copy()
+        np.copyto(usable, 0.0, where=~valid)  # (faster than np.where on a streams x frames matrix)
+        sums = np.add.reduceat(usable, starts, axis=1)
+        cnts = np.add.reduceat(valid, starts, axis=1, dtype=np.int32).astype(np.int64)
         seg = b[starts]
         close = np.concatenate([[0], starts[1:]])
         has_open, open_b = self.has_open[sel], self.open_b[sel]
@@ -362,17 +364,27 @@ class MonitorBank:
         return bnum, bsum, bcnt, exists, close
 
     def update(self, t: np.ndarray, x: np.ndarray, ok: np.ndarray,
-               rows: Sequence[int] | np.ndarray | None = None) -> tuple[np.ndarray, ...]:
+               rows: Sequence[int] | np.ndarray | None = None, *, finite: bool = False) -> tuple[np.ndarray, ...]:
         """Feed one block of frames to the monitors ``rows`` (all by default): epoch times ``t`` (n,) (s,
         increasing), values ``x`` and usable masks ``ok`` (rows, n). Returns the fields of :class:`DriftOutput`,
-        each (rows, n)."""
+        each (rows, n). ``finite``: the caller has made sure ``x`` is finite wherever ``ok`` is true."""
+        value, state, per_col, frames = self.columns(t, x, ok, rows, finite=finite)
+        rest = np.repeat(per_col[1:], frames, axis=2)
+        return value, state, rest[0], rest[1], rest[2], rest[3]
+
+    def columns(self, t: np.ndarray, x: np.ndarray, ok: np.ndarray,
+                rows: Sequence[int] | np.ndarray | None = None, *,
+                finite: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """As :meth:`update`, with the fields other than the value and state not yet spread over the frames: returns
+        ``value`` and ``state`` (rows, n), every field per column (field, rows, c) in the order of
+        :class:`DriftOutput` without ``state``, and the frames of each column (c,) (``np.repeat`` spreads them)."""
         t = np.asarray(t, dtype=float)
         n = t.shape[0]
         idx = np.arange(self.size) if rows is None else np.asarray(rows, dtype=np.intp)
         everyone = idx.shape[0] == self.size and (rows is None or bool((idx == np.arange(self.size)).all()))
         sel: np.ndarray | slice = slice(None) if everyone else idx
         r = idx.shape[0]
-        valid = ok & np.isfinite(x)
+        valid = ok if finite else ok & np.isfinite(x)
         fin_t = np.isfinite(t)
         closed = None
         if n and fin_t.any():
@@ -381,77 +393,100 @@ class MonitorBank:
             tt = np.where(np.isfinite(tt), tt, t[fin_t][0])
             forward = t >= tt
             if not forward.all():
-                valid &= forward
+                valid = valid & forward
             b = np.floor(tt / self.period).astype(np.int64)
             ahead = self.has_open[sel] & (self.open_b[sel] > b[0])  # an open batch later than the frames
             if ahead.any():
-                if r > 1:
-                    parts = [self.update(t, x[k:k + 1], ok[k:k + 1], rows=[int(idx[k])]) for k in range(r)]
-                    return tuple(np.concatenate([p[f] for p in parts]) for f in range(len(parts[0])))
+                if r > 1:  # one by one, each spread over the frames (a column per frame)
+                    parts = [self.update(t, x[k:k + 1], ok[k:k + 1], rows=[int(idx[k])], finite=finite)
+                             for k in range(r)]
+                    value, state, *rest = (np.concatenate([p[f] for p in parts]) for f in range(len(parts[0])))
+                    return value, state, np.stack([value, *rest]), np.ones(n, dtype=np.int64)
                 run = np.maximum(b, self.open_b[sel][0])
-                valid &= b == run  # a frame earlier than the open batch counts for nothing
+                valid = valid & (b == run)  # a frame earlier than the open batch counts for nothing
                 b = run
             closed = self._closed(sel, tt, b, x, valid)
         elif n:
-            valid &= fin_t
+            valid = valid & fin_t
         held = self.held[:, sel].copy()
-        if closed is None or closed[0].shape[1] == 0:
-            fields = np.repeat(held[:, :, None], n, axis=2)
+        if closed is None:
+            per_col, frames = held[:, :, None], np.array([n])
         else:
-            fields = self._detect(sel, idx, closed, held, n)
-        state = np.where(~valid, GATED, np.where(np.isnan(fields[0]), LEARNING, OK)).astype(np.int8)
-        value = np.where(state == OK, fields[0], math.nan)
-        return value, state, fields[1], fields[2], fields[3], fields[4]
+            per_col, frames = self._detect(sel, idx, closed, held, n)
+        # every frame takes its column's output; a frame the stream could not use is gated
+        value = np.repeat(per_col[0], frames, axis=1)
+        state = np.repeat(np.where(np.isnan(per_col[0]), LEARNING, OK).astype(np.int8), frames, axis=1)
+        gated = ~valid
+        np.copyto(state, np.int8(GATED), where=gated)
+        np.copyto(value, math.nan, where=gated)
+        return value, state, per_col, frames
 
     def _detect(self, sel: np.ndarray | slice, idx: np.ndarray, closed: tuple[np.ndarray, ...], held: np.ndarray,
-                n: int) -> np.ndarray:
-        """Learn from and detect on the closed batches; the fields of every frame (field, rows, n)."""
+                n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Learn from and detect on the closed batches. Returns the fields per stream and column (field, rows, c)
+        and the frames of each column (c,): the frames from one closing to the next take the output of the
+        stream's last detector batch closed so far (the held one before the first)."""
         bnum, bsum, bcnt, exists, close = closed
         period = self.period
+        rows = bnum.shape[0]
+        whole = np.array([n])
+        if bnum.shape[1] == 0:
+            return held[:, :, None], whole
         # frames a batch should have: period / grid step, rounded (epoch times carry rounding of ~1e-7 s)
         dt = self.dt[sel]
         with np.errstate(invalid="ignore", divide="ignore"):
             expected = np.where(np.isnan(dt), 1.0, np.maximum(1.0, np.round(period / dt)))
         accepted = exists & (bcnt >= np.maximum(1.0, 0.5 * expected)[:, None])
         means = bsum / np.maximum(bcnt, 1)
-        learning = ~self.has_base[sel] & accepted.any(axis=1)
-        for k in np.flatnonzero(learning).tolist():
-            cols = np.flatnonzero(accepted[k])
-            used = self._learn(int(idx[k]), bnum[k, cols], means[k, cols])
-            accepted[k, cols[:used]] = False
+        based = self.has_base[sel]
+        if not based.all():
+            for k in np.flatnonzero(~based & accepted.any(axis=1)).tolist():
+                cols = np.flatnonzero(accepted[k])
+                used = self._learn(int(idx[k]), bnum[k, cols], means[k, cols])
+                accepted[k, cols[:used]] = False
         count = accepted.sum(axis=1)
         m = int(count.max())
         if m == 0:
-            return np.repeat(held[:, :, None], n, axis=2)
+            return held[:, :, None], whole
         # each stream's detector batches, in order, to the left (columns from count on: padding)
-        order = np.argsort(~accepted, axis=1, kind="stable")[:, :m]
-        bs, xs = _take(bnum, order), _take(means, order)
-        real = np.arange(m) < count[:, None]
+        rix = np.arange(rows)[:, None]
+        if (accepted == accepted[0]).all():  # the usual: every stream has the same batches
+            cols = np.flatnonzero(accepted[0])
+            bs, xs = bnum[:, cols], means[:, cols]
+            real = None
+        else:
+            order = np.argsort(~accepted, axis=1, kind="stable")[:, :m]
+            bs, xs = bnum[rix, order], means[rix, order]
+            real = np.arange(m) < count[:, None]
+        got = count > 0
         has_prev = self.has_prev[sel]
         before = np.concatenate([np.where(has_prev, self.prev_b[sel], -2)[:, None], bs[:, :-1]], axis=1)
         prev_mean = np.concatenate([np.where(has_prev, self.prev_mean[sel], math.nan)[:, None], xs[:, :-1]], axis=1)
         prev = np.where(bs == before + 1, prev_mean, math.nan)
-        got = count > 0
-        lastcol = np.maximum(count - 1, 0)[:, None]
+        lastcol = np.maximum(count - 1, 0)
         self.has_prev[sel] = has_prev | got
-        self.prev_b[sel] = np.where(got, _take(bs, lastcol)[:, 0], self.prev_b[sel])
-        self.prev_mean[sel] = np.where(got, _take(xs, lastcol)[:, 0], self.prev_mean[sel])
+        self.prev_b[sel] = np.where(got, bs[rix[:, 0], lastcol], self.prev_b[sel])
+        self.prev_mean[sel] = np.where(got, xs[rix[:, 0], lastcol], self.prev_mean[sel])
         # standardise (AR(1) prediction errors; the marginal where the predecessor is unknown), as standardise()
         mu, rho = self.b_mean[sel][:, None], self.b_rho[sel][:, None]
         scale = self.b_scale[sel][:, None]
         marginal = (xs - mu) / self.b_div[sel][:, None]
         with np.errstate(invalid="ignore"):
             z = np.where((rho != 0.0) & np.isfinite(prev), ((xs - mu) - rho * (prev - mu)) / scale, marginal)
-        z = np.where(real, z, 0.0)
+        if real is not None:
+            z = np.where(real, z, 0.0)
         ends = (bs + 1) * period
         # the end times of the detector's batches, for the change-time estimate
         n_det = self.n_det[sel]
-        start = got & (n_det == 0) & np.isnan(self.ends[idx, 0])
+        start = got & (n_det == 0)
         if start.any():
+            start &= np.isnan(self.ends[idx, 0])
             self.ends[idx[start], 0] = bs[start, 0] * period  # the batch before the detector's first: its start
         j = n_det[:, None] + np.arange(m)  # detector batch numbers
         total = n_det + count
-        write = real & (j + 1 >= (total - HISTORY)[:, None])
+        write = j + 1 >= (total - HISTORY)[:, None]
+        if real is not None:
+            write &= real
         wr, wc = np.nonzero(write)
         self.ends[idx[wr], (j[wr, wc] + 1) % (HISTORY + 1)] = ends[wr, wc]
         self.n_det[sel] = total
@@ -459,7 +494,7 @@ class MonitorBank:
         value = np.full(z.shape, math.nan)
         size = np.full(z.shape, math.nan)
         runs = np.zeros(z.shape, dtype=np.int64)
-        charted = np.zeros(z.shape[0], dtype=bool)
+        charted = np.zeros(rows, dtype=bool)
         for chart, mine in ((self._cusum, self.is_cusum), (self._ewma, self.is_ewma)):
             if chart is None:
                 continue
@@ -480,8 +515,11 @@ class MonitorBank:
                 csize = np.where(r > 0, scale * r * chart.shifts[sel] / den, 0.0)  # Baseline.step_size
             else:
                 csize = chart.values[sel] * scale / (1.0 - rho)  # Baseline.to_units: the EWMA's own estimate
-            u = use[:, None]
-            value, size, runs = np.where(u, stat, value), np.where(u, csize, size), np.where(u, crun, runs)
+            if use.all():
+                value, size, runs = stat, csize, crun
+            else:
+                u = use[:, None]
+                value, size, runs = np.where(u, stat, value), np.where(u, csize, size), np.where(u, crun, runs)
             charted |= use
         for k in np.flatnonzero(self.is_river[sel] & got).tolist():
             river = self._river[int(idx[k])]
@@ -492,13 +530,13 @@ class MonitorBank:
         kept = self.ends[idx[:, None], q1 % (HISTORY + 1)]
         change = np.where(q1 >= np.maximum(0, total - HISTORY)[:, None], kept, ends - runs * period)
         change = np.where(charted[:, None] & (runs > 0), change, math.nan)
-        ev = np.stack([value, change, size, np.broadcast_to(self.b_mean[sel][:, None], z.shape),
-                       np.broadcast_to(self.b_sigma[sel][:, None], z.shape)])
-        # every frame takes the output of the stream's last detector batch closed at or before it (else the held)
-        table = np.concatenate([held[:, :, None], ev], axis=2)  # (field, rows, 1 + m)
-        last_det = np.cumsum(accepted, axis=1)  # per column: 1 + the detector batch closed by it or before it
-        per_col = np.take_along_axis(table, np.broadcast_to(last_det[None], (table.shape[0], *last_det.shape)), axis=2)
-        col = np.searchsorted(close, np.arange(n), side="right") - 1
-        fields = np.repeat(per_col, np.bincount(col, minlength=close.shape[0]), axis=2)
+        table = np.empty((len(_FIELDS), rows, m + 1))
+        table[:, :, 0] = held
+        table[0, :, 1:], table[1, :, 1:], table[2, :, 1:] = value, change, size
+        table[3, :, 1:], table[4, :, 1:] = self.b_mean[sel][:, None], self.b_sigma[sel][:, None]
+        # per column: 1 + the stream's last detector batch closed by it or before it (0: none, the held output)
+        last_det = np.cumsum(accepted, axis=1)
+        per_col = table[:, rix, last_det]
         self.held[:, sel] = per_col[:, :, -1]
-        return fields
+        frames = np.diff(np.concatenate([close, [n]]))
+        return per_col, frames
