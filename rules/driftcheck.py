@@ -411,10 +411,10 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
             groups.setdefault(id(bank), (bank, [], []))
             groups[id(bank)][1].append(i)
             groups[id(bank)][2].append(c._monitor.row)
-    only = next(iter(groups.values())) if len(groups) == 1 and not cut else None
-    if only is not None and only[0].size == d and only[2] == list(range(d)):
-        # the usual: one bank, all its detectors, in order; the extras spread over the frames when read
-        value, state, per_col, frames = only[0].columns(t, xs_ok, ok, finite=True)
+    if len(groups) == 1 and not cut:
+        # the usual: one bank, no operating point change; the extras spread over the frames when read
+        bank, _, rows = next(iter(groups.values()))
+        value, state, per_col, frames = bank.columns(t, xs_ok, ok, rows=rows, finite=True)
         reason = _reason(reasons, src_ok, ok, state)
         for k, i in enumerate(where):
             out[i] = CheckResult(value[k], reason[k], _Extras(per_col, k, frames, xs_ok[k]))
