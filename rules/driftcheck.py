@@ -404,16 +404,16 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
     np.copyto(xs_ok, np.nan, where=~ok)
     cut = _cut(live, block, usable, ok)
     t = block.t
-    groups: dict[int, tuple[MonitorBank, list[int], list[int]]] = {}
+    groups: dict[MonitorBank, tuple[list[int], list[int]]] = {}  # per bank: positions in live, rows in the bank
     for i, c in enumerate(live):
         if i not in cut:
-            bank = c._monitor.bank
-            groups.setdefault(id(bank), (bank, [], []))
-            groups[id(bank)][1].append(i)
-            groups[id(bank)][2].append(c._monitor.row)
+            m = c._monitor
+            pos, rows = groups.setdefault(m.bank, ([], []))
+            pos.append(i)
+            rows.append(m.row)
     if len(groups) == 1 and not cut:
         # the usual: one bank, no operating point change; the extras spread over the frames when read
-        bank, _, rows = next(iter(groups.values()))
+        bank, (_, rows) = next(iter(groups.items()))
         value, state, per_col, frames = bank.columns(t, xs_ok, ok, rows=rows, finite=True)
         reason = _reason(reasons, src_ok, ok, state)
         for k, i in enumerate(where):
@@ -421,14 +421,14 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
         return out  # type: ignore[return-value]
     # some checks cut by an operating point change, or in other banks: each group by itself
     fields = tuple(np.empty((d, n), dtype=np.int8 if f == "state" else float) for f in _FIELDS)
-    for bank, pos, rows in groups.values():
+    for bank, (pos, rows) in groups.items():
         got = bank.update(t, xs_ok[pos], ok[pos], rows=rows, finite=True)
         for whole, part in zip(fields, got, strict=True):
             whole[pos] = part
     # checks cut alike (the same pieces, one bank) run together, piece by piece
     alike: dict[tuple[object, ...], list[int]] = {}
     for i, pieces in cut.items():
-        alike.setdefault((id(live[i]._monitor.bank), *pieces), []).append(i)
+        alike.setdefault((live[i]._monitor.bank, *pieces), []).append(i)
     for pos in alike.values():
         bank = live[pos[0]]._monitor.bank
         rows = [live[i]._monitor.row for i in pos]

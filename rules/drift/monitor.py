@@ -271,7 +271,7 @@ class MonitorBank:
             if river is not None:
                 river.reset()
         self.held[:, rows] = math.nan
-        self.ends[rows] = math.nan
+        self.ends[rows, 0] = math.nan  # the other end times are written again before they are read
         self.n_det[rows] = 0
 
     def reset(self, rows: list[int]) -> None:
@@ -304,22 +304,24 @@ class MonitorBank:
         self._forget_detector([i])
 
     def _learn(self, i: int, bs: np.ndarray, means: np.ndarray) -> int:
-        """Feed accepted batches to row ``i``'s baseline; how many of them it took."""
+        """Feed accepted batches (numbers ``bs``, ``means``) to row ``i``'s baseline; how many of them it took.
+
+        A NaN goes into the learning buffer before a batch that does not follow the one before it (a gap: no lag-1
+        pair across it)."""
+        take = min(int(self.learn_batches[i] - self.learn_n[i]), bs.shape[0])
+        b, m = bs[:take], means[:take]
+        before = np.concatenate([[self.prev_b[i] if self.has_prev[i] else b[0] - 1], b[:-1]])
+        gaps = np.flatnonzero(b != before + 1)
         buf = self.learn_buf[i]
-        prev = int(self.prev_b[i]) if self.has_prev[i] else None
-        for k, (b, m) in enumerate(zip(bs.tolist(), means.tolist(), strict=True)):
-            if prev is not None and b != prev + 1:
-                buf.append(math.nan)  # a gap: no lag-1 pair across it
-            buf.append(m)
-            self.learn_n[i] += 1
-            prev = b
-            self.has_prev[i], self.prev_b[i], self.prev_mean[i] = True, b, m
-            if self.learn_n[i] >= self.learn_batches[i]:
-                self._set_baseline(i, learn_baseline(np.array(buf), sigma_floor=float(self.sigma_floor[i])))
-                self.learn_buf[i] = []
-                self.ends[i, 0] = (b + 1) * self.period  # the batch before the detector's first
-                return k + 1
-        return bs.shape[0]
+        buf.extend((np.insert(m, gaps, math.nan) if gaps.size else m).tolist())
+        self.learn_n[i] += take
+        last = int(b[-1])
+        self.has_prev[i], self.prev_b[i], self.prev_mean[i] = True, last, float(m[-1])
+        if self.learn_n[i] >= self.learn_batches[i]:
+            self._set_baseline(i, learn_baseline(np.array(buf), sigma_floor=float(self.sigma_floor[i])))
+            self.learn_buf[i] = []
+            self.ends[i, 0] = (last + 1) * self.period  # the batch before the detector's first
+        return take
 
     # -- the streams together ---------------------------------------------------------------------------------------
 
