@@ -274,21 +274,24 @@ _LINE_STATE, _OK, _INPUT_BAD = int(Reason.LINE_STATE), int(Reason.OK), int(Reaso
 
 
 class _Extras(Mapping[str, np.ndarray]):
-    """A drift result's extras (``change_time``, ``shift``, ``mean``, ``sigma``, ``residual``), each spread over the
-    frames when first read: the alarm engine reads them only for a raise."""
+    """A drift result's extras (``change_time``, ``shift``, ``mean``, ``sigma``, ``residual``: the residual on the
+    frames the check used, NaN elsewhere), each spread over the frames when first read: the alarm engine reads them
+    only for a raise."""
 
-    __slots__ = ("_cols", "_frames", "_residual", "_row", "_seen")
+    __slots__ = ("_cols", "_frames", "_ok", "_row", "_seen", "_x0")
 
-    def __init__(self, cols: np.ndarray, row: int, frames: np.ndarray, residual: np.ndarray) -> None:
-        self._cols, self._row, self._frames, self._residual = cols, row, frames, residual
+    def __init__(self, cols: np.ndarray, row: int, frames: np.ndarray, x0: np.ndarray, ok: np.ndarray) -> None:
+        self._cols, self._row, self._frames, self._x0, self._ok = cols, row, frames, x0, ok
         self._seen: dict[str, np.ndarray] = {}
 
     def __getitem__(self, key: str) -> np.ndarray:
-        if key == "residual":
-            return self._residual
         got = self._seen.get(key)
         if got is None:
-            got = self._seen[key] = np.repeat(self._cols[_EXTRAS.index(key) + 1, self._row], self._frames)
+            if key == "residual":
+                got = np.where(self._ok, self._x0, np.nan)
+            else:
+                got = np.repeat(self._cols[_EXTRAS.index(key) + 1, self._row], self._frames)
+            self._seen[key] = got
         return got
 
     def __iter__(self) -> Iterator[str]:
@@ -400,8 +403,8 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
     holding = [i for i, c in enumerate(live) if c.hold and c._monitor.learning]
     if holding:
         ok[holding] = False
-    xs_ok = x  # np.stack made it a copy of the sources' arrays: NaN where not usable
-    np.copyto(xs_ok, np.nan, where=~ok)
+    x0 = x  # np.stack made it a copy of the sources' arrays: 0.0 where not usable, as the monitors sum it
+    np.copyto(x0, 0.0, where=~ok)
     cut = _cut(live, block, usable, ok)
     t = block.t
     groups: dict[MonitorBank, tuple[list[int], list[int]]] = {}  # per bank: positions in live, rows in the bank
@@ -414,15 +417,15 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
     if len(groups) == 1 and not cut:
         # the usual: one bank, no operating point change; the extras spread over the frames when read
         bank, (_, rows) = next(iter(groups.items()))
-        value, state, per_col, frames = bank.columns(t, xs_ok, ok, rows=rows, finite=True)
+        value, state, per_col, frames = bank.columns(t, x0, ok, rows=rows, zeroed=True)
         reason = _reason(reasons, src_ok, ok, state)
         for k, i in enumerate(where):
-            out[i] = CheckResult(value[k], reason[k], _Extras(per_col, k, frames, xs_ok[k]))
+            out[i] = CheckResult(value[k], reason[k], _Extras(per_col, k, frames, x0[k], ok[k]))
         return out  # type: ignore[return-value]
     # some checks cut by an operating point change, or in other banks: each group by itself
     fields = tuple(np.empty((d, n), dtype=np.int8 if f == "state" else float) for f in _FIELDS)
     for bank, (pos, rows) in groups.items():
-        got = bank.update(t, xs_ok[pos], ok[pos], rows=rows, finite=True)
+        got = bank.update(t, x0[pos], ok[pos], rows=rows, zeroed=True)
         for whole, part in zip(fields, got, strict=True):
             whole[pos] = part
     # checks cut alike (the same pieces, one bank) run together, piece by piece
@@ -436,13 +439,14 @@ def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
             if point is not None:
                 for i in pos:
                     live[i]._operating_point(point)
-            got = bank.update(t[a:b], xs_ok[pos, a:b], ok[pos, a:b], rows=rows, finite=True)
+            got = bank.update(t[a:b], x0[pos, a:b], ok[pos, a:b], rows=rows, zeroed=True)
             for whole, part in zip(fields, got, strict=True):
                 whole[pos, a:b] = part
     value, state = fields[0], fields[1]
     reason = _reason(reasons, src_ok, ok, state)
+    residual = np.where(ok, x0, np.nan)
     for k, i in enumerate(where):
         out[i] = CheckResult(value[k], reason[k], {"change_time": fields[2][k], "shift": fields[3][k],
                                                    "mean": fields[4][k], "sigma": fields[5][k],
-                                                   "residual": xs_ok[k]})
+                                                   "residual": residual[k]})
     return out  # type: ignore[return-value]

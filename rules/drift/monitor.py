@@ -325,14 +325,14 @@ class MonitorBank:
 
     # -- the streams together ---------------------------------------------------------------------------------------
 
-    def _closed(self, sel: np.ndarray | slice, tt: np.ndarray, b: np.ndarray, x: np.ndarray,
+    def _closed(self, sel: np.ndarray | slice, tt: np.ndarray, b: np.ndarray, usable: np.ndarray,
                 valid: np.ndarray) -> tuple[np.ndarray, ...]:
         """The batches the frames close, per stream ``(rows, S)``: batch number, sum, usable frames, whether it is
         one, and the frame at which each column closes ``(S,)``. Column 0 is the batch carried in from the block
         before when the block does not continue it; the open batch is carried to the next block.
 
         ``tt``: the frame times (their running maximum), ``b`` their batch numbers, the same for every stream (the
-        streams' open batches are not ahead of them)."""
+        streams' open batches are not ahead of them); ``usable``: the values, 0.0 where not ``valid``."""
         n = tt.shape[0]
         steps = np.diff(tt)
         steps = steps[steps > 0]
@@ -343,8 +343,6 @@ class MonitorBank:
         self.dt[sel] = np.fmin(self.dt[sel], step)
         self.last_t[sel] = tt[-1]
         starts = np.flatnonzero(np.concatenate([[True], b[1:] != b[:-1]]))
-        usable = x.copy()
-        np.copyto(usable, 0.0, where=~valid)  # (faster than np.where on a streams x frames matrix)
         sums = np.add.reduceat(usable, starts, axis=1)
         cnts = np.add.reduceat(valid, starts, axis=1, dtype=np.int32).astype(np.int64)
         seg = b[starts]
@@ -366,17 +364,17 @@ class MonitorBank:
         return bnum, bsum, bcnt, exists, close
 
     def update(self, t: np.ndarray, x: np.ndarray, ok: np.ndarray,
-               rows: Sequence[int] | np.ndarray | None = None, *, finite: bool = False) -> tuple[np.ndarray, ...]:
+               rows: Sequence[int] | np.ndarray | None = None, *, zeroed: bool = False) -> tuple[np.ndarray, ...]:
         """Feed one block of frames to the monitors ``rows`` (all by default): epoch times ``t`` (n,) (s,
         increasing), values ``x`` and usable masks ``ok`` (rows, n). Returns the fields of :class:`DriftOutput`,
-        each (rows, n). ``finite``: the caller has made sure ``x`` is finite wherever ``ok`` is true."""
-        value, state, per_col, frames = self.columns(t, x, ok, rows, finite=finite)
+        each (rows, n). ``zeroed``: the caller has made ``x`` finite wherever ``ok`` is true and 0.0 elsewhere."""
+        value, state, per_col, frames = self.columns(t, x, ok, rows, zeroed=zeroed)
         rest = np.repeat(per_col[1:], frames, axis=2)
         return value, state, rest[0], rest[1], rest[2], rest[3]
 
     def columns(self, t: np.ndarray, x: np.ndarray, ok: np.ndarray,
                 rows: Sequence[int] | np.ndarray | None = None, *,
-                finite: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+                zeroed: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """As :meth:`update`, with the fields other than the value and state not yet spread over the frames: returns
         ``value`` and ``state`` (rows, n), every field per column (field, rows, c) in the order of
         :class:`DriftOutput` without ``state``, and the frames of each column (c,) (``np.repeat`` spreads them)."""
@@ -386,7 +384,7 @@ class MonitorBank:
         everyone = idx.shape[0] == self.size and (rows is None or bool((idx == np.arange(self.size)).all()))
         sel: np.ndarray | slice = slice(None) if everyone else idx
         r = idx.shape[0]
-        valid = ok if finite else ok & np.isfinite(x)
+        valid = ok if zeroed else ok & np.isfinite(x)
         fin_t = np.isfinite(t)
         closed = None
         if n and fin_t.any():
@@ -400,14 +398,14 @@ class MonitorBank:
             ahead = self.has_open[sel] & (self.open_b[sel] > b[0])  # an open batch later than the frames
             if ahead.any():
                 if r > 1:  # one by one, each spread over the frames (a column per frame)
-                    parts = [self.update(t, x[k:k + 1], ok[k:k + 1], rows=[int(idx[k])], finite=finite)
+                    parts = [self.update(t, x[k:k + 1], ok[k:k + 1], rows=[int(idx[k])], zeroed=zeroed)
                              for k in range(r)]
                     value, state, *rest = (np.concatenate([p[f] for p in parts]) for f in range(len(parts[0])))
                     return value, state, np.stack([value, *rest]), np.ones(n, dtype=np.int64)
                 run = np.maximum(b, self.open_b[sel][0])
                 valid = valid & (b == run)  # a frame earlier than the open batch counts for nothing
                 b = run
-            closed = self._closed(sel, tt, b, x, valid)
+            closed = self._closed(sel, tt, b, x if zeroed and valid is ok else np.where(valid, x, 0.0), valid)
         elif n:
             valid = valid & fin_t
         held = self.held[:, sel].copy()
