@@ -463,10 +463,14 @@ class MonitorBank:
         before = np.concatenate([np.where(has_prev, self.prev_b[sel], -2)[:, None], bs[:, :-1]], axis=1)
         prev_mean = np.concatenate([np.where(has_prev, self.prev_mean[sel], math.nan)[:, None], xs[:, :-1]], axis=1)
         prev = np.where(bs == before + 1, prev_mean, math.nan)
-        lastcol = np.maximum(count - 1, 0)
-        self.has_prev[sel] = has_prev | got
-        self.prev_b[sel] = np.where(got, bs[rix[:, 0], lastcol], self.prev_b[sel])
-        self.prev_mean[sel] = np.where(got, xs[rix[:, 0], lastcol], self.prev_mean[sel])
+        if real is None:  # every stream got the same m batches
+            self.has_prev[sel] = True
+            self.prev_b[sel], self.prev_mean[sel] = bs[:, -1], xs[:, -1]
+        else:
+            lastcol = np.maximum(count - 1, 0)
+            self.has_prev[sel] = has_prev | got
+            self.prev_b[sel] = np.where(got, bs[rix[:, 0], lastcol], self.prev_b[sel])
+            self.prev_mean[sel] = np.where(got, xs[rix[:, 0], lastcol], self.prev_mean[sel])
         # standardise (AR(1) prediction errors; the marginal where the predecessor is unknown), as standardise()
         mu, rho = self.b_mean[sel][:, None], self.b_rho[sel][:, None]
         scale = self.b_scale[sel][:, None]
@@ -484,11 +488,14 @@ class MonitorBank:
             self.ends[idx[start], 0] = bs[start, 0] * period  # the batch before the detector's first: its start
         j = n_det[:, None] + np.arange(m)  # detector batch numbers
         total = n_det + count
-        write = j + 1 >= (total - HISTORY)[:, None]
-        if real is not None:
-            write &= real
-        wr, wc = np.nonzero(write)
-        self.ends[idx[wr], (j[wr, wc] + 1) % (HISTORY + 1)] = ends[wr, wc]
+        if real is None and m <= HISTORY + 1:  # every batch of the block is among the last HISTORY + 1
+            self.ends[idx[:, None], (j + 1) % (HISTORY + 1)] = ends
+        else:
+            write = j + 1 >= (total - HISTORY)[:, None]
+            if real is not None:
+                write &= real
+            wr, wc = np.nonzero(write)
+            self.ends[idx[wr], (j[wr, wc] + 1) % (HISTORY + 1)] = ends[wr, wc]
         self.n_det[sel] = total
         # the detectors
         value = np.full(z.shape, math.nan)
