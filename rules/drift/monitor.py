@@ -200,6 +200,7 @@ class MonitorBank:
         self.period = periods.pop()
         self.monitors = tuple(monitors)
         d = self.size = len(monitors)
+        self._all, self._idx = list(range(d)), np.arange(d)  # every row
         kinds = [m.detector for m in monitors]
         self.learn_batches = np.array([m.learn_batches for m in monitors], dtype=np.int64)
         self.sigma_floor = np.array([m.sigma_floor for m in monitors])
@@ -342,7 +343,7 @@ class MonitorBank:
             step = np.where(first > 0, np.fmin(first, inner), inner)
         self.dt[sel] = np.fmin(self.dt[sel], step)
         self.last_t[sel] = tt[-1]
-        starts = np.flatnonzero(np.concatenate([[True], b[1:] != b[:-1]]))
+        starts = np.concatenate([[0], np.flatnonzero(b[1:] != b[:-1]) + 1])
         sums = np.add.reduceat(usable, starts, axis=1)
         cnts = np.add.reduceat(valid, starts, axis=1, dtype=np.int32).astype(np.int64)
         seg = b[starts]
@@ -380,17 +381,21 @@ class MonitorBank:
         :class:`DriftOutput` without ``state``, and the frames of each column (c,) (``np.repeat`` spreads them)."""
         t = np.asarray(t, dtype=float)
         n = t.shape[0]
-        idx = np.arange(self.size) if rows is None else np.asarray(rows, dtype=np.intp)
-        everyone = idx.shape[0] == self.size and (rows is None or bool((idx == np.arange(self.size)).all()))
-        sel: np.ndarray | slice = slice(None) if everyone else idx
+        if rows is None or (len(rows) == self.size and list(rows) == self._all):
+            idx, sel = self._idx, slice(None)
+        else:
+            idx = sel = np.asarray(rows, dtype=np.intp)
         r = idx.shape[0]
         valid = ok if zeroed else ok & np.isfinite(x)
         fin_t = np.isfinite(t)
         closed = None
         if n and fin_t.any():
             # time that runs back (or is not a number) makes a frame unusable; batching follows the running maximum
-            tt = np.maximum.accumulate(np.where(fin_t, t, -np.inf))
-            tt = np.where(np.isfinite(tt), tt, t[fin_t][0])
+            if fin_t.all():
+                tt = np.maximum.accumulate(t)
+            else:
+                tt = np.maximum.accumulate(np.where(fin_t, t, -np.inf))
+                tt = np.where(np.isfinite(tt), tt, t[fin_t][0])
             forward = t >= tt
             if not forward.all():
                 valid = valid & forward
