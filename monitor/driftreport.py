@@ -46,8 +46,7 @@ def drift_designs(checks: list[Check]) -> list[DriftDesign]:
     out = []
     for name, cs in rows.items():
         c = cs[0]
-        m = c._monitor
-        d = m.design
+        d = c.design
         if c.detector == "cusum":
             params = f"k {d['k']:.2f}, h {d['h']:.1f}"
             delay = cusum_arl(d["k"], d["h"], c.shift) * c.period

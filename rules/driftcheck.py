@@ -25,19 +25,24 @@ by the check that owns the physics and read from :attr:`Block.results`; see :dat
 Its value is the detector's statistic (1.0 = drift detected); its extras give the estimated change
 time, the size of the change in the residual's own unit, and the baseline. The alarm is of its own
 kind, advisory by default, and blames what the source check blames.
+
+The pipeline evaluates all drift checks of a line together (:meth:`DriftCheck.batch`, :class:`DriftBatch`): their
+detectors' state is stacked in one :class:`~spanwatch.rules.drift.monitor.MonitorBank` and one pass over a
+detectors x frames matrix serves them all; a check's own ``update`` is the same evaluation for a batch of one.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
-from dataclasses import dataclass, fields
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from typing import ClassVar
 
 import numpy as np
 from spanwatch.rules.base import AlarmDefaults, Block, Check, CheckResult, LineState, Reason, blames_of, state_mask
-from spanwatch.rules.drift import Baseline, DriftMonitor, DriftOutput
+from spanwatch.rules.drift import Baseline, DriftMonitor
 from spanwatch.rules.drift.design import arl0_for
+from spanwatch.rules.drift.monitor import MonitorBank
 from spanwatch.rules.linemodel import DriftSettings, LineModel
 
 RUNNING = (LineState.RUNNING,)
@@ -145,11 +150,10 @@ class DriftCheck:
         self._baselines: list[tuple[float, Baseline]] = []  # (line speed m/s, baseline learnt there)
         self._speed: float | None = None  # line speed of the current operating point
         self._grade: float | None = None  # the grade in production (``grade/line``), when the line publishes it
-        self._monitor = self._new_monitor()
-
-    def _new_monitor(self) -> DriftMonitor:
-        return DriftMonitor(self.detector, period=self.period, learn=self.learn, shift=self.shift, arl0=self.arl0,
-                            sigma_floor=self.sigma_floor, params=self.params or None)
+        # the winders whose roll change re-learns it
+        self._winders = frozenset(source.object_id if w == "*" else w for w in residual.roll_change)
+        self._monitor = DriftMonitor(self.detector, period=self.period, learn=self.learn, shift=self.shift,
+                                     arl0=self.arl0, sigma_floor=self.sigma_floor, params=self.params or None)
 
     @classmethod
     def for_line(cls, line: LineModel, sources: list[Check] | None = None) -> Iterator[DriftCheck]:
@@ -168,6 +172,21 @@ class DriftCheck:
                       shift=float(over.get("shift", s.shift)),  # type: ignore[arg-type]
                       arl0=arl0, sigma_floor=float(over.get("sigma_floor", r.sigma_floor)),  # type: ignore[arg-type]
                       speed_band=s.speed_band)
+
+    @classmethod
+    def batch(cls, checks: Sequence[DriftCheck]) -> DriftBatch:
+        """All ``checks`` evaluated together (see :class:`DriftBatch`)."""
+        return DriftBatch(checks)
+
+    @property
+    def baseline(self) -> Baseline | None:
+        """The baseline in use at the current operating point (None while learning)."""
+        return self._monitor.baseline
+
+    @property
+    def design(self) -> dict[str, float]:
+        """The detector's parameters (CUSUM ``k``, ``h``; EWMA ``lam``, ``L``; {} for river's)."""
+        return self._monitor.design
 
     def reset(self) -> None:
         """After a gap: forget the partial batch, keep the baselines."""
@@ -189,49 +208,13 @@ class DriftCheck:
             self._baselines = [(v, b) for v, b in self._baselines if abs(v / self._speed - 1.0) > self.speed_band / 2]
             self._baselines.append((self._speed, self._monitor.baseline))
         self._speed = speed
-        self._monitor = self._new_monitor()
+        self._monitor.renew()
         known = min(self._baselines, key=lambda vb: abs(vb[0] / speed - 1.0), default=None)
         if known is not None and abs(known[0] / speed - 1.0) <= self.speed_band / 2:
             self._monitor.use_baseline(known[1])
 
     def update(self, block: Block) -> CheckResult:
-        n = block.n
-        res = block.results.get(self.source_key)
-        value = np.full(n, np.nan)
-        reason = np.full(n, int(Reason.INPUT_BAD), dtype=np.int8)
-        extras = {k: np.full(n, np.nan) for k in ("change_time", "shift", "mean", "sigma", "residual")}
-        if res is None:
-            return CheckResult(value, reason, extras)
-        x = res.value if self.residual.field == "value" else res.extras.get(self.residual.field)
-        if x is None:
-            return CheckResult(value, reason, extras)
-        grade = block.signals.get("grade/line")
-        if grade is not None and grade.ok.any():
-            g = grade.value[grade.ok]
-            if (self._grade is not None and g[0] != self._grade) or (g[1:] != g[:-1]).any():
-                self.relearn()  # a new grade: its residuals have levels of their own
-            self._grade = float(g[-1])
-        for w in self.residual.roll_change:
-            starts = block.roll_start.get(self.source_key[1] if w == "*" else w)
-            if starts is not None and starts.any():
-                self.relearn()
-        ok = res.valid & state_mask(block.line_state, self.residual.states) & np.isfinite(x)
-        if self.hold and self._monitor.learning:
-            ok = np.zeros(n, dtype=bool)
-        xs = np.where(ok, x, np.nan)
-        parts = [self._monitor.update(block.t[a:b], xs[a:b], ok[a:b]) if point is None else
-                 self._at(point, block.t[a:b], xs[a:b], ok[a:b]) for a, b, point in self._pieces(block, ok)]
-        out = parts[0] if len(parts) == 1 else DriftOutput(
-            *(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(DriftOutput)))
-        reason = np.where(ok, out.state, np.where(res.valid, int(Reason.LINE_STATE), res.reason)).astype(np.int8)
-        value = np.where(reason == int(Reason.OK), out.value, np.nan)
-        extras = {"change_time": out.change_time, "shift": out.shift, "mean": out.mean, "sigma": out.sigma,
-                  "residual": xs}
-        return CheckResult(value, reason, extras)
-
-    def _at(self, speed: float, t: np.ndarray, x: np.ndarray, ok: np.ndarray) -> DriftOutput:
-        self._operating_point(speed)
-        return self._monitor.update(t, x, ok)
+        return evaluate([self], block)[0]
 
     def _pieces(self, block: Block, ok: np.ndarray) -> list[tuple[int, int, float | None]]:
         """The block cut where the operating point changes: (start, end, line speed there or None to keep it).
@@ -260,3 +243,210 @@ class DriftCheck:
         for i, (a, v) in enumerate(cuts):
             out.append((a, cuts[i + 1][0] if i + 1 < len(cuts) else n, v))
         return out
+
+
+class DriftBatch:
+    """The drift checks of a line evaluated together (:class:`~spanwatch.rules.base.CheckBatch`).
+
+    Building it moves the checks' detectors, state and all, into one
+    :class:`~spanwatch.rules.drift.monitor.MonitorBank` per batch period (one on a line); :meth:`update` is
+    :func:`evaluate` over all of them. Each check keeps working on its own (``update``, ``reset``, ``relearn``,
+    ``hold``): its state is its row of the bank."""
+
+    def __init__(self, checks: Sequence[DriftCheck]) -> None:
+        self.checks = tuple(checks)
+        periods: dict[float, list[DriftMonitor]] = {}
+        for c in self.checks:
+            periods.setdefault(c._monitor.period, []).append(c._monitor)
+        for monitors in periods.values():
+            MonitorBank(monitors)
+
+    def update(self, block: Block) -> list[CheckResult]:
+        return evaluate(self.checks, block)
+
+    def reset(self) -> None:
+        for c in self.checks:
+            c.reset()
+
+
+_FIELDS = ("value", "state", "change_time", "shift", "mean", "sigma")
+_LINE_STATE, _OK, _INPUT_BAD = int(Reason.LINE_STATE), int(Reason.OK), int(Reason.INPUT_BAD)
+
+
+class _Extras(Mapping[str, np.ndarray]):
+    """A drift result's extras (``change_time``, ``shift``, ``mean``, ``sigma``, ``residual``: the residual on the
+    frames the check used, NaN elsewhere), each spread over the frames when first read: the alarm engine reads them
+    only for a raise."""
+
+    __slots__ = ("_cols", "_frames", "_ok", "_row", "_seen", "_x0")
+
+    def __init__(self, cols: np.ndarray, row: int, frames: np.ndarray, x0: np.ndarray, ok: np.ndarray) -> None:
+        self._cols, self._row, self._frames, self._x0, self._ok = cols, row, frames, x0, ok
+        self._seen: dict[str, np.ndarray] = {}
+
+    def __getitem__(self, key: str) -> np.ndarray:
+        got = self._seen.get(key)
+        if got is None:
+            if key == "residual":
+                got = np.where(self._ok, self._x0, np.nan)
+            else:
+                got = np.repeat(self._cols[_EXTRAS.index(key) + 1, self._row], self._frames)
+            self._seen[key] = got
+        return got
+
+    def __iter__(self) -> Iterator[str]:
+        return iter((*_EXTRAS, "residual"))
+
+    def __len__(self) -> int:
+        return len(_EXTRAS) + 1
+
+
+_EXTRAS = ("change_time", "shift", "mean", "sigma")
+
+
+def _missing(n: int) -> CheckResult:
+    """The result of a check whose source result or field is missing: invalid, not a guess."""
+    return CheckResult(np.full(n, np.nan), np.full(n, _INPUT_BAD, dtype=np.int8),
+                       {k: np.full(n, np.nan) for k in ("change_time", "shift", "mean", "sigma", "residual")})
+
+
+def _relearn_on_events(live: list[DriftCheck], block: Block) -> None:
+    """Re-learn what a new grade (every check) or a roll change of a winder a check depends on calls for."""
+    grade = block.signals.get("grade/line")
+    if grade is not None and grade.ok.any():
+        g = grade.value[grade.ok]
+        changed = bool((g[1:] != g[:-1]).any())
+        first, last = g[0], float(g[-1])
+        for c in live:
+            if changed or (c._grade is not None and first != c._grade):
+                c.relearn()  # a new grade: its residuals have levels of their own
+            c._grade = last
+    started = {w for w, s in block.roll_start.items() if s.any()}
+    if started:
+        for c in live:
+            if c._winders & started:
+                c.relearn()
+
+
+def _cut(live: list[DriftCheck], block: Block, usable: np.ndarray,
+         ok: np.ndarray) -> dict[int, list[tuple[int, int, float | None]]]:
+    """The checks (by position) whose block is cut by an operating point change, with their pieces.
+
+    A check's frames are not cut when the line speed of every ``usable`` frame (a mask holding at least the
+    frames any check uses) lies in its current band: the speeds the cut looks at (the middle frames of its runs
+    of usable frames) lie between the smallest and the largest of them, and |v / v0 - 1| is largest at one of
+    those two.
+    That is tried for all checks at once; the others are cut as :meth:`DriftCheck._pieces` says."""
+    speed = block.signal("speed/web").value
+    with np.errstate(invalid="ignore"):
+        good = usable & np.isfinite(speed) & (speed > 0)
+    if not good.any():
+        return {}
+    lo, hi = float(speed[good].min()), float(speed[good].max())
+    out = {}
+    for i, c in enumerate(live):
+        v0 = c._speed
+        if v0 is not None and abs(lo / v0 - 1.0) <= c.speed_band and abs(hi / v0 - 1.0) <= c.speed_band:
+            continue
+        pieces = c._pieces(block, ok[i])
+        if pieces[0][2] is not None or len(pieces) > 1:
+            out[i] = pieces
+    return out
+
+
+def _reason(reasons: np.ndarray, src_ok: np.ndarray, ok: np.ndarray, state: np.ndarray) -> np.ndarray:
+    """Per check and frame: the monitor's state where the check could use the frame, else why not (its source's
+    reason, or the line state). The monitor's value is already NaN wherever its state is not OK."""
+    reason = (reasons + src_ok).astype(np.int8, copy=False)  # LINE_STATE (1) where the source is valid (0)
+    np.copyto(reason, state, where=ok)
+    return reason
+
+
+def evaluate(checks: Sequence[DriftCheck], block: Block) -> list[CheckResult]:
+    """The results of ``checks`` for ``block``, in order: what each check's own evaluation gives, computed together.
+
+    Per check: its source's residual (from :attr:`Block.results`), re-learnt on a new grade or a roll change of a
+    winder it depends on, gated to the frames its source marks valid in the line states where the residual means
+    something (none while it holds and has no baseline), cut where the operating point changes, decimated,
+    standardised and charted by its monitor. All of this runs over a checks x frames matrix and each bank's
+    monitors in one call; only checks whose block an operating point change cuts run piece by piece."""
+    n = block.n
+    out: list[CheckResult | None] = [None] * len(checks)
+    live: list[DriftCheck] = []
+    where: list[int] = []
+    xs, results = [], []
+    for i, c in enumerate(checks):
+        res = block.results.get(c.source_key)
+        x = None if res is None else res.value if c.residual.field == "value" else res.extras.get(c.residual.field)
+        if res is None or x is None:
+            out[i] = _missing(n)
+            continue
+        live.append(c)
+        where.append(i)
+        xs.append(x)
+        results.append(res)
+    if not live:
+        return out  # type: ignore[return-value]
+    _relearn_on_events(live, block)
+    d = len(live)
+    x = np.stack(xs).astype(float, copy=False)  # a new array (it is written below)
+    reasons = np.stack([r.reason for r in results])
+    src_ok = reasons == _OK
+    masks = {c.residual.states for c in live}
+    if len(masks) == 1:
+        states = state_mask(block.line_state, live[0].residual.states)
+        usable = states
+    else:
+        states = np.stack([state_mask(block.line_state, c.residual.states) for c in live])
+        usable = states.any(axis=0)
+    ok = src_ok & states & np.isfinite(x)
+    holding = [i for i, c in enumerate(live) if c.hold and c._monitor.learning]
+    if holding:
+        ok[holding] = False
+    x0 = x  # np.stack made it a copy of the sources' arrays: 0.0 where not usable, as the monitors sum it
+    np.copyto(x0, 0.0, where=~ok)
+    cut = _cut(live, block, usable, ok)
+    t = block.t
+    groups: dict[MonitorBank, tuple[list[int], list[int]]] = {}  # per bank: positions in live, rows in the bank
+    for i, c in enumerate(live):
+        if i not in cut:
+            m = c._monitor
+            pos, rows = groups.setdefault(m.bank, ([], []))
+            pos.append(i)
+            rows.append(m.row)
+    if len(groups) == 1 and not cut:
+        # the usual: one bank, no operating point change; the extras spread over the frames when read
+        bank, (_, rows) = next(iter(groups.items()))
+        value, state, per_col, frames = bank.columns(t, x0, ok, rows=rows, zeroed=True)
+        reason = _reason(reasons, src_ok, ok, state)
+        for k, i in enumerate(where):
+            out[i] = CheckResult(value[k], reason[k], _Extras(per_col, k, frames, x0[k], ok[k]))
+        return out  # type: ignore[return-value]
+    # some checks cut by an operating point change, or in other banks: each group by itself
+    fields = tuple(np.empty((d, n), dtype=np.int8 if f == "state" else float) for f in _FIELDS)
+    for bank, (pos, rows) in groups.items():
+        got = bank.update(t, x0[pos], ok[pos], rows=rows, zeroed=True)
+        for whole, part in zip(fields, got, strict=True):
+            whole[pos] = part
+    # checks cut alike (the same pieces, one bank) run together, piece by piece
+    alike: dict[tuple[object, ...], list[int]] = {}
+    for i, pieces in cut.items():
+        alike.setdefault((live[i]._monitor.bank, *pieces), []).append(i)
+    for pos in alike.values():
+        bank = live[pos[0]]._monitor.bank
+        rows = [live[i]._monitor.row for i in pos]
+        for a, b, point in cut[pos[0]]:
+            if point is not None:
+                for i in pos:
+                    live[i]._operating_point(point)
+            got = bank.update(t[a:b], x0[pos, a:b], ok[pos, a:b], rows=rows, zeroed=True)
+            for whole, part in zip(fields, got, strict=True):
+                whole[pos, a:b] = part
+    value, state = fields[0], fields[1]
+    reason = _reason(reasons, src_ok, ok, state)
+    residual = np.where(ok, x0, np.nan)
+    for k, i in enumerate(where):
+        out[i] = CheckResult(value[k], reason[k], {"change_time": fields[2][k], "shift": fields[3][k],
+                                                   "mean": fields[4][k], "sigma": fields[5][k],
+                                                   "residual": residual[k]})
+    return out  # type: ignore[return-value]

@@ -264,3 +264,122 @@ def test_the_result_does_not_depend_on_how_frames_are_cut_into_blocks() -> None:
         np.testing.assert_array_equal(r.reason, results[0].reason)
         np.testing.assert_allclose(r.value, results[0].value, rtol=1e-12, equal_nan=True)
     assert (np.nan_to_num(results[0].value) >= 1.0).any()  # the step is found either way
+
+
+def _lines(seconds: float, streams: dict[tuple[str, str], dict[str, np.ndarray]], *, speed: np.ndarray,
+           state: np.ndarray, valid: dict[tuple[str, str], np.ndarray], grade: np.ndarray, roll_start_at: int,
+           sizes: list[int]) -> list[Block]:
+    """Blocks of the given ``sizes`` (frames) carrying several source results, each with its own residual streams
+    (``streams``: per source key, its fields), a line speed, line states, a grade and a roll change of the rewind."""
+    n = int(seconds * RATE)
+    t = 1.0e9 + np.arange(n) / RATE
+    out, i, k = [], 0, 0
+    while i < n:
+        sl = slice(i, min(n, i + sizes[k % len(sizes)]))
+        m = sl.stop - sl.start
+        b = Block(t=t[sl], signals={"speed/web": Signal(speed[sl].copy(), np.ones(m, dtype=bool)),
+                                    "grade/line": Signal(grade[sl].copy(), np.ones(m, dtype=bool))},
+                  line_state=state[sl].copy(), tags=TagFrames((), np.zeros((m, 0)), np.zeros((m, 0), np.int8),
+                                                              np.zeros((m, 0))))
+        for key, fields in streams.items():
+            ok = valid.get(key, np.ones(n, dtype=bool))[sl]
+            reason = np.where(ok, int(Reason.OK), int(Reason.INPUT_BAD)).astype(np.int8)
+            vals = {f: np.where(ok, v[sl], np.nan) for f, v in fields.items()}
+            b.results[key] = CheckResult(vals.pop("value"), reason, vals)
+        rs = np.zeros(m, dtype=bool)
+        if sl.start <= roll_start_at < sl.stop:
+            rs[roll_start_at - sl.start] = True
+        b.roll_start = {"rewind": rs, "unwind": np.zeros(m, dtype=bool)}
+        out.append(b)
+        i, k = sl.stop, k + 1
+    return out
+
+
+def test_drift_checks_evaluated_together_answer_as_each_alone() -> None:
+    # The pipeline evaluates all drift checks at once (DriftCheck.batch: stacked batch means, standardisation and
+    # charts). Against the per-object path (each check's own update), over 50 min of residual streams in which the
+    # detectors learn, alarm, are acknowledged (relearn), hold, follow a speed change and back, a grade change, a
+    # roll change, a gap (reset), invalid and stopped stretches; with every detector kind, different designs and a
+    # check whose source field is missing. Every result, extras included, must be the same to the bit.
+    seconds = 3000.0
+    n = int(seconds * RATE)
+    sec = np.arange(n) / RATE
+    speed = np.where((sec >= 1500) & (sec < 2100), 6.0, 5.0)  # a new operating point for 10 min, then back
+    state = np.full(n, int(LineState.RUNNING), dtype=np.int8)
+    state[(sec >= 600) & (sec < 650)] = int(LineState.STOPPED)
+    for at, s in ((1500, LineState.ACCELERATING), (2100, LineState.DECELERATING)):
+        state[(sec >= at) & (sec < at + 20)] = int(s)
+    grade = np.where(sec < 2400, 1.0, 2.0)
+    level = np.where(speed > 5.5, 4.0, 0.0)  # the residuals' level moves with the operating point
+
+    def noise(seed: int, sigma: float = 1.0) -> np.ndarray:
+        return _noise(seconds, sigma, seed) + sigma * level
+
+    draw, ratio = noise(11), noise(12, 0.01) + 1.0
+    draw[sec >= 900] += 4.0  # a step: the draw detector alarms
+    # batch means with a material lag-1 autocorrelation (AR(1), phi 0.7): the standardisation uses the predecessor
+    levels = np.zeros(int(seconds / 10) + 1)
+    shocks = np.random.default_rng(19).standard_normal(levels.size)
+    for i in range(1, levels.size):
+        levels[i] = 0.7 * levels[i - 1] + shocks[i]
+    slip = 1e-3 * (np.repeat(levels, BLOCK)[:n] + level)
+    util = noise(13, 0.02) + 0.5
+    util[sec >= 1200] += 0.08
+    streams = {("draw", "s5"): {"value": draw, "residual": draw, "ratio": ratio},
+               ("traction", "pull_1"): {"value": util, "utilisation": util, "mu_demonstrated": noise(14, 0.01)},
+               ("roll_diameter", "rewind"): {"value": noise(15), "caliper_ratio": noise(16, 0.005) + 1.0},
+               ("slip", "pull_1"): {"value": slip},
+               ("idler_lag", "idler_3"): {"value": noise(18, 1e-3)}}
+    invalid = np.ones(n, dtype=bool)
+    invalid[((sec >= 1000) & (sec < 1100)) | ((sec >= 1515) & (sec < 1545))] = False  # also across a speed change
+    blocks = _lines(seconds, streams, speed=speed, state=state, valid={("slip", "pull_1"): invalid}, grade=grade,
+                    roll_start_at=int(2700 * RATE), sizes=[3000, 1234, 3000, 517, 2900])
+    by_name = {r.name: r for r in RESIDUALS}
+    base = dict(period=10.0, learn=300.0, shift=1.0, arl0=1e4, sigma_floor=0.0, speed_band=0.1)
+    specs = [("draw", ("draw", "s5"), dict(detector="cusum")),
+             ("draw.gain", ("draw", "s5"), dict(detector="ewma")),
+             ("traction", ("traction", "pull_1"), dict(detector="cusum", shift=2.0)),
+             ("traction.mu", ("traction", "pull_1"), dict(detector="ewma", shift=0.5, learn=200.0)),
+             ("caliper", ("roll_diameter", "rewind"), dict(detector="page_hinkley")),
+             ("slip", ("slip", "pull_1"), dict(detector="cusum", sigma_floor=1e-3)),
+             ("idler_lag", ("idler_lag", "idler_3"), dict(detector="adwin")),
+             ("length_rate", ("length_rate", "rewind"), dict(detector="cusum")),  # no such source result
+             ("runout", ("draw", "s5"), dict(detector="cusum"))]  # a source without the field it reads
+
+    def make() -> list[DriftCheck]:
+        return [DriftCheck(_Source(*key), by_name[name], **{**base, **kw})  # type: ignore[arg-type]
+                for name, key, kw in specs]
+
+    alone, together = make(), make()
+    batch = DriftCheck.batch(together)
+    assert list(batch.checks) == together
+    seen: dict[str, set[str]] = {"alarm": set(), "ok": set(), "kept": set()}
+    for k, b in enumerate(blocks):
+        t0 = float(b.t[0]) - 1.0e9
+        for checks in (alone, together):
+            checks[2].hold = t0 < 400.0  # an alarm stands on what the traction detector blames: it learns nothing
+            if 1300.0 <= t0 < 1300.0 + 60:
+                checks[0].relearn()  # the draw drift is acknowledged: its level is the new normal
+        if 1900.0 <= t0 < 1900.0 + 60:  # a gap in the data
+            for c in alone:
+                c.reset()
+            batch.reset()
+        one = [c.update(b) for c in alone]
+        many = batch.update(b)
+        for c, a, g in zip(alone, one, many, strict=True):
+            np.testing.assert_array_equal(g.reason, a.reason, err_msg=f"{c.object_id} block {k}")
+            np.testing.assert_array_equal(g.value, a.value, err_msg=f"{c.object_id} block {k}")
+            assert list(g.extras) == list(a.extras)
+            for f in a.extras:
+                np.testing.assert_array_equal(g.extras[f], a.extras[f], err_msg=f"{c.object_id} {f} block {k}")
+            if (np.nan_to_num(a.value) >= 1.0).any():
+                seen["alarm"].add(c.object_id)
+            if (a.reason == int(Reason.OK)).any():
+                seen["ok"].add(c.object_id)
+            if c._baselines:
+                seen["kept"].add(c.object_id)
+    # the comparison covered detection, not only learning: detectors left learning and some alarmed
+    assert {"draw.s5", "traction.pull_1", "slip.pull_1", "caliper.rewind"} <= seen["ok"]
+    assert "draw.s5" in seen["alarm"]
+    assert {"draw.s5", "slip.pull_1"} <= seen["kept"]  # the speed change kept a baseline per operating point
+    assert [c._baselines for c in alone] == [c._baselines for c in together]

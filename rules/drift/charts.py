@@ -4,7 +4,10 @@ Both take standardised samples ``z`` (in control: mean 0, standard deviation 1, 
 return a statistic per sample scaled so that 1.0 is the decision limit, and carry their state from
 one call to the next. Both are vectorised over the samples of a call (no per-sample Python loop)
 and over any leading axes: ``z`` of shape ``(runs, n)`` updates ``runs`` independent charts at once
-(Monte Carlo run lengths, or many streams).
+(Monte Carlo run lengths, or many streams). The parameters may be given per chart (arrays of the leading
+shape), a call may carry padding after each chart's real samples (``last``: how many are real), and single charts
+of the leading axis can be restarted (:meth:`restart`) or take another chart's state (:meth:`put`): what a bank of
+drift detectors on different residual streams needs.
 
 Neither chart resets itself after a signal: the statistic stays at or above 1.0 while the shift
 persists (an alarm condition, not an event); the caller decides when to learn again and calls
@@ -21,6 +24,23 @@ __all__ = ["Ewma", "TabularCusum"]
 def _state(value: np.ndarray | float, shape: tuple[int, ...]) -> np.ndarray:
     """``value`` broadcast to ``shape`` as a writable float array."""
     return np.array(np.broadcast_to(np.asarray(value, dtype=float), shape))
+
+
+def _param(value: float | np.ndarray) -> tuple[float | np.ndarray, float | np.ndarray]:
+    """A chart parameter as given (a float, or an array with one per chart) and in the form that broadcasts against
+    samples ``(..., n)`` (the array with a trailing axis)."""
+    a = np.asarray(value, dtype=float)
+    return (float(a), float(a)) if a.ndim == 0 else (a, a[..., None])
+
+
+def _carried(per_sample: np.ndarray, old: np.ndarray, last: np.ndarray | None) -> np.ndarray:
+    """The state to carry after a call: the value after the last sample, or, with ``last`` (real samples per chart,
+    the rest padding), after each chart's last real sample (the old state where it had none)."""
+    n = per_sample.shape[-1]
+    if last is None or (last == n).all():
+        return per_sample[..., -1].copy()
+    at = np.take_along_axis(per_sample, np.maximum(last - 1, 0)[..., None], axis=-1)[..., 0]
+    return np.where(last > 0, at, old)
 
 
 class TabularCusum:
@@ -64,19 +84,20 @@ class TabularCusum:
     array([1.25])
     """
 
-    def __init__(self, k: float, h: float) -> None:
-        if not (k >= 0 and h > 0):
+    def __init__(self, k: float | np.ndarray, h: float | np.ndarray, *, shape: tuple[int, ...] = ()) -> None:
+        if not (np.all(np.asarray(k) >= 0) and np.all(np.asarray(h) > 0)):
             raise ValueError(f"TabularCusum needs k >= 0 and h > 0, got k={k}, h={h}")
-        self.k = float(k)
-        self.h = float(h)
+        self.k, self._k = _param(k)
+        self.h, self._h = _param(h)
+        self.shape = tuple(np.broadcast_shapes(shape, np.shape(self.k), np.shape(self.h)))
         self.reset()
 
     def reset(self) -> None:
         """Forget the sums and runs: both sides start again from zero."""
-        self._cp: np.ndarray = np.zeros(())
-        self._cm: np.ndarray = np.zeros(())
-        self._np: np.ndarray = np.zeros((), dtype=np.int64)
-        self._nm: np.ndarray = np.zeros((), dtype=np.int64)
+        self._cp: np.ndarray = np.zeros(self.shape)
+        self._cm: np.ndarray = np.zeros(self.shape)
+        self._np: np.ndarray = np.zeros(self.shape, dtype=np.int64)
+        self._nm: np.ndarray = np.zeros(self.shape, dtype=np.int64)
         self.runs = np.zeros(0, dtype=np.int64)
         self.shifts = np.zeros(0)
 
@@ -84,6 +105,17 @@ class TabularCusum:
         """Keep only ``rows`` of a batch of independent charts (the leading axis), e.g. the Monte Carlo runs
         that have not signalled yet."""
         self._cp, self._cm, self._np, self._nm = (a[rows] for a in (self._cp, self._cm, self._np, self._nm))
+
+    def restart(self, rows: np.ndarray | slice) -> None:
+        """Start the charts ``rows`` of the leading axis (built with ``shape``) again from zero."""
+        for a in (self._cp, self._cm, self._np, self._nm):
+            a[rows] = 0
+
+    def put(self, rows: np.ndarray | slice, other: TabularCusum, other_rows: np.ndarray | slice) -> None:
+        """Give the charts ``rows`` the sums and runs of ``other``'s charts ``other_rows``."""
+        for mine, theirs in ((self._cp, other._cp), (self._cm, other._cm), (self._np, other._np),
+                             (self._nm, other._nm)):
+            mine[rows] = theirs[other_rows] if theirs.ndim else theirs
 
     @staticmethod
     def _side(y: np.ndarray, c0: np.ndarray, n0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -97,22 +129,31 @@ class TabularCusum:
         run = np.where(last_zero >= 0, idx - last_zero, idx + 1 + np.broadcast_to(n0, s.shape[:-1])[..., None])
         return c, run
 
-    def update(self, z: np.ndarray) -> np.ndarray:
-        """Feed samples ``z`` (..., n); return max(C+, C-)/h per sample (above 1.0: signal)."""
+    def update(self, z: np.ndarray, last: np.ndarray | None = None) -> np.ndarray:
+        """Feed samples ``z`` (..., n); return max(C+, C-)/h per sample (above 1.0: signal).
+
+        ``last`` (an int array of the leading shape): how many samples of each chart are real; the samples after
+        them are padding (their statistics mean nothing) and the state carried is the one after the last real
+        sample (unchanged for a chart with none)."""
         z = np.asarray(z, dtype=float)
         if z.shape[-1] == 0:
             return np.zeros(z.shape)
-        cp, run_p = self._side(z - self.k, self._cp, self._np)
-        cm, run_m = self._side(-z - self.k, self._cm, self._nm)
+        lead = z.shape[:-1]
+        both = (2, *lead)  # the upper and the lower side in one pass
+        c0 = np.stack([np.broadcast_to(self._cp, lead), np.broadcast_to(self._cm, lead)])
+        n0 = np.stack([np.broadcast_to(self._np, lead), np.broadcast_to(self._nm, lead)])
+        c2, run2 = self._side(np.stack([z - self._k, -z - self._k]), c0, n0)
+        cp, cm, run_p, run_m = c2[0], c2[1], run2[0], run2[1]
         up = cp >= cm
         c = np.where(up, cp, cm)
         self.runs = np.where(up, run_p, run_m)
         with np.errstate(invalid="ignore", divide="ignore"):
-            size = np.where(self.runs > 0, self.k + c / self.runs, 0.0)
+            size = np.where(self.runs > 0, self._k + c / self.runs, 0.0)
         self.shifts = np.where(up, size, -size)
-        self._cp, self._cm = cp[..., -1].copy(), cm[..., -1].copy()
-        self._np, self._nm = run_p[..., -1].copy(), run_m[..., -1].copy()
-        return c / self.h
+        last2 = None if last is None else np.broadcast_to(last, both)
+        self._cp, self._cm = _carried(c2, c0, last2)
+        self._np, self._nm = _carried(run2, n0, last2)
+        return c / self._h
 
     @property
     def upper(self) -> np.ndarray | float:
@@ -181,12 +222,14 @@ class Ewma:
     array([1. , 1.5])
     """
 
-    def __init__(self, lam: float, L: float, *, exact_limits: bool = True) -> None:
-        if not (0 < lam <= 1 and L > 0):
+    def __init__(self, lam: float | np.ndarray, L: float | np.ndarray, *, exact_limits: bool = True,
+                 shape: tuple[int, ...] = ()) -> None:
+        if not (np.all((np.asarray(lam) > 0) & (np.asarray(lam) <= 1)) and np.all(np.asarray(L) > 0)):
             raise ValueError(f"Ewma needs 0 < lam <= 1 and L > 0, got lam={lam}, L={L}")
-        self.lam = float(lam)
-        self.L = float(L)
+        self.lam, self._lam = _param(lam)
+        self.L, self._L = _param(L)
         self.exact_limits = exact_limits
+        self.shape = tuple(np.broadcast_shapes(shape, np.shape(self.lam), np.shape(self.L)))
         from scipy.signal import lfilter  # here, not at import: scipy.signal takes most of a second to import
 
         self._lfilter = lfilter
@@ -194,44 +237,72 @@ class Ewma:
 
     def reset(self) -> None:
         """Start again: w = 0, the limits from their first (narrowest) value."""
-        self._w: np.ndarray = np.zeros(())
-        self._i = 0
-        self._run: np.ndarray = np.zeros((), dtype=np.int64)
+        self._w: np.ndarray = np.zeros(self.shape)
+        self._i: np.ndarray = np.zeros(self.shape, dtype=np.int64)  # samples since the reset, per chart
+        self._run: np.ndarray = np.zeros(self.shape, dtype=np.int64)
         self.values = np.zeros(0)
         self.runs = np.zeros(0, dtype=np.int64)
 
     def keep(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` of a batch of independent charts (the leading axis)."""
         self._w, self._run = self._w[rows], self._run[rows]
+        if self._i.ndim:
+            self._i = self._i[rows]
+
+    def restart(self, rows: np.ndarray | slice) -> None:
+        """Start the charts ``rows`` of the leading axis (built with ``shape``) again: w = 0, the limits from
+        their first value."""
+        for a in (self._w, self._i, self._run):
+            a[rows] = 0
+
+    def put(self, rows: np.ndarray | slice, other: Ewma, other_rows: np.ndarray | slice) -> None:
+        """Give the charts ``rows`` the state of ``other``'s charts ``other_rows``."""
+        for mine, theirs in ((self._w, other._w), (self._i, other._i), (self._run, other._run)):
+            mine[rows] = theirs[other_rows] if theirs.ndim else theirs
 
     def sigma_w(self, i: np.ndarray) -> np.ndarray:
-        """Standard deviation of w_i in control (sample i counted from 1 after a reset)."""
-        a = self.lam / (2.0 - self.lam)
+        """Standard deviation of w_i in control (sample i counted from 1 after a reset; with a ``lam`` per chart,
+        ``i`` is (..., n) for the charts of the leading axis)."""
+        a = self._lam / (2.0 - self._lam)
         if not self.exact_limits:
-            return np.full(np.shape(i), np.sqrt(a))
-        return np.sqrt(a * (1.0 - (1.0 - self.lam) ** (2.0 * np.asarray(i, dtype=float))))
+            return np.broadcast_to(np.sqrt(a), np.broadcast_shapes(np.shape(i), np.shape(a))).copy()
+        return np.sqrt(a * (1.0 - (1.0 - self._lam) ** (2.0 * np.asarray(i, dtype=float))))
 
-    def update(self, z: np.ndarray) -> np.ndarray:
-        """Feed samples ``z`` (..., n); return |w_i| / (L sigma_w,i) per sample (above 1.0: signal)."""
+    def _filter(self, z: np.ndarray, w0: np.ndarray) -> np.ndarray:
+        """w over the samples ``z`` (..., n) from w0 (lead shape), with one lfilter per distinct ``lam``."""
+        if np.ndim(self.lam) == 0:
+            lam = float(self.lam)
+            w, _ = self._lfilter([lam], [1.0, -(1.0 - lam)], z, axis=-1, zi=(1.0 - lam) * w0[..., None])
+            return w
+        lams = np.broadcast_to(self.lam, z.shape[:-1])
+        w = np.empty(z.shape)
+        for lam in np.unique(lams).tolist():
+            sel = lams == lam
+            w[sel], _ = self._lfilter([lam], [1.0, -(1.0 - lam)], z[sel], axis=-1, zi=(1.0 - lam) * w0[sel][..., None])
+        return w
+
+    def update(self, z: np.ndarray, last: np.ndarray | None = None) -> np.ndarray:
+        """Feed samples ``z`` (..., n); return |w_i| / (L sigma_w,i) per sample (above 1.0: signal).
+
+        ``last``: as for :meth:`TabularCusum.update` (real samples per chart, the rest padding)."""
         z = np.asarray(z, dtype=float)
         n = z.shape[-1]
         if n == 0:
             return np.zeros(z.shape)
         lead = z.shape[:-1]
-        zi = (1.0 - self.lam) * np.broadcast_to(self._w, lead)[..., None]
-        w, _ = self._lfilter([self.lam], [1.0, -(1.0 - self.lam)], z, axis=-1, zi=zi)
-        i = np.arange(self._i + 1, self._i + n + 1)
-        stat = np.abs(w) / (self.L * self.sigma_w(i))
+        w = self._filter(z, np.broadcast_to(self._w, lead))
+        i = np.broadcast_to(self._i, lead)[..., None] + np.arange(1, n + 1)
+        stat = np.abs(w) / (self._L * self.sigma_w(i))
         sign = np.sign(w)
         prev = np.broadcast_to(np.sign(self._w), lead)[..., None]
         idx = np.arange(n)
         change = sign != np.concatenate([prev, sign[..., :-1]], axis=-1)
-        last = np.maximum.accumulate(np.where(change, idx, -1), axis=-1)
-        run = np.where(last >= 0, idx - last + 1, idx + 1 + np.broadcast_to(self._run, lead)[..., None])
+        since = np.maximum.accumulate(np.where(change, idx, -1), axis=-1)
+        run = np.where(since >= 0, idx - since + 1, idx + 1 + np.broadcast_to(self._run, lead)[..., None])
         self.runs = run
-        self._run = run[..., -1].copy()
-        self._w = w[..., -1].copy()
-        self._i += n
+        self._run = _carried(run, np.broadcast_to(self._run, lead), last)
+        self._w = _carried(w, np.broadcast_to(self._w, lead), last)
+        self._i = self._i + (n if last is None else last)
         self.values = w
         return stat
 
