@@ -46,6 +46,7 @@ class BlockColumns:
     tag_index: np.ndarray
     quality_words: list[str]
     quality_index: np.ndarray
+    rows: int
 
 
 def _dictionary(col: pa.ChunkedArray) -> tuple[list[str], np.ndarray] | None:
@@ -68,9 +69,15 @@ def _python_refuses(part: bytes, rows: np.ndarray) -> bool:
     return False
 
 
-def block_columns(part: bytes, lines: int, width: int) -> BlockColumns | None:
-    """Parse ``part`` (``lines`` whole lines, each ending in LF, no header) of a ``width``-column file (3 or 4);
-    None when the block must be read line by line (see the module docstring)."""
+def block_columns(part: bytes, width: int) -> BlockColumns | None:
+    """Parse ``part`` (whole lines, each ending in LF, no header) of a ``width``-column file (3 or 4); None when
+    the block must be read line by line (see the module docstring). ``rows`` of the result is the number of lines.
+
+    Without a CR in the block, Arrow ends a row at LF only, so its rows are the lines; with one, the LFs are
+    counted and must equal the rows (a lone CR would have cut a line in two).
+    """
+    if not part:
+        return None
     names = list(_NAMES[:width])
     try:
         table = pacsv.read_csv(
@@ -80,6 +87,7 @@ def block_columns(part: bytes, lines: int, width: int) -> BlockColumns | None:
             convert_options=_CONVERT[width])
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
         return None
+    lines = part.count(b"\n") if b"\r" in part else table.num_rows
     if table.num_rows != lines or any(c.null_count for c in table.columns):
         return None
     value = table.column("value").to_numpy()
@@ -99,4 +107,4 @@ def block_columns(part: bytes, lines: int, width: int) -> BlockColumns | None:
     if time_col.num_chunks != 1:
         return None
     t, t_ok = arrow_times(time_col.chunk(0))
-    return BlockColumns(t, t_ok, value, tags[0], tags[1], quality[0], quality[1])
+    return BlockColumns(t, t_ok, value, tags[0], tags[1], quality[0], quality[1], lines)

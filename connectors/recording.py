@@ -508,10 +508,10 @@ def _chunk(part: bytes, line_no: int, width: int, index: dict[str, int], judge: 
     """One block of whole lines (each ending in LF) -> (the samples that are ready, the number of lines); problems
     counted. Arrow's CSV reader takes the block where it can vouch for it (:mod:`spanwatch.connectors.arrowcsv`),
     else it is read line by line."""
-    n = part.count(b"\n")
+    cols = block_columns(part, width) if fast else None
+    n = cols.rows if cols is not None else part.count(b"\n")
     problems.rows += n
     nums = np.arange(line_no + 1, line_no + 1 + n, dtype=np.int64)
-    cols = block_columns(part, n, width) if fast and n else None
     if cols is not None:
         rows = _rows_of(nums, cols.t, cols.t_ok, cols.value, np.ones(n, dtype=bool), cols.tag_texts, cols.tag_index,
                         cols.quality_words, cols.quality_index, index)

@@ -60,7 +60,7 @@ def _assert_same(a, b) -> None:
 def test_a_clean_recording_takes_the_fast_path_for_every_block():
     data = _file(300, iso=True)
     body = data[data.index(b"\n") + 1:]
-    cols = block_columns(body, body.count(b"\n"), 4)
+    cols = block_columns(body, 4)
     assert cols is not None and cols.t_ok.all()
     want = [datetime.fromisoformat(line.split(b",")[0].decode()).timestamp() for line in body.splitlines()]
     np.testing.assert_array_equal(cols.t, want)
@@ -78,14 +78,14 @@ def test_fast_and_line_by_line_agree_on_clean_files_of_every_time_form():
 def test_a_block_the_fast_path_cannot_vouch_for_is_read_line_by_line():
     data = _file(50, iso=True)
     lines = data.split(b"\n")
-    assert block_columns(b"\n".join(lines[1:]), 50, 4) is not None
+    assert block_columns(b"\n".join(lines[1:]), 4) is not None
     stamp = b"2026-03-02T05:00:00.000Z,a.speed"
     # (row, counted as a problem): Python reads "1_0" as 10, a row without its quality field as
     # good, and a tag name with a CR after it as the name (blanks around a name are stripped)
     for bad, counted in ((b"", True), (stamp + b",1.0", False), (b"x,\xff,1,good", True),
                          (stamp + b",nan(1),good", True), (stamp + b",1_0,good", False), (stamp + b"\r,1,good", False)):
         damaged = b"\n".join([*lines[1:20], bad, *lines[20:]])
-        assert block_columns(damaged, damaged.count(b"\n"), 4) is None, bad
+        assert block_columns(damaged, 4) is None, bad
         a, b = _both(b"\n".join([lines[0], *lines[1:20], bad, *lines[20:]]), 200_000)
         _assert_same(a, b)
         # a bad row is counted, not silently used or dropped
