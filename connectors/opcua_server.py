@@ -75,6 +75,7 @@ _POLICIES = {
     "Sign": ua.SecurityPolicyType.Basic256Sha256_Sign,
     "SignAndEncrypt": ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt,
 }
+_YIELD_EVERY = 100  # writes between two turns of the event loop (about 10 ms of writing)
 _QUALITY_STATUS = (ua.StatusCodes.Good, ua.StatusCodes.Uncertain, ua.StatusCodes.Bad)
 
 
@@ -364,6 +365,11 @@ class FeedServer:
                               SourceTimestamp=datetime.fromtimestamp(t, UTC), ServerTimestamp=now)
             await self._write(self._nodes[name], dv)
             written += 1
+            if written % _YIELD_EVERY == 0:
+                # the address space's write never suspends: a batch that catches up after a stall would hold the
+                # event loop for seconds, and a client in the same loop (the demo's daemon) would see its source
+                # silent; let the loop run between slices of the batch
+                await asyncio.sleep(0)
         return written
 
     async def _pump(self) -> None:
