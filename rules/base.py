@@ -297,8 +297,9 @@ def batches_of(checks: Sequence[Check]) -> list[CheckBatch]:
     return out
 
 
-def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:
-    """First failing condition wins: ``pairs`` are (mask of frames that fail, reason) in priority order."""
+def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int | tuple[int, ...]) -> np.ndarray:
+    """First failing condition wins: ``pairs`` are (mask of frames that fail, reason) in priority order. ``n`` is
+    the number of frames, or a shape (objects x frames: a mask may then be one row shared by every object)."""
     reason = np.zeros(n, dtype=np.int8)
     unset = np.ones(n, dtype=bool)
     for failing, why in pairs:
@@ -308,8 +309,9 @@ def combine_reasons(*pairs: tuple[BoolArray, Reason], n: int) -> np.ndarray:
     return reason
 
 
-def finalise(value: FloatArray, reason: np.ndarray, **extras: FloatArray) -> CheckResult:
-    """Mark non-finite values as OUT_OF_DOMAIN, blank invalid frames, wrap as a result."""
+def blank_invalid(value: FloatArray, reason: np.ndarray) -> tuple[FloatArray, np.ndarray]:
+    """(value, reason) with non-finite values on valid frames marked OUT_OF_DOMAIN and invalid frames NaN; any
+    shape (frames, or objects x frames)."""
     value = np.asarray(value, dtype=float)
     ok = reason == _OK
     bad = ok & ~np.isfinite(value)
@@ -317,5 +319,10 @@ def finalise(value: FloatArray, reason: np.ndarray, **extras: FloatArray) -> Che
         reason = reason.copy()
         reason[bad] = _OUT_OF_DOMAIN
         ok &= ~bad
-    value = np.where(ok, value, np.nan)
+    return np.where(ok, value, np.nan), reason
+
+
+def finalise(value: FloatArray, reason: np.ndarray, **extras: FloatArray) -> CheckResult:
+    """Mark non-finite values as OUT_OF_DOMAIN, blank invalid frames, wrap as a result."""
+    value, reason = blank_invalid(value, reason)
     return CheckResult(value=value, reason=reason, extras=extras)

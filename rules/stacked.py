@@ -15,10 +15,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from spanwatch.rules.base import Block, CheckResult, Reason, Signal
-
-_OK = int(Reason.OK)
-_OUT_OF_DOMAIN = int(Reason.OUT_OF_DOMAIN)
+from spanwatch.rules.base import Block, CheckResult, Reason, Signal, blank_invalid, combine_reasons
 
 
 def column(values: Iterable[float]) -> np.ndarray:
@@ -57,14 +54,7 @@ def finalise_rows(value: np.ndarray, reason: np.ndarray, **extras: np.ndarray) -
     Non-finite values on valid frames become OUT_OF_DOMAIN, invalid frames are blanked; each extra is a matrix
     of the same shape (or a row vector ``(1, n)`` shared by every object) whose row goes with the object.
     """
-    value = np.asarray(value, dtype=float)
-    ok = reason == _OK
-    bad = ok & ~np.isfinite(value)
-    if bad.any():
-        reason = reason.copy()
-        reason[bad] = _OUT_OF_DOMAIN
-        ok &= ~bad
-    value = np.where(ok, value, np.nan)
+    value, reason = blank_invalid(value, reason)
     k = value.shape[0]
     rows = {name: (e if e.shape[0] == k else np.broadcast_to(e, value.shape)) for name, e in extras.items()}
     return [CheckResult(value=value[i], reason=reason[i], extras={name: e[i] for name, e in rows.items()})
@@ -74,13 +64,7 @@ def finalise_rows(value: np.ndarray, reason: np.ndarray, **extras: np.ndarray) -
 def combine_rows(*pairs: tuple[np.ndarray, Reason], shape: tuple[int, int]) -> np.ndarray:
     """The row-wise :func:`spanwatch.rules.base.combine_reasons`: first failing condition wins, per object and
     frame. A mask may be ``(n,)`` (the same frames fail for every object) or ``(k, n)``."""
-    reason = np.zeros(shape, dtype=np.int8)
-    unset = np.ones(shape, dtype=bool)
-    for failing, why in pairs:
-        hit = failing & unset
-        reason[hit] = int(why)
-        unset &= ~hit
-    return reason
+    return combine_reasons(*pairs, n=shape)
 
 
 Carried = float | bool | int

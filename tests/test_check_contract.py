@@ -171,14 +171,12 @@ def _same_with_extras(a: CheckResult, b: CheckResult) -> None:
                                    rtol=1e-12, atol=1e-12, equal_nan=True, err_msg=name)
 
 
-def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, blocks):
-    # The pipeline evaluates each kind's objects together (rules.base.batches_of); every result, extras included,
-    # must be what each check's own update gives, block after block (state carried), and after a reset.
-    one, together = checks_for(line.model), checks_for(line.model)
-    batches = batches_of(together)
-    assert [c for b in batches for c in b.checks] == together  # catalog order kept
+def _compare_block_by_block(one, batches, blocks, reset_at: int) -> dict:
+    """Each block through the checks one by one and through the batches, both reset before block ``reset_at``;
+    every result must agree, extras included. Returns the one-by-one results by (kind, object), block by block."""
+    seen: dict = {}
     for i, block in enumerate(blocks):
-        if i == len(blocks) // 2:
+        if i == reset_at:
             for c in one:
                 c.reset()
             for b in batches:
@@ -187,6 +185,17 @@ def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, block
         assert list(a) == list(b)
         for key in a:
             _same_with_extras(a[key], b[key])
+            seen.setdefault(key, []).append(a[key])
+    return seen
+
+
+def test_a_kind_evaluated_together_answers_as_its_objects_one_by_one(line, blocks):
+    # The pipeline evaluates each kind's objects together (rules.base.batches_of); every result, extras included,
+    # must be what each check's own update gives, block after block (state carried), and after a reset.
+    one, together = checks_for(line.model), checks_for(line.model)
+    batches = batches_of(together)
+    assert [c for b in batches for c in b.checks] == together  # catalog order kept
+    _compare_block_by_block(one, batches, blocks, reset_at=len(blocks) // 2)
 
 
 # Kinds that evaluate all their objects at once; the test above must exercise their batches, not OneByOne.
@@ -269,18 +278,7 @@ def test_stacked_kinds_answer_as_their_objects_one_by_one_through_faults(line, b
     batches = batches_of(together)
     assert {b.checks[0].kind for b in batches if isinstance(b, OneByOne)} == set()
     faulty = _faulty(blocks)
-    seen: dict = {}
-    for i, block in enumerate(faulty):
-        if i == 6:
-            for c in one:
-                c.reset()
-            for b in batches:
-                b.reset()
-        a, b = _one_by_one(one, block), _together(batches, block)
-        assert list(a) == list(b)
-        for key in a:
-            _same_with_extras(a[key], b[key])
-            seen.setdefault(key, []).append(a[key])
+    seen = _compare_block_by_block(one, batches, faulty, reset_at=6)
     n = faulty[0].n
 
     def flagged(kind, obj, i):
