@@ -112,6 +112,25 @@ def test_a_silent_source_is_one_alarm_not_one_per_tag(tmp_path):
     assert episodes[0]["cleared"], "the source's alarm clears when its data is back"
 
 
+@pytest.mark.parametrize(("silent", "lost"), [(8.0, False), (25.0, True)])
+def test_a_source_silent_from_the_start_is_lost_only_after_the_startup_grace(tmp_path, silent, lost):
+    # The daemon starts before its source delivers anything (the PLC or its publisher still starting). The default
+    # start-up grace is 10 s: a source heard 8 s after the start raised nothing; one first heard after 25 s was lost
+    # meanwhile, as one alarm of the source (no tag of it is stale), cleared once its data came.
+    clocks = Clocks()
+    d = _daemon(tmp_path, clocks)
+    for _ in range(round(silent / TICK)):
+        clocks.wall += TICK
+        clocks.elapsed += TICK
+        d.step()
+    sim = _sim()
+    sim.t0 = clocks.wall  # the data's times follow the wall clock from when it starts
+    _drive(d, sim, clocks, 20.0)
+    episodes = _finish(d)
+    assert [(e["check"], e["object"]) for e in episodes] == ([("source_lost", "plc")] if lost else [])
+    assert all(e["cleared"] for e in episodes)
+
+
 @pytest.mark.parametrize("step", [3600.0, -3600.0])
 def test_a_wall_clock_step_changes_nothing(tmp_path, step):
     # The host's clock steps by an hour (a wrong time zone fixed, a manual set): frames follow the data, the
