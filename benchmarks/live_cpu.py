@@ -1,6 +1,6 @@
 """CPU of the live daemon on the example line fed over MQTT at a chosen rate (issue 11).
 
-Usage: python benchmarks/live_cpu.py [--rate 5000] [--warmup 15] [--seconds 30] [--qos 1]
+Usage: python benchmarks/live_cpu.py [--rate 5000] [--per-message 1] [--warmup 15] [--seconds 30] [--qos 1]
 
 1. Starts its own mosquitto on a free loopback port (``tests/mqtt_broker.py``, as ``mqtt_ingest.py`` does;
    ``max_queued_messages`` raised so the broker does not cut a burst).
@@ -75,6 +75,8 @@ def publisher(plan: dict) -> None:
     seq = dict.fromkeys(mine, 0)
     sim_wall = start
     sent = 0
+    per = plan["per"]
+    buf: dict[str, list[tuple[float, float]]] = {n: [] for n in mine}
     qos = plan["qos"]
     while (now := time.time()) < plan["end"]:
         if now - sim_wall >= 0.1:  # the simulated line keeps pace with the wall clock
@@ -84,11 +86,21 @@ def publisher(plan: dict) -> None:
                 latest[names[k]] = v
         for n, due in nxt.items():
             if now >= due:
-                seq[n] += 1
-                client.publish(topics[n], f'{{"value": {latest[n]!r}, "time": {now!r}, "quality": "good", '
-                                          f'"seq": {seq[n]}}}', qos=qos)
-                sent += 1
                 nxt[n] = due + period
+                if per == 1:
+                    seq[n] += 1
+                    client.publish(topics[n], f'{{"value": {latest[n]!r}, "time": {now!r}, "quality": "good", '
+                                              f'"seq": {seq[n]}}}', qos=qos)
+                    sent += 1
+                    continue
+                buf[n].append((latest[n], due))
+                if len(buf[n]) >= per:
+                    seq[n] += 1
+                    vals, times = zip(*buf[n], strict=True)
+                    client.publish(topics[n], json.dumps({"value": vals, "time": times, "quality": "good",
+                                                          "seq": seq[n]}), qos=qos)
+                    sent += len(vals)
+                    buf[n].clear()
         time.sleep(0.0005)
     client.loop_stop()
     client.disconnect()
@@ -148,7 +160,10 @@ def wait_http(http_port: int, proc: subprocess.Popen, timeout: float = 30.0) -> 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rate", type=float, default=5000.0, help="messages per second, all tags together")
+    ap.add_argument("--rate", type=float, default=5000.0, help="samples per second, all tags together")
+    ap.add_argument("--per-message", type=int, default=1,
+                    help="samples per message: 1 sends one JSON object per sample; more send a tag's samples in "
+                         "arrays (value, time), as a buffering gateway would")
     ap.add_argument("--warmup", type=float, default=15.0)
     ap.add_argument("--seconds", type=float, default=30.0)
     ap.add_argument("--qos", type=int, default=1, choices=(0, 1))
@@ -174,9 +189,10 @@ def main() -> None:
         try:
             wait_http(http_port, daemon)
             end = time.time() + args.warmup + args.seconds + 2.0
-            pubs = [subprocess.Popen([sys.executable, __file__, "--publisher", json.dumps(
-                {"port": broker.port, "rate": args.rate, "end": end, "qos": args.qos, "part": i,
-                 "parts": args.publishers})], stdout=subprocess.PIPE, text=True) for i in range(args.publishers)]
+            plans = [{"port": broker.port, "rate": args.rate, "end": end, "qos": args.qos, "part": i,
+                      "parts": args.publishers, "per": args.per_message} for i in range(args.publishers)]
+            pubs = [subprocess.Popen([sys.executable, __file__, "--publisher", json.dumps(plan)],
+                                     stdout=subprocess.PIPE, text=True) for plan in plans]
             time.sleep(args.warmup)
 
             def pub_cpu() -> float:
@@ -192,8 +208,8 @@ def main() -> None:
             sent = {"sent": sum(o["sent"] for o in outs), "seconds": max(o["seconds"] for o in outs)}
             wall = w1 - w0
             print(f"line Q2 over MQTT (QoS {args.qos}, 15 topics), {args.publishers} publishers asked for "
-                  f"{args.rate:,.0f} msg/s in all, sent "
-                  f"{sent['sent'] / sent['seconds']:,.0f} msg/s over its run")
+                  f"{args.rate:,.0f} samples/s in all, {args.per_message} per message; sent "
+                  f"{sent['sent'] / sent['seconds']:,.0f} samples/s over its run")
             print(f"steady window {wall:.1f} s after {args.warmup:g} s warm-up: daemon took in "
                   f"{(s1 - s0) / wall:,.0f} samples/s")
             print(f"daemon CPU {c1 - c0:.2f} s in {wall:.1f} s = {100 * (c1 - c0) / wall:.1f} % of one core "

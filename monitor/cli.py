@@ -264,6 +264,8 @@ def simulate_cmd(
     publish_mqtt: Annotated[str | None, typer.Option(help="Publish the line live to this MQTT broker, HOST:PORT.")]
     = None,
     topic_prefix: Annotated[str, typer.Option(help="Topic prefix for --publish-mqtt.")] = "quillmere",
+    per_message: Annotated[int, typer.Option(help="--publish-mqtt: samples per message (more than 1: a tag's "
+                                                  "samples as arrays).")] = 1,
     speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
     """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
@@ -292,9 +294,11 @@ def simulate_cmd(
         host, _, port = publish_mqtt.rpartition(":")
         if not port.isdigit() or not 1 <= int(port) <= 65535:
             fail(f"--publish-mqtt: expected HOST:PORT such as 127.0.0.1:1883, got {publish_mqtt!r}")
+        if not 1 <= per_message <= 10_000:
+            fail(f"--per-message: expected a whole number from 1 to 10000, got {per_message}")
         try:
             asyncio.run(publish(sim, host or "127.0.0.1", int(port), prefix=topic_prefix, speedup=speedup,
-                                console=console))
+                                per_message=per_message, console=console))
         except SimulateError as exc:
             fail(str(exc))
         return

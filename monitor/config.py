@@ -87,6 +87,8 @@ class LineSection(Strict):
 
     name: str
     plant: str = ""
+    # the plant's time zone (IANA name): review commands and reports show and read local times in it
+    timezone: str = "UTC"
     max_speed: LineSpeed
     speed_tag: TagName
     # the grade (recipe, lot) in production, as a number the line's controls publish: when it changes, the drift
@@ -134,6 +136,14 @@ class LineSection(Strict):
     max_gap: Annotated[float, between(U.TIME, 0.0, 86400.0)] = 30.0
     # a sample further than this beyond its source's newest time (a recording) or the wall clock (live) is refused
     future_horizon: Annotated[float, between(U.TIME, 0.0, 86400.0)] = 60.0
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        from spanwatch.monitor.shifts import zone
+
+        zone(v)
+        return v
 
     @model_validator(mode="after")
     def _windows(self) -> LineSection:
@@ -483,6 +493,16 @@ class LineConfig(Strict):
     daemon: DaemonSection = Field(default_factory=DaemonSection)
     alarms: AlarmsSection = Field(default_factory=AlarmsSection)
     drift: DriftSection = Field(default_factory=DriftSection)
+    # the shift calendar: name -> "HH:MM-HH:MM" in the plant's local time (spanwatch.monitor.shifts)
+    shifts: dict[Ident, str] = Field(default_factory=dict)
+
+    @field_validator("shifts")
+    @classmethod
+    def _shifts(cls, v: dict[str, str]) -> dict[str, str]:
+        from spanwatch.monitor.shifts import check_overlaps, parse_shift
+
+        check_overlaps([parse_shift(n, t) for n, t in v.items()])
+        return v
 
 
 # --- loading --------------------------------------------------------------------------

@@ -66,14 +66,15 @@ def tag_topic(prefix: str, tag: str) -> str:
 
 
 async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str = "quillmere", speedup: float = 1.0,
-                       tick: float = 0.1, qos: int = 1, duration: float | None = None,
+                       tick: float = 0.1, qos: int = 1, duration: float | None = None, per_message: int = 1,
                        console: Console | None = None) -> int:
     """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality", "seq"}``, paced.
 
     The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``; at a speed-up
     they start in the past and reach the present at the end, never running ahead of the wall clock. ``seq``
     counts the messages of each topic from 1, so a subscriber can count what a broker dropped.
-    Returns the number of messages published.
+    With ``per_message`` above 1, a tag's samples go out ``per_message`` at a time, ``value`` and ``time`` as
+    arrays (the last message of a tag may hold fewer). Returns the number of messages published.
     """
     import asyncio
     import time
@@ -96,6 +97,15 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     sim.t0 = time.time() - (end - sim.t) * (1.0 - 1.0 / speedup) - sim.t if speedup > 1 else time.time() - sim.t
     topics = [tag_topic(prefix, t) for t in sim.tag_names]
     seq = [0] * len(topics)
+    held: list[list[tuple[float, float]]] = [[] for _ in topics]
+
+    def send(k: int) -> mqtt.MQTTMessageInfo:
+        seq[k] += 1
+        values, times = zip(*held[k], strict=True)
+        held[k].clear()
+        return client.publish(topics[k], json.dumps({"value": values, "time": times, "quality": "good",
+                                                     "seq": seq[k]}), qos=qos)
+
     sent = 0
     last = None
     wall0 = time.perf_counter()
@@ -103,13 +113,23 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
         while sim.t < end - 1e-9:
             b = sim.advance(min(tick * speedup, end - sim.t))
             for k, t, v in zip(b.tag.tolist(), b.t.tolist(), b.value.tolist(), strict=True):
-                seq[k] += 1
-                payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good", "seq": seq[k]})
-                last = client.publish(topics[k], payload, qos=qos)
-                sent += 1
+                if per_message == 1:
+                    seq[k] += 1
+                    payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good", "seq": seq[k]})
+                    last = client.publish(topics[k], payload, qos=qos)
+                    sent += 1
+                    continue
+                held[k].append((v, round(t, 4)))
+                if len(held[k]) >= per_message:
+                    last = send(k)
+                    sent += 1
             lag = wall0 + sim.t / speedup - time.perf_counter()
             if lag > 0:
                 await asyncio.sleep(lag)
+        for k in range(len(topics)):
+            if held[k]:
+                last = send(k)
+                sent += 1
         if last is not None:
             last.wait_for_publish(timeout=30)
     finally:

@@ -644,14 +644,16 @@ def _decoder(**kw: Any) -> PayloadDecoder:
 def test_decoder_refuses_anything_malformed_with_a_reason_and_nothing_else(payload, kind, unit):
     dec = _decoder(payload=kind, time_unit=unit, max_payload=128)
     try:
-        t, v, q, _, problem = dec.decode(payload, 1.0)
+        samples = dec.decode_many(payload, 1.0)
     except MalformedPayload as exc:
         assert exc.reason
         return
-    assert isinstance(t, float) and math.isfinite(t)
-    assert q in (0, 1, 2)
-    assert (problem is None) == math.isfinite(v)
-    assert problem is None or q == 2
+    assert samples
+    for t, v, q, _, problem in samples:
+        assert isinstance(t, float) and math.isfinite(t)
+        assert q in (0, 1, 2)
+        assert (problem is None) == math.isfinite(v)
+        assert problem is None or q == 2
 
 
 @settings(max_examples=200, deadline=None)
@@ -692,6 +694,77 @@ def test_number_payloads_that_python_would_read_but_are_not_decimal_text(payload
 def test_json_payloads_of_the_wrong_shape(doc, reason):
     with pytest.raises(MalformedPayload, match=reason):
         _decoder(payload="json").decode(json.dumps(doc).encode(), 0.0)
+
+
+@settings(max_examples=200, deadline=None)
+@given(rows=st.lists(st.tuples(st.floats(allow_nan=True, allow_infinity=True), st.integers(0, 10**12),
+                               st.sampled_from(["good", "uncertain", "bad", 0, 1, 2])), min_size=1, max_size=40),
+       shared_quality=st.booleans())
+def test_an_array_payload_is_the_samples_its_elements_would_be_one_by_one(rows, shared_quality):
+    # A message carrying a tag's samples of a while in arrays gives what the same samples give as single messages,
+    # in their order (the single-message decoding is tested above against calendar and repr).
+    dec = _decoder(payload="json", time_unit="ms", quality_path="q")
+    values, times, quals = ([r[i] for r in rows] for i in range(3))
+    if shared_quality:
+        quals = [quals[0]] * len(rows)
+    many = dec.decode_many(json.dumps({"value": values, "time": times,
+                                       "q": quals[0] if shared_quality else quals}).encode(), 1.0)
+    one = [dec.decode(json.dumps({"value": v, "time": t, "q": q}).encode(), 1.0)
+           for v, t, q in zip(values, times, quals, strict=True)]
+    assert len(many) == len(one)
+    for a, b in zip(many, one, strict=True):
+        assert a[0] == b[0] and a[2:] == b[2:]
+        assert a[1] == b[1] or (math.isnan(a[1]) and math.isnan(b[1]))
+
+
+@pytest.mark.parametrize(("doc", "reason"), [
+    ({"value": [], "time": []}, "empty array"),
+    ({"value": [1.0, 2.0], "time": [1.0]}, "array lengths differ"),
+    ({"value": [1.0, 2.0], "time": 1.0}, "wrong time type"),
+    ({"value": [1.0, 2.0]}, "missing time"),
+    ({"value": [1.0, "2"], "time": [1.0, 2.0]}, "wrong value type"),
+    ({"value": [1.0, None], "time": [1.0, 2.0]}, "wrong value type"),
+    ({"value": [1.0, 2.0], "time": [1.0, "x"]}, "wrong time type"),
+    ({"value": [1.0, 2.0], "time": [1.0, 2.0], "quality": ["good"]}, "array lengths differ"),
+    ({"value": [1.0, 2.0], "time": [1.0, 2.0], "quality": ["good", "fine"]}, "bad quality"),
+    ({"value": [[1.0], 2.0], "time": [1.0, 2.0]}, "wrong value type")])
+def test_array_payloads_of_the_wrong_shape_are_refused_whole(doc, reason):
+    with pytest.raises(MalformedPayload, match=reason):
+        _decoder(payload="json").decode_many(json.dumps(doc).encode(), 0.0)
+    with pytest.raises(MalformedPayload, match="array without times"):
+        _decoder(payload="json", time_path="").decode_many(b'{"value": [1.0, 2.0]}', 0.0)
+
+
+def test_array_payloads_through_a_real_broker_arrive_as_their_samples(mqtt_broker):
+    """Three messages of 50 samples each (one with a NaN, one malformed): 100 samples, the NaN counted and bad."""
+    n = 50
+    t = [T0 + 0.002 * k for k in range(3 * n)]
+    v = [float(k) for k in range(3 * n)]
+    v[n + 7] = math.nan
+    payloads = [("quillmere/q2/s5/tension", json.dumps({"value": v[:n], "time": t[:n], "seq": 1})),
+                ("quillmere/q2/s5/tension", json.dumps({"value": v[n:2 * n], "time": t[n:2 * n], "seq": 2})),
+                ("quillmere/q2/s5/tension", json.dumps({"value": v[2 * n:], "time": t[2 * n:-1], "seq": 3}))]
+    got = Collector()
+
+    async def main() -> MqttConnector:
+        spec = source(mqtt_broker, payload="json", value_path="value", time_path="time", seq_path="seq",
+                      time_unit="s")
+        conn = MqttConnector("broker", spec, {"q2.s5.tension": "quillmere/q2/s5/tension"}, got)
+        task = await start(conn)
+        with publisher(mqtt_broker) as pub:
+            pub.publish(payloads)
+        await until(lambda: len(got) == 2 * n and conn.stats.malformed, 10, "100 samples and one refusal")
+        await finish(conn, task)
+        return conn
+
+    conn = run(main())
+    rows = got.rows()
+    assert [r[1] for r in rows] == pytest.approx(t[:2 * n], abs=1e-6)
+    assert [r[2] for r in rows if not math.isnan(r[2])] == [x for x in v[:2 * n] if not math.isnan(x)]
+    assert [r[3] for r in rows].count(2) == 1 and math.isnan(rows[n + 7][2]) and rows[n + 7][3] == 2
+    assert conn.stats.malformed == {"quillmere/q2/s5/tension: non-finite value": 1,
+                                    "quillmere/q2/s5/tension: array lengths differ": 1}
+    assert conn.stats.lost == {}, "sequence numbers count messages, not samples"
 
 
 # --- overflow --------------------------------------------------------------------------------------
@@ -1153,6 +1226,35 @@ def test_the_simulator_publishes_a_sequence_number_per_topic(mqtt_broker):
     assert set(by_topic) == {topic_of("quillmere", t) for t in sim.tag_names}
     for seqs in by_topic.values():
         assert seqs == list(range(1, len(seqs) + 1))
+
+
+def test_the_simulator_publishes_arrays_of_samples_that_are_the_single_messages_values(mqtt_broker):
+    from spanwatch.monitor.line import load_line
+    from spanwatch.monitor.simline import SimulatedLine, load_scenario
+    from spanwatch.monitor.simulate import publish_mqtt
+
+    got: dict[int, dict[str, list[float]]] = {}
+    shapes: list[int] = []
+    for per in (1, 7):
+        sub = Subscriber(mqtt_broker, ["quillmere/#"])
+        try:
+            sc, base = load_scenario(ROOT / "config" / "scenarios" / "steady.toml")
+            sim = SimulatedLine(load_line(base), sc)
+            sent = run(publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=20.0, duration=1.0,
+                                    per_message=per))
+            sub.wait(lambda m, n=sent: len(m) == n, f"{sent} messages")
+        finally:
+            sub.close()
+        mine = got[per] = {}
+        for topic, doc, _ in sub.messages:
+            values = doc["value"] if per > 1 else [doc["value"]]
+            if per > 1:
+                assert len(doc["time"]) == len(values)
+                assert doc["time"] == sorted(doc["time"])
+                shapes.append(len(values))
+            mine.setdefault(topic, []).extend(values)
+    assert got[7] == got[1], "the same samples, in the same order per topic"
+    assert max(shapes) == 7 and sum(shapes) == sum(len(v) for v in got[1].values())
 
 
 def test_the_daemon_shows_lost_messages_in_healthz_and_metrics(mqtt_broker, tmp_path):

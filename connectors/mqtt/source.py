@@ -325,17 +325,18 @@ class MqttConnector(LiveConnector):
             if idx < 0:
                 self._bad(topic, "unknown topic")
                 return
-            t, value, quality, by_arrival, problem = self.decoder.decode(msg.payload, arrival)
-            if by_arrival:
-                self.stats.server_timestamps += 1
-            if problem is not None:
-                self._bad(topic, problem)
+            samples = self.decoder.decode_many(msg.payload, arrival)
             if self._check_seq:
                 self._sequence(topic, idx)
-            if self._check_gaps:
-                self._time_gap(topic, idx, t)
             q = self.queue
-            q.put((idx, t, value, quality, ref))
+            for t, value, quality, by_arrival, problem in samples:
+                if by_arrival:
+                    self.stats.server_timestamps += 1
+                if problem is not None:
+                    self._bad(topic, problem)
+                if self._check_gaps:
+                    self._time_gap(topic, idx, t)
+                q.put((idx, t, value, quality, ref))
             self.stats.queue_depth = len(q)
         except MalformedPayload as exc:
             self._bad(topic, exc.reason)
