@@ -107,7 +107,7 @@ def publisher(plan: dict) -> None:
     print(json.dumps({"sent": sent, "seconds": time.time() - start}))
 
 
-def write_config(folder: Path, port: int, http_port: int, qos: int) -> Path:
+def write_config(folder: Path, port: int, http_port: int, qos: int, latency: float) -> Path:
     from spanwatch.connectors.history import sqlite_url
     from spanwatch.monitor.line import load_line
 
@@ -133,16 +133,20 @@ time_unit = "s"
 [daemon]
 history = "{sqlite_url(str(folder / 'history.db'))}"
 http = "127.0.0.1:{http_port}"
-latency = "20 ms"
+latency = "{latency * 1000:.0f} ms"
 """, encoding="utf-8")
     return cfg
 
 
-def samples_in(http_port: int) -> float:
+def metric(http_port: int, *names: str) -> float:
+    """The sum of the /metrics lines that start with any of ``names``."""
     with urllib.request.urlopen(f"http://127.0.0.1:{http_port}/metrics", timeout=5) as r:
         text = r.read().decode()
-    return sum(float(line.rsplit(" ", 1)[1]) for line in text.splitlines()
-               if line.startswith("spanwatch_samples_in_total") or line.startswith("spanwatch_samples_in{"))
+    return sum(float(line.rsplit(" ", 1)[1]) for line in text.splitlines() if line.startswith(names))
+
+
+def samples_in(http_port: int) -> float:
+    return metric(http_port, "spanwatch_samples_in_total", "spanwatch_samples_in{")
 
 
 def wait_http(http_port: int, proc: subprocess.Popen, timeout: float = 30.0) -> None:
@@ -181,7 +185,11 @@ def main() -> None:
         folder = Path(tmp)
         broker = MosquittoBroker(folder, extra=["max_queued_messages 1000000", "max_inflight_messages 1000"]).start()
         http_port = free_port()
-        cfg = write_config(folder, broker.port, http_port, args.qos)
+        # a message holds a tag's samples of per-message / (rate / tags) seconds: the daemon's latency allowance
+        # covers that span (else its older samples arrive after their frames and count as late)
+        span = args.per_message / (args.rate / 15.0)
+        latency = 0.02 + (span if args.per_message > 1 else 0.0)
+        cfg = write_config(folder, broker.port, http_port, args.qos, latency)
         exe = Path(sys.executable).with_name("spanwatch")
         daemon = subprocess.Popen([str(exe), "run", "--config", str(cfg), "--log-level", "warning"],
                                   stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
@@ -212,6 +220,10 @@ def main() -> None:
                   f"{sent['sent'] / sent['seconds']:,.0f} samples/s over its run")
             print(f"steady window {wall:.1f} s after {args.warmup:g} s warm-up: daemon took in "
                   f"{(s1 - s0) / wall:,.0f} samples/s")
+            late = metric(http_port, 'spanwatch_input_issues_total{reason="late"}',
+                          'spanwatch_input_issues_total{reason="out of order"}')
+            print(f"latency allowance {1000 * latency:.0f} ms; samples late or out of order over the whole run: "
+                  f"{late:,.0f}")
             print(f"daemon CPU {c1 - c0:.2f} s in {wall:.1f} s = {100 * (c1 - c0) / wall:.1f} % of one core "
                   f"({1e6 * (c1 - c0) / max(s1 - s0, 1):.0f} us per sample); publishers "
                   f"{100 * (p1 - p0) / wall:.1f} %, "

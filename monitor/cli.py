@@ -264,8 +264,8 @@ def simulate_cmd(
     publish_mqtt: Annotated[str | None, typer.Option(help="Publish the line live to this MQTT broker, HOST:PORT.")]
     = None,
     topic_prefix: Annotated[str, typer.Option(help="Topic prefix for --publish-mqtt.")] = "quillmere",
-    per_message: Annotated[int, typer.Option(help="--publish-mqtt: samples per message (more than 1: a tag's "
-                                                  "samples as arrays).")] = 1,
+    batch: Annotated[str, typer.Option(help="--publish-mqtt: each message carries a tag's samples of this long "
+                                            "as arrays, e.g. \"0.5 s\" (0: one sample per message).")] = "0 s",
     speedup: Annotated[float, typer.Option(help="Live only: simulated seconds per wall-clock second.")] = 1.0,
 ) -> None:
     """Run the simulated line through a scenario: to a recording (and its ground truth), or live (OPC UA, MQTT)."""
@@ -294,11 +294,17 @@ def simulate_cmd(
         host, _, port = publish_mqtt.rpartition(":")
         if not port.isdigit() or not 1 <= int(port) <= 65535:
             fail(f"--publish-mqtt: expected HOST:PORT such as 127.0.0.1:1883, got {publish_mqtt!r}")
-        if not 1 <= per_message <= 10_000:
-            fail(f"--per-message: expected a whole number from 1 to 10000, got {per_message}")
+        from spanwatch.monitor import units as U
+
+        try:
+            batch_s = U.to_si(batch, U.TIME)
+        except ValueError as exc:
+            fail(f"--batch: {exc}")
+        if not 0.0 <= batch_s <= 60.0:
+            fail(f"--batch: expected a duration from 0 s to 60 s, got {batch!r}")
         try:
             asyncio.run(publish(sim, host or "127.0.0.1", int(port), prefix=topic_prefix, speedup=speedup,
-                                per_message=per_message, console=console))
+                                batch=batch_s, console=console))
         except SimulateError as exc:
             fail(str(exc))
         return

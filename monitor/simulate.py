@@ -66,15 +66,17 @@ def tag_topic(prefix: str, tag: str) -> str:
 
 
 async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str = "quillmere", speedup: float = 1.0,
-                       tick: float = 0.1, qos: int = 1, duration: float | None = None, per_message: int = 1,
+                       tick: float = 0.1, qos: int = 1, duration: float | None = None, batch: float = 0.0,
                        console: Console | None = None) -> int:
     """Publish the simulated line to an MQTT broker as JSON ``{"value", "time", "quality", "seq"}``, paced.
 
     The simulated clock starts now, so timestamps are wall-clock times at ``speedup = 1``; at a speed-up
     they start in the past and reach the present at the end, never running ahead of the wall clock. ``seq``
     counts the messages of each topic from 1, so a subscriber can count what a broker dropped.
-    With ``per_message`` above 1, a tag's samples go out ``per_message`` at a time, ``value`` and ``time`` as
-    arrays (the last message of a tag may hold fewer). Returns the number of messages published.
+    With ``batch`` (seconds of the line's time) above 0, samples are held and every tag's samples of each
+    ``batch`` go out together as one message, ``value`` and ``time`` as arrays, as a gateway that publishes every
+    ``batch`` does (a subscriber then needs a latency allowance of at least ``batch``). Returns the number of
+    messages published.
     """
     import asyncio
     import time
@@ -110,19 +112,24 @@ async def publish_mqtt(sim: SimulatedLine, host: str, port: int, *, prefix: str 
     last = None
     wall0 = time.perf_counter()
     try:
+        step = min(tick * speedup, batch) if batch > 0 else tick * speedup
+        batch_start = sim.t
         while sim.t < end - 1e-9:
-            b = sim.advance(min(tick * speedup, end - sim.t))
+            b = sim.advance(min(step, end - sim.t))
             for k, t, v in zip(b.tag.tolist(), b.t.tolist(), b.value.tolist(), strict=True):
-                if per_message == 1:
+                if batch <= 0:
                     seq[k] += 1
                     payload = json.dumps({"value": v, "time": round(t, 4), "quality": "good", "seq": seq[k]})
                     last = client.publish(topics[k], payload, qos=qos)
                     sent += 1
-                    continue
-                held[k].append((v, round(t, 4)))
-                if len(held[k]) >= per_message:
-                    last = send(k)
-                    sent += 1
+                else:
+                    held[k].append((v, round(t, 4)))
+            if batch > 0 and sim.t - batch_start >= batch - 1e-9:
+                batch_start = sim.t
+                for k in range(len(topics)):
+                    if held[k]:
+                        last = send(k)
+                        sent += 1
             lag = wall0 + sim.t / speedup - time.perf_counter()
             if lag > 0:
                 await asyncio.sleep(lag)

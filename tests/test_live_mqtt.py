@@ -20,7 +20,7 @@ from pathlib import Path
 import paho.mqtt.client as mqtt
 from livewait import assert_outage_committed, until
 from paho.mqtt.enums import CallbackAPIVersion
-from spanwatch.connectors.history import sqlite_url
+from spanwatch.connectors.history import History, query_episodes, sqlite_url
 from spanwatch.monitor.daemon import Daemon
 from spanwatch.monitor.line import load_line
 from spanwatch.monitor.simline import SimulatedLine, load_scenario
@@ -109,9 +109,10 @@ startup_grace = "2 s"
     assert not errors, errors
 
 
-def test_daemon_reads_samples_published_in_arrays_without_a_false_alarm(mqtt_broker, tmp_path):
-    # The simulated line at its own rates (50 Hz tags), each tag's samples 10 to a message: every sample reaches
-    # the pipeline, none is refused or counted lost, frames follow the data, and the steady line raises nothing.
+def test_daemon_reads_samples_published_in_batches_without_a_false_alarm(mqtt_broker, tmp_path):
+    # The simulated line at its own rates (50 Hz and 10 Hz tags), each tag's samples of 0.5 s in one message, as a
+    # gateway that publishes twice a second: every sample reaches the pipeline, none is refused, late or counted
+    # lost, and the steady line raises nothing, given a latency allowance that covers the batch.
     cfg = tmp_path / "line.toml"
     cfg.write_text(f"""extends = "{ROOT / 'config' / 'quillmere-q2-mqtt.toml'}"
 
@@ -123,10 +124,11 @@ client_id = "spanwatch-test-{uuid.uuid4().hex[:8]}"
 history = "{sqlite_url(str(tmp_path / 'h.db'))}"
 http = ""
 startup_grace = "5 s"
+latency = "0.7 s"
 """, encoding="utf-8")
     line = load_line(cfg)
 
-    async def scenario() -> tuple[int, dict, dict, list, int]:
+    async def scenario() -> tuple[int, dict, dict, int, int]:
         sc, base = load_scenario(STEADY)
         sim = SimulatedLine(load_line(base), sc)
         daemon = Daemon(line)
@@ -134,19 +136,20 @@ startup_grace = "5 s"
         task = asyncio.create_task(daemon.run())
         try:
             await until(lambda: conn.state == "connected", 20, "connected")
-            await publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=1.0, duration=8.0, per_message=10)
-            await until(lambda: daemon.pipe.frames > 300, 20, "frames")
+            await publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=1.0, duration=10.0, batch=0.5)
+            await until(lambda: daemon.pipe.frames > 400, 20, "frames")
             await asyncio.sleep(1.0)
-            active = [p.key for p in daemon.pipe.engine.active()]
         finally:
             daemon.request_stop()
             await task
-        return conn.stats.samples_in, dict(conn.stats.malformed), dict(conn.stats.lost), active, daemon.pipe.frames
+        late = daemon.pipe.inputs.total("late") + daemon.pipe.inputs.total("out of order")
+        return conn.stats.samples_in, dict(conn.stats.malformed), dict(conn.stats.lost), late, daemon.pipe.frames
 
-    samples_in, malformed, lost, active, frames = asyncio.run(scenario())
-    sc, base = load_scenario(STEADY)  # the same 8 s of the (seeded) simulated line, counted here
+    samples_in, malformed, lost, late, frames = asyncio.run(scenario())
+    sc, base = load_scenario(STEADY)  # the same 10 s of the (seeded) simulated line, counted here
     again = SimulatedLine(load_line(base), sc)
-    assert samples_in == sum(len(again.advance(0.1).t) for _ in range(80))
-    assert malformed == {} and lost == {}
-    assert active == []
-    assert frames > 300
+    assert samples_in == sum(len(again.advance(0.1).t) for _ in range(100))
+    assert malformed == {} and lost == {} and late == 0
+    assert frames > 400
+    episodes = query_episodes(History(sqlite_url(str(tmp_path / "h.db"))).engine)
+    assert episodes == [], [(e["check"], e["object"]) for e in episodes]

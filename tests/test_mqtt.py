@@ -1228,33 +1228,33 @@ def test_the_simulator_publishes_a_sequence_number_per_topic(mqtt_broker):
         assert seqs == list(range(1, len(seqs) + 1))
 
 
-def test_the_simulator_publishes_arrays_of_samples_that_are_the_single_messages_values(mqtt_broker):
+def test_the_simulator_publishes_batches_of_samples_that_are_the_single_messages_values(mqtt_broker):
     from spanwatch.monitor.line import load_line
     from spanwatch.monitor.simline import SimulatedLine, load_scenario
     from spanwatch.monitor.simulate import publish_mqtt
 
-    got: dict[int, dict[str, list[float]]] = {}
-    shapes: list[int] = []
-    for per in (1, 7):
+    got: dict[float, dict[str, list[float]]] = {}
+    spans: list[float] = []
+    for batch in (0.0, 0.3):
         sub = Subscriber(mqtt_broker, ["quillmere/#"])
         try:
             sc, base = load_scenario(ROOT / "config" / "scenarios" / "steady.toml")
             sim = SimulatedLine(load_line(base), sc)
-            sent = run(publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=20.0, duration=1.0,
-                                    per_message=per))
+            # the same steps of 0.3 s of the line's time either way (the simulator's noise follows its steps)
+            sent = run(publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=20.0, duration=1.5,
+                                    batch=batch, tick=0.3 / 20.0))
             sub.wait(lambda m, n=sent: len(m) == n, f"{sent} messages")
         finally:
             sub.close()
-        mine = got[per] = {}
+        mine = got[batch] = {}
         for topic, doc, _ in sub.messages:
-            values = doc["value"] if per > 1 else [doc["value"]]
-            if per > 1:
-                assert len(doc["time"]) == len(values)
-                assert doc["time"] == sorted(doc["time"])
-                shapes.append(len(values))
+            values = doc["value"] if batch else [doc["value"]]
+            if batch:
+                assert len(doc["time"]) == len(values) and doc["time"] == sorted(doc["time"])
+                spans.append(doc["time"][-1] - doc["time"][0])
             mine.setdefault(topic, []).extend(values)
-    assert got[7] == got[1], "the same samples, in the same order per topic"
-    assert max(shapes) == 7 and sum(shapes) == sum(len(v) for v in got[1].values())
+    assert got[0.3] == got[0.0], "the same samples, in the same order per topic"
+    assert spans and max(spans) < 0.3, "a message holds the samples of one batch of 0.3 s at most"
 
 
 def test_the_daemon_shows_lost_messages_in_healthz_and_metrics(mqtt_broker, tmp_path):
