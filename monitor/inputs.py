@@ -18,6 +18,12 @@ from spanwatch.connectors.ratelog import RateLimitedLog
 
 log = logging.getLogger("spanwatch.inputs")
 
+# what a user can do about a reason, said once with its log line
+HINTS = {
+    "late": "a source that sends samples in batches (a gateway publishing every so often) needs [daemon] latency at "
+            "least as long as a batch",
+}
+
 
 @dataclass
 class InputStats:
@@ -42,8 +48,9 @@ class InputStats:
         kept.extend(r for r in refs[: max(0, self.keep_refs - len(kept))] if r >= 0)
         since = self._ratelog.tally(reason, n)
         if since:
-            where = f" (first at {kept[0]})" if kept else ""
-            log.warning("input: %d sample(s) with %s, latest tag %s%s", since, reason, tag, where)
+            where = f" (the first at reference {kept[0]}: line or message number)" if kept else ""
+            hint = f"; {HINTS[reason]}" if reason in HINTS else ""
+            log.warning("input: %d sample(s) with %s, latest tag %s%s%s", since, reason, tag, where, hint)
 
     def total(self, reason: str | None = None) -> int:
         return sum(v for (_, r), v in self.counts.items() if reason is None or r == reason)
