@@ -174,8 +174,9 @@ def traction_evidence_cmd(
     ev = traction_evidence(gathered, window=win, roller=(lambda rid: rid == roller) if roller else None)
     clock = PlantClock.of(line.config)
     _say(f"Traction evidence: {line.name}, {recording.name}")
-    _say(f"ratio held for {window} without slip; mu*wrap configured dry and derated for the air film at that")
-    _say(f"moment; share = held / derated capacity (ln units); times {clock.tz}")
+    _say(f"held: the highest T_high/T_low held for {window} without slip; ln: its logarithm, <= mu_eff x wrap "
+         "(capstan), so mu >= ln / wrap; mu*wrap cfg: configured COF x wrap (dry); derated: the same for the air "
+         f"film at that moment's speed; share: ln / derated; when: the window's end ({clock.tz}).")
     _say()
     _say(f"{'roller':<10} {'wrap':>5} {'COF':>5} {'held':>6} {'ln':>6} {'mu >=':>6} {'mu*wrap':>7} "
          f"{'derated':>7} {'share':>6} {'when':>8}")
