@@ -41,7 +41,8 @@ def _gather(line, recording: Path, winders: list[str] | None = None):  # noqa: A
     try:
         return gather(line, recording, winders=winders)
     except (RecordingError, ValueError, OSError) as exc:
-        fail(f"{recording}: cannot read the recording: {exc}")
+        said = str(exc)
+        fail(said if said.startswith(str(recording)) else f"{recording}: cannot read the recording: {said}")
 
 
 def _say(text: str = "", *, indent: str = "") -> None:
@@ -102,9 +103,11 @@ def calibrate_cmd(
             notes.append(f"{r.winder} roll {r.roll}: not calibrated: {r.why}")
             continue
         f = r.fit
-        ci = f"{f.ci[0] * 1e6:.2f}-{f.ci[1] * 1e6:.2f}" if math.isfinite(f.stderr) else "-"
+        half = (f.ci[1] - f.ci[0]) / 2 * 1e6
+        dg = 2 if not half < 0.05 else 3 if half >= 0.005 else 4  # enough digits to show the interval's width
+        ci = f"{f.ci[0] * 1e6:.{dg}f}-{f.ci[1] * 1e6:.{dg}f}" if math.isfinite(f.stderr) else "-"
         dev = f.caliper / nominal - 1.0
-        _say(f"{r.winder:<10} {r.roll:>4} {span} {r.length:>8.0f} {f.n:>7} {f.caliper * 1e6:>8.2f} {ci:>15} "
+        _say(f"{r.winder:<10} {r.roll:>4} {span} {r.length:>8.0f} {f.n:>7} {f.caliper * 1e6:>8.{dg}f} {ci:>15} "
              f"{dev * 100:>+6.1f}%")
         if f.r1 > CORRELATED:
             notes.append(f"{r.winder} roll {r.roll}: residuals serially correlated (lag-1 {f.r1:.2f}): the caliper "
@@ -130,8 +133,8 @@ def calibrate_cmd(
                 _say("  the rolls differ beyond their intervals (a caliper change between rolls or lots):")
                 _say("  calibrate per grade rather than paste one value for all")
         _say("[material]")
-        _say(f"stack_factor = {sf:.3f}    # {h * 1e6:.2f} um effective / {mat.caliper * 1e6:.2f} um single ply; "
-             f"was {mat.stack_factor:g}")
+        _say(f"stack_factor = {sf:.3f}  # {h * 1e6:.2f} um ({h / 25.4e-6:.3f} mil) / {mat.caliper * 1e6:.2f} um "
+             f"ply; was {mat.stack_factor:g}")
     if plot is not None:
         acc = {w.id: w.diameter_accuracy[0] for w in line.model.winders_in_path}
         try:
@@ -176,10 +179,11 @@ def traction_evidence_cmd(
     _say(f"Traction evidence: {line.name}, {recording.name}")
     _say(f"held: the highest T_high/T_low held for {window} without slip; ln: its logarithm, <= mu_eff x wrap "
          "(capstan), so mu >= ln / wrap; mu*wrap cfg: configured COF x wrap (dry); derated: the same for the air "
-         f"film at that moment's speed; share: ln / derated; when: the window's end ({clock.tz}).")
+         f"film at that moment's speed; margin: derated / ln (1/utilisation, as the traction check gives it; below 1 "
+         f"the roller held more than the configuration allows); when: the window's end ({clock.tz}).")
     _say()
     _say(f"{'roller':<10} {'wrap':>5} {'COF':>5} {'held':>6} {'ln':>6} {'mu >=':>6} {'mu*wrap':>7} "
-         f"{'derated':>7} {'share':>6} {'when':>8}")
+         f"{'derated':>7} {'margin':>6} {'when':>8}")
     _say(f"{'':<10} {'deg':>5} {'cfg':>5} {'ratio':>6} {'':>6} {'':>6} {'cfg':>7} {'cfg':>7} {'':>6} {'':>8}")
     notes: list[str] = []
     for e in ev:
@@ -188,10 +192,10 @@ def traction_evidence_cmd(
                  f"{e.configured:>7.3f} {'-':>7} {'-':>6} {'-':>8}")
             notes.append(f"{e.roller}: no {window} without slip where the traction check was valid")
             continue
-        share = e.held / e.configured_eff if e.configured_eff > 0 else math.inf
+        margin = e.configured_eff / e.held if e.held > 0 else math.inf
         when = clock.fmt(e.at, seconds=True, date_too=False)
         _say(f"{e.roller:<10} {math.degrees(e.wrap):>5.0f} {e.cof:>5.2f} {math.exp(e.held):>6.3f} {e.held:>6.3f} "
-             f"{e.mu_lower:>6.3f} {e.configured:>7.3f} {e.configured_eff:>7.3f} {share * 100:>5.0f}% {when:>8}")
+             f"{e.mu_lower:>6.3f} {e.configured:>7.3f} {e.configured_eff:>7.3f} {margin:>5.2f}x {when:>8}")
         if not e.encoder:
             notes.append(f"{e.roller}: no encoder of its own, so slip could not be seen: not proven")
         if e.held > e.configured_eff:

@@ -149,6 +149,10 @@ def test_traction_evidence_never_exceeds_the_true_capacity(low_cof) -> None:
         assert math.isfinite(e.held)
         assert e.held <= true[rid], (rid, e.held, true[rid])
         assert e.mu_lower <= sim.driven[[d.id for d in sim.driven].index(rid)].mu
+        # at speed the air film derates the COF (Knox & Sweeney 1971; Ducotey & Good 1999); in the simulator's linear
+        # model the derating is a factor on mu, so the true mu_eff x wrap at that moment is the configured derated
+        # one times the cof_factor (2 % allowed for the monitor computing its film from measured, noisy tensions)
+        assert e.held <= 1.02 * e.mu_eff * e.wrap * 0.25, (rid, e.held, e.mu_eff * e.wrap * 0.25)
     # pull_1 works at its limit all along (true mu 0.15): what it is seen to hold comes close to what it can
     assert ev["pull_1"].held >= 0.9 * true["pull_1"]
 
@@ -197,7 +201,7 @@ def test_traction_evidence_command(low_cof, tmp_path: Path) -> None:
     assert proc.returncode == 0, proc.stderr
     assert all(len(ln) <= 80 for ln in proc.stdout.splitlines()), proc.stdout
     assert "pull_1" in proc.stdout and "pull_2" not in proc.stdout
-    assert "not a safety function" in proc.stdout
+    assert "not a safety function" in " ".join(proc.stdout.split())
 
 
 @pytest.mark.parametrize("args, says", [
