@@ -58,12 +58,16 @@ class Gathered:
     frames: int = 0
 
 
-def gather(line: Line, recording: str | Path, *, winders: list[str] | None = None,
+def gather(line: Line, recording: str | Path, *, winders: list[str] | None = None, rollers: list[str] | None = None,
            chunk_rows: int = 200_000) -> Gathered:
-    """Run ``recording`` through a fresh pipeline (no history) and keep what calibration and traction need."""
+    """Run ``recording`` through a fresh pipeline (no history) and keep what calibration and traction need:
+    of the ``winders`` (default all) the usable frames only, of the driven ``rollers`` (default all) every frame.
+    Raises ValueError when the recording holds no sample of the configured tags (RecordingError when it is
+    damaged beyond reading)."""
     pipe = Pipeline(line, None, context=False, block_seconds=60.0)
     wids = [w.id for w in line.model.winders_in_path if winders is None or w.id in winders]
-    traction = {c.object_id: c for c in pipe.checks if isinstance(c, TractionCheck)}
+    traction = {c.object_id: c for c in pipe.checks
+                if isinstance(c, TractionCheck) and (rollers is None or c.object_id in rollers)}
     slip_limit: dict[str, float] = {}
     for p in pipe.points:
         if p.kind == "slip":
@@ -81,8 +85,9 @@ def gather(line: Line, recording: str | Path, *, winders: list[str] | None = Non
             settling = np.zeros(block.n, bool) if settling is None else np.asarray(settling, bool)
             roll = rolls[w] + np.cumsum(start)
             rolls[w] = int(roll[-1]) if roll.size else rolls[w]
-            out.winders[w].add(t=block.t, d=d.value, length=ln.value, ok=d.ok & ln.ok & moving & ~settling,
-                               roll=roll)
+            ok = d.ok & ln.ok & moving & ~settling
+            if ok.any():
+                out.winders[w].add(t=block.t[ok], d=d.value[ok], length=ln.value[ok], roll=roll[ok])
         vw = block.signal("speed/web")
         for rid, c in traction.items():
             r = block.results.get(("traction", rid))
@@ -145,10 +150,10 @@ def calibrate_rolls(gathered: Gathered, line: Line, *, confidence: float = 0.95)
     out: list[RollCalibration] = []
     for w, ser in gathered.winders.items():
         rewind = line.model.winders[w].rewind
-        t, d, ln, ok, roll = (ser.get(k) for k in ("t", "d", "length", "ok", "roll"))
+        t, d, ln, roll = (ser.get(k) for k in ("t", "d", "length", "roll"))
         if t.size == 0:
             continue
-        ok = ok.astype(bool) & np.isfinite(d) & np.isfinite(ln)
+        ok = np.isfinite(d) & np.isfinite(ln)
         k = 0
         for r in np.unique(roll.astype(int)):
             sel = (roll == r) & ok
@@ -201,7 +206,9 @@ def plot_residuals(rolls: list[RollCalibration], path: str | Path, *, accuracy: 
         acc = (accuracy or {}).get(r.winder)
         if acc:
             for s in (-1, 1):
-                ax.axhline(s * acc * 1e3, color="tab:red", lw=0.8, ls="--")
+                ax.axhline(s * acc * 1e3, color="tab:red", lw=0.8, ls="--",
+                           label="diameter sensor accuracy" if s > 0 else None)
+            ax.legend(fontsize=7, loc="upper right")
         ax.set_title(f"{r.winder} roll {r.roll}: effective caliper {r.fit.caliper * 1e6:.2f} um "
                      f"({r.fit.ci[0] * 1e6:.2f}-{r.fit.ci[1] * 1e6:.2f}), rms {r.fit.rms * 1e3:.2f} mm", fontsize=9)
         ax.set_ylabel("D - fit, mm")

@@ -34,12 +34,12 @@ def _plot_path(plot: Path | None) -> None:
         fail(f"--plot: the folder {plot.parent} does not exist")
 
 
-def _gather(line, recording: Path, winders: list[str] | None = None):  # noqa: ANN001
+def _gather(line, recording: Path, winders: list[str] | None, rollers: list[str] | None):  # noqa: ANN001
     from spanwatch.connectors.recording import RecordingError
     from spanwatch.monitor.calibrate import gather
 
     try:
-        return gather(line, recording, winders=winders)
+        return gather(line, recording, winders=winders, rollers=rollers)
     except (RecordingError, ValueError, OSError) as exc:
         said = str(exc)
         fail(said if said.startswith(str(recording)) else f"{recording}: cannot read the recording: {said}")
@@ -80,7 +80,7 @@ def calibrate_cmd(
     _one_of(winder, ids, "--winder")
     _recording(recording)
     _plot_path(plot)
-    gathered = _gather(line, recording, [winder] if winder else None)
+    gathered = _gather(line, recording, [winder] if winder else None, [])
     rolls = calibrate_rolls(gathered, line, confidence=confidence)
     mat = line.model.material
     nominal = mat.caliper * mat.stack_factor
@@ -173,7 +173,7 @@ def traction_evidence_cmd(
     _one_of(roller, ids, "--roller")
     _recording(recording)
     _plot_path(plot)
-    gathered = _gather(line, recording, [])
+    gathered = _gather(line, recording, [], [roller] if roller else None)
     ev = traction_evidence(gathered, window=win, roller=(lambda rid: rid == roller) if roller else None)
     clock = PlantClock.of(line.config)
     _say(f"Traction evidence: {line.name}, {recording.name}")
