@@ -1038,4 +1038,5 @@ if __name__ == "__main__":
 
 
 # the operator's commands (ack, shelve, ...) register themselves on the app
+import spanwatch.monitor.cli_calibrate  # noqa: E402, F401  (calibrate, traction-evidence)
 from spanwatch.monitor import cli_operator  # noqa: E402, F401
