@@ -1031,5 +1031,8 @@ if __name__ == "__main__":
     main()
 
 
+# the commissioning commands on a recording (stats, tune, compare, mark) register themselves on the app
+import spanwatch.monitor.cli_tuning  # noqa: E402, F401
+
 # the operator's commands (ack, shelve, ...) register themselves on the app
 from spanwatch.monitor import cli_operator  # noqa: E402, F401
