@@ -257,7 +257,7 @@ def render_table(stats: Sequence[CheckStats]) -> list[str]:
             for s in (*c.states, c.total):
                 lines.append(f"  {s.state:<12}" + "".join(f"{share(s.beyond[x])} " for x in c.candidates))
         lines.append("")
-    return lines
+    return [x.rstrip() for x in lines]
 
 
 def rows(stats: Sequence[CheckStats]) -> list[dict[str, object]]:

@@ -353,7 +353,7 @@ def render(res: TuneResult, fmt_time: Callable[[float], str], overrides: Sequenc
         row = (f"{mark}{num(s.limit * scale, 8)} {s.on_delay:5.3g}s {s.raises:6d} {s.false_raises:5d} "
                f"{num(s.false_rate, 6)} {clock(s.time_in_alarm):>8}")
         if rel:
-            row += f" {s.detected:7d}  {num(s.mean_delay, 8)}s" if s.delays else f" {s.detected:7d}         -"
+            row += f" {s.detected:7d} {s.mean_delay:9.1f} s" if s.delays else f" {s.detected:7d}         -"
         lines.append(row)
     lines.append("  * suggested   ! warning beyond its alarm (the config would refuse it)")
     lines.append("")
