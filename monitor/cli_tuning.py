@@ -226,9 +226,9 @@ def tune_cmd(
         tune_plot(res, plot)
     if fmt in ("csv", "json"):
         rows = [{"limit": s.limit, "on_delay_s": s.on_delay, "raises": s.raises, "false_raises": s.false_raises,
-                 "false_per_hour": s.false_rate if math.isfinite(s.false_rate) else None,
+                 "false_per_hour": round(s.false_rate, 6) if math.isfinite(s.false_rate) else None,
                  "time_in_alarm_s": round(s.time_in_alarm, 3), "found": s.detected, "events": len(res.relevant),
-                 "mean_delay_s": s.mean_delay if s.delays else None, "order_ok": s.order_ok,
+                 "mean_delay_s": round(s.mean_delay, 3) if s.delays else None, "order_ok": s.order_ok,
                  "suggested": s is res.suggestion} for s in res.settings]
         if fmt == "json":
             typer.echo(json.dumps({"check": res.kind, "object": res.object_id, "level": res.level, "unit": res.unit,

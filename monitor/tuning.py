@@ -140,8 +140,9 @@ def _valid_severity(kept: Kept, key: tuple[str, str], direction: str) -> tuple[n
 
 def default_limits(kept: Kept, level: str, labels: Sequence[Label], grace: float, steps: int = DEFAULT_STEPS
                    ) -> list[float]:
-    """A grid from the median of the values outside the events (below it the check alarms most of the time) to a
-    little beyond their most abnormal value over the whole recording, with the configured limit; three
+    """A grid from the median of the values outside the events (below it the check alarms most of the time; for the
+    alarm level, from the warning limit) to a little beyond their most abnormal value over the whole recording,
+    with the configured limit; three
     significant digits. Falls back to 0.5 to 1.5 times the configured limit without valid frames."""
     pts = [p for p in kept.points if p.level == level]
     direction = pts[0].direction
@@ -163,6 +164,9 @@ def default_limits(kept: Kept, level: str, labels: Sequence[Label], grace: float
         lo, hi = float(np.median(base)), float(allv.max())
         if direction == "abs":
             lo = max(lo, 0.0)
+        warnings = [sev_limit(p.limit, direction) for p in kept.points if p.level == "warning"]
+        if level == "alarm" and warnings:
+            lo = max(lo, max(warnings))  # an alarm limit on the near side of its warning is refused by the config
         hi = hi + 0.05 * max(abs(hi), abs(hi - lo))
         if not hi > lo:
             hi = lo + max(abs(lo), 1e-3) * 0.5
@@ -264,6 +268,9 @@ def tune(kept: Kept, line: Line, *, level: str, limits: Sequence[float] | None, 
     if nv.size:
         res.normal_max, res.normal_p999 = float(nv.max()), float(np.percentile(nv, 99.9))
     res.suggestion = suggest(res, grid, guard)
+    if not any(s.raises for s in settings):
+        res.notes.append("no setting of the sweep raised an alarm: the recording does not reach these limits, so it "
+                         "says nothing about them; sweep nearer normal (--limits) or use a recording that does")
     if res.suggestion is not None:
         lim = sev_limit(res.suggestion.limit, direction)
         near = [e for e in res.relevant if math.isfinite(e.peak)]
