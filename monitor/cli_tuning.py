@@ -127,7 +127,9 @@ def parse_delays(text: str) -> list[float]:
     out = []
     for part in text.split(","):
         try:
-            s = U.to_si(part.strip(), U.TIME, default_unit="s")
+            text = part.strip()
+            bare = text.replace(".", "", 1).isdigit()
+            s = U.to_si(float(text) if bare else text, U.TIME, default_unit="s")
         except (ValueError, TypeError):
             raise ValueError(f"expected durations separated by commas such as 0s,2s,5s, got {part.strip()!r}") from None
         if not (math.isfinite(s) and 0 <= s <= 3600):

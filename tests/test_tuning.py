@@ -260,3 +260,66 @@ def test_cli_errors_exit_2_with_what_was_expected(recs, args, expected):
     r = _run(*(a.format(rec=rec, cfg=CONFIG, folder=folder) for a in args))
     assert r.exit_code == 2, r.output
     assert expected in r.output, r.output
+
+
+# --- the parts, on hand-made input ------------------------------------------------------------------------------
+
+
+def test_target_rates_and_limit_grids_read_as_written():
+    from spanwatch.monitor.cli_tuning import parse_delays, parse_limits, parse_rate
+
+    # worked by hand: one per 8-hour shift is 1/8 per hour; 2 per hour; 3 per 30 min is 6 per hour
+    assert parse_rate("1/8h") == pytest.approx(0.125)
+    assert parse_rate("2/h") == pytest.approx(2.0)
+    assert parse_rate("3 / 30 min") == pytest.approx(6.0)
+    assert parse_limits("2%:6%:5") == pytest.approx([0.02, 0.03, 0.04, 0.05, 0.06])
+    assert parse_delays("0s,500 ms,2") == [0.0, 0.5, 2.0]
+    for bad in ("8h", "1/0h", "-1/h", "x/h"):
+        with pytest.raises(ValueError, match="COUNT/DURATION"):
+            parse_rate(bad)
+
+
+def test_set_keys_follow_toml_dotted_keys():
+    from spanwatch.monitor.compare import parse_set
+
+    # TOML 1.0, "Keys": dotted keys, a quoted part keeps its dots
+    assert parse_set("checks.traction.alarm=0.9") == (("checks", "traction", "alarm"), 0.9)
+    assert parse_set('tags."q2.s2.tension".accuracy = 5.0') == (("tags", "q2.s2.tension", "accuracy"), 5.0)
+    assert parse_set("checks.idler_lag.on_delay=5 s") == (("checks", "idler_lag", "on_delay"), "5 s")
+    assert parse_set('checks.idler_lag.enabled=false') == (("checks", "idler_lag", "enabled"), False)
+
+
+def _ep(key: str, raised: float, cleared: float | None):
+    from spanwatch.monitor.sweep import Episode
+    from spanwatch.rules.alarms import AlarmPoint
+
+    kind, obj, level = key.split(":")
+    p = AlarmPoint(kind=kind, object_id=obj, level=level, limit=1.0, direction="high", deadband=0.0, on_delay=0.0,
+                   off_delay=0.0, priority="high", unit="x", cause="", consequence="", action="", response_time=60.0)
+    return Episode(p, raised, cleared, 1.0)
+
+
+def test_alarms_pair_by_key_and_largest_overlap():
+    from spanwatch.monitor.compare import Run, compare
+
+    k = "traction:pull_2:warning"
+    a = Run([_ep(k, 0, 10), _ep(k, 20, 30), _ep("draw:z:alarm", 40, None)], 0.0, 100.0)
+    b = Run([_ep(k, 8, 29)], 0.0, 100.0)
+    c = compare(a, b)
+    # overlaps worked by hand: [0,10] with [8,29] 2 s, [20,30] with [8,29] 9 s: the second pair wins
+    by = [(p.key, p.a.raised if p.a else None, p.b.raised if p.b else None) for p in c.pairs]
+    assert by == [(k, 0, None), (k, 20, 8), ("draw:z:alarm", 40, None)]
+    assert c.counts == {"traction": (2, 1), "draw": (1, 0)}
+    # time in alarm: A 10 + 10 s of traction, 60 s of draw to the end at 100 s; B 21 s
+    assert c.times == {"traction": (20.0, 21.0), "draw": (60.0, 0.0)}
+
+
+def test_an_alarm_that_outlives_its_event_counts_as_false(recs):
+    _, rec, _ = recs
+    line = load_line(CONFIG)
+    kept = keep_results(line, rec, "traction", "pull_2")
+    # at 0.3 of its capacity pull_2 is in alarm from the ramp to the end: after the ramp it runs near 0.4
+    (s,) = tune(kept, line, level="warning", limits=[0.3], on_delays=None, labels=labels_for(rec),
+                target_per_hour=1 / 8).settings
+    assert s.detected == 1 and s.false_raises >= 1
+    assert s.time_in_alarm > 200.0  # raised about a minute in, never cleared in 5 minutes
