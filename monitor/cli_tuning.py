@@ -334,6 +334,8 @@ def mark_cmd(
             fail(str(exc))
         if not labels:
             typer.echo(f"{recording}: no labelled events (no truth file, no marks)")
+        elif config is None:
+            typer.echo("times in UTC (--config FILE shows them in plant time)")
         for lb in labels:
             typer.echo(f"{clk.fmt(lb.start, seconds=True)} to {clk.fmt(lb.end, seconds=True, date_too=False)} "
                        f"{lb.origin:5} {lb.label}" + (f" ({', '.join(lb.objects)})" if lb.objects else ""))
