@@ -1037,6 +1037,10 @@ if __name__ == "__main__":
     main()
 
 
-# the operator's commands (ack, shelve, ...) register themselves on the app
-import spanwatch.monitor.cli_calibrate  # noqa: E402, F401  (calibrate, traction-evidence)
-from spanwatch.monitor import cli_operator  # noqa: E402, F401
+# the commands kept in modules of their own register themselves on the app: the operator's (ack, shelve, ...),
+# commissioning on a recording (stats, tune, compare, mark; calibrate, traction-evidence)
+from spanwatch.monitor import (  # noqa: E402, F401
+    cli_calibrate,
+    cli_operator,
+    cli_tuning,
+)
