@@ -57,6 +57,7 @@ class TagReport:
     unit: str
     sample_period: float  # s, configured
     range: tuple[float, float] | None  # configured, in the tag's unit
+    stale_limit: float = float("inf")  # s: stale_after x sample_period
     samples: int = 0
     observed_period: float | None = None  # s, median interval
     intervals: int = 0
@@ -136,7 +137,8 @@ def judge(line: Line, obs: Observation) -> list[TagReport]:
         batch = SampleBatch.concat(got) if got else None
         names = list(batch.tags) if batch is not None else []
         for tag, spec in mine.items():
-            r = TagReport(tag, source, spec.unit, spec.sample_period, tuple(spec.range) if spec.range else None)
+            r = TagReport(tag, source, spec.unit, spec.sample_period, tuple(spec.range) if spec.range else None,
+                          stale_limit=line.tags[tag].stale_after)
             reports.append(r)
             if batch is not None and tag in names:
                 sel = batch.tag == names.index(tag)
@@ -170,7 +172,7 @@ def _fill(r: TagReport, t: np.ndarray, v: np.ndarray, q: np.ndarray, seconds: fl
         r.observed_period = seconds / r.samples  # too few to take a median: the mean over the window
     if r.observed_period is not None and disagrees(r.sample_period, r.observed_period):
         stale = " (stale between samples: every check reading it is off)" if (
-            r.observed_period > r.sample_period * FACTOR) else ""
+            r.observed_period > r.stale_limit) else ""
         r.problems.append(f"sample_period {fmt_period(r.sample_period)} configured, arrives every "
                           f"{fmt_period(r.observed_period)}{stale}; set sample_period = "
                           f"\"{fmt_period(r.observed_period)}\"")
@@ -196,7 +198,7 @@ def _cell(x: float | None) -> str:
 def render_text(line: Line, reports: list[TagReport], seconds: float) -> str:
     """The reports for an 80-column terminal: one line per tag, then each problem wrapped."""
     out = [f"{line.name}: {len(reports)} tag(s) watched for {seconds:g} s"]
-    head = f"{'tag':<28} {'period':>8} {'seen':>8} {'samples':>8} {'status':<10}"
+    head = f"{'tag':<28} {'period':>8} {'seen':>8} {'samples':>8} status"
     out += [head, "-" * len(head)]
     for r in reports:
         status = "ok" if r.ok and r.judged else "not judged" if r.ok else "PROBLEM"
