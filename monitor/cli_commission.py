@@ -200,7 +200,7 @@ def check_tags_cmd(
     import json
     import logging
 
-    from spanwatch.monitor.tagcheck import judge, observe, render_text
+    from spanwatch.monitor.tagcheck import judge, observe, render_text, source_notes
 
     _one_of(fmt, ("text", "json"), "--format")
     line = open_line(config)
@@ -211,11 +211,12 @@ def check_tags_cmd(
                           markup=False)
     obs = asyncio.run(observe(line, seconds, connect_timeout=connect_timeout))
     reports = judge(line, obs)
+    notes = source_notes(obs)
     bad = [r for r in reports if not r.ok]
     if fmt == "json":
         typer.echo(json.dumps({"line": line.name, "seconds": seconds, "ok": not bad,
-                               "tags": [r.as_dict() for r in reports]}, indent=1))
+                               "tags": [r.as_dict() for r in reports], "refused": notes}, indent=1))
     else:
-        typer.echo(render_text(line, reports, seconds), nl=False)
+        typer.echo(render_text(line, reports, seconds, notes), nl=False)
     if bad:
         raise typer.Exit(1)

@@ -162,6 +162,18 @@ def judge(line: Line, obs: Observation) -> list[TagReport]:
     return reports
 
 
+def source_notes(obs: Observation, limit: int = 10) -> list[str]:
+    """What each source refused before it became a sample (an MQTT topic no tag maps, a payload that does not
+    decode, an OPC UA node that does not exist), the most frequent first, at most ``limit`` per source."""
+    out = []
+    for c in obs.connectors:
+        items = sorted(c.stats.malformed.items(), key=lambda kv: -kv[1])
+        out += [f"source {c.name}: {n} x {key}" for key, n in items[:limit]]
+        if len(items) > limit:
+            out.append(f"source {c.name}: and {len(items) - limit} more")
+    return out
+
+
 def _fill(r: TagReport, t: np.ndarray, v: np.ndarray, q: np.ndarray, seconds: float) -> None:
     r.samples = len(t)
     period, n = median_periods(np.zeros(len(t), dtype=np.int64), t, 1)
@@ -195,8 +207,9 @@ def _cell(x: float | None) -> str:
     return "-" if x is None else fmt_period(x)
 
 
-def render_text(line: Line, reports: list[TagReport], seconds: float) -> str:
-    """The reports for an 80-column terminal: one line per tag, then each problem wrapped."""
+def render_text(line: Line, reports: list[TagReport], seconds: float, notes: list[str] | None = None) -> str:
+    """The reports for an 80-column terminal: one line per tag, then each problem wrapped, then ``notes`` (what
+    the sources refused, :func:`source_notes`)."""
     out = [f"{line.name}: {len(reports)} tag(s) watched for {seconds:g} s"]
     head = f"{'tag':<28} {'period':>8} {'seen':>8} {'samples':>8} status"
     out += [head, "-" * len(head)]
@@ -218,4 +231,9 @@ def render_text(line: Line, reports: list[TagReport], seconds: float) -> str:
     if unjudged:
         out += textwrap.wrap(f"not judged (window shorter than {EXPECT_PERIODS:g} sample periods; give a longer "
                              f"--seconds): {', '.join(unjudged)}", width=WIDTH - 2)
+    if notes:
+        out += ["", "refused by the sources (not samples of any configured tag, or not decodable):"]
+        for n in notes:
+            out += textwrap.wrap(n, width=WIDTH - 2, initial_indent="  ", subsequent_indent="    ",
+                                 break_on_hyphens=False)
     return "\n".join(out) + "\n"

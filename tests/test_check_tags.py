@@ -107,8 +107,16 @@ range = [0, 1500]
 
     async def publish() -> None:
         feed = asyncio.create_task(publish_mqtt(sim, mqtt_broker.host, mqtt_broker.port, speedup=1.0))
-        while not stop.is_set():
-            await asyncio.sleep(0.1)
+        import json as js
+        import time
+
+        import paho.mqtt.publish as single
+
+        while not stop.is_set():  # a cell on the line nobody mapped to a tag
+            await asyncio.to_thread(single.single, "quillmere/q2/s9/tension", js.dumps(
+                {"value": 250.0, "time": time.time(), "quality": "good"}), hostname=mqtt_broker.host,
+                port=mqtt_broker.port)
+            await asyncio.sleep(0.5)
         feed.cancel()
         await asyncio.gather(feed, return_exceptions=True)
 
@@ -124,6 +132,7 @@ range = [0, 1500]
     assert tags["q2.spare.tension"]["samples"] == 0  # configured, mapped by the topic map, published by nobody
     assert any("no sample in 4 s" in p for p in tags["q2.spare.tension"]["problems"])
     assert tags["q2.s5.tension"]["ok"], tags["q2.s5.tension"]
+    assert any("quillmere/q2/s9/tension" in n for n in json.loads(out)["refused"]), json.loads(out)["refused"]
 
 
 def test_replay_names_the_tag_whose_recording_disagrees_with_its_sample_period(tmp_path):
