@@ -2,7 +2,8 @@
 against the live sources). See :mod:`spanwatch.monitor.recorder` and :mod:`spanwatch.monitor.tagcheck`.
 
 Exit codes: 0 done (``check-tags``: every tag fine); 1 ``check-tags`` found a tag that is missing, at
-another sample period or out of range; 2 a usage or configuration problem.
+another sample period or out of range, or ``record`` recorded no sample at all (the sources' states and last
+errors are printed); 2 a usage or configuration problem.
 """
 
 from __future__ import annotations
@@ -182,6 +183,11 @@ def record_cmd(
     for e in s.conversion_errors:
         console.print(f"WARNING: Parquet conversion failed, the CSV kept: {e}", style="bold yellow",
                       highlight=False, markup=False, soft_wrap=True)
+    if not s.samples:  # the files hold only their header
+        for c in conns:
+            console.print(f"source {c.name}: {c.state}" + (f" ({c.stats.last_error})" if c.stats.last_error else ""),
+                          highlight=False, markup=False, soft_wrap=True)
+        raise typer.Exit(1)
 
 
 @app.command("check-tags")

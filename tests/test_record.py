@@ -196,3 +196,17 @@ def test_a_config_without_live_sources_is_refused(tmp_path):
     r = CliRunner().invoke(app, ["record", "--config", str(ROOT / "config" / "quillmere-q2.toml"), "--out",
                                  str(tmp_path / "r.csv.gz")])
     assert r.exit_code == 2 and "sources" in r.output
+
+
+def test_nothing_recorded_from_a_server_that_is_not_there_is_exit_1(tmp_path):
+    from spanwatch.connectors.opcua_server import free_port
+
+    cfg = tmp_path / "line.toml"
+    cfg.write_text(opcua_line_config(f"opc.tcp://127.0.0.1:{free_port()}/"), encoding="utf-8")
+    out = tmp_path / "r.csv.gz"
+    r = CliRunner().invoke(app, ["record", "--config", str(cfg), "--out", str(out), "--duration", "3 s",
+                                 "--no-progress"])
+    assert r.exit_code == 1, r.output
+    assert "recorded 0 samples" in r.stdout and "source plc: " in r.stdout
+    batches, problems = _read(out, ("q2.s5.tension",))
+    assert problems.header and not batches and problems.damage is None  # a complete file with its header only
