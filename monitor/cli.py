@@ -116,7 +116,8 @@ def _speed(v: float) -> str:
 def check_config(
     file: Annotated[Path, typer.Argument(help="Line configuration (TOML).")],
 ) -> None:
-    """Validate a line configuration and print the derived line and each driven roller's capacity."""
+    """Validate a line configuration and print the derived line, each driven roller's capacity and the effective
+    limits of every alarm point."""
     from rich.table import Table
     from spanwatch.monitor import units as U
     from spanwatch.monitor.checkset import alarm_points, build_checks
@@ -192,9 +193,28 @@ def check_config(
         kt.add_row(kind, shown, rests[kind])
     console.print(kt)
     _print_drift_design(checks, line)
+    _print_limits(points)
+    _print_period_findings(line)
     for w in line.warnings:  # what the config exposes (spanwatch.monitor.exposure); spanwatch run logs them too
         console.print(f"WARNING: {w}", style="bold yellow", highlight=False, markup=False, soft_wrap=True)
     console.print(f"[dim]{SAFETY_NOTE}[/]")
+
+
+def _print_limits(points: list) -> None:  # type: ignore[type-arg]
+    """check-config's effective limits of every alarm point (spanwatch.monitor.limitstable), 80 columns."""
+    from spanwatch.monitor.limitstable import limit_lines
+
+    for text in limit_lines(points):
+        console.print(text, highlight=False, markup=False, soft_wrap=True)
+
+
+def _print_period_findings(line: Line) -> None:
+    """Sample periods the config's own sources cannot deliver (spanwatch.monitor.periods), one warning each."""
+    from spanwatch.monitor.periods import config_findings
+
+    for f in config_findings(line):
+        console.print(f"WARNING: sample period: {f}", style="bold yellow", highlight=False, markup=False,
+                      soft_wrap=True)
 
 
 def _print_drift_design(checks: list, line: Line) -> None:
@@ -471,6 +491,9 @@ def replay_cmd(
         refs = ", ".join(str(x) for x in r["refs"][:10])  # type: ignore[index]
         console.print(f"input: {r['tag']}: {r['count']} x {r['reason']}" + (f" ({where} {refs})" if refs else ""),
                       highlight=False)
+    for m in summary.period_mismatches:  # a tag set at another sample period than it arrives at
+        console.print(f"WARNING: sample period: {m.text()}", style="bold yellow", highlight=False, markup=False,
+                      soft_wrap=True)
 
 
 @app.command("alarms")
@@ -1038,9 +1061,10 @@ if __name__ == "__main__":
 
 
 # the commands kept in modules of their own register themselves on the app: the operator's (ack, shelve, ...),
-# commissioning on a recording (stats, tune, compare, mark; calibrate, traction-evidence)
+# commissioning (record, check-tags; on a recording: stats, tune, compare, mark, calibrate, traction-evidence)
 from spanwatch.monitor import (  # noqa: E402, F401
     cli_calibrate,
+    cli_commission,
     cli_operator,
     cli_tuning,
 )

@@ -19,6 +19,7 @@ from spanwatch.connectors.history.models import RunEnd
 from spanwatch.connectors.recording import ReadProblems, read_recording
 from spanwatch.monitor.exposure import remember_config
 from spanwatch.monitor.line import Line
+from spanwatch.monitor.periods import PeriodEstimator, PeriodMismatch, mismatches
 from spanwatch.monitor.pipeline import Pipeline
 
 
@@ -31,6 +32,7 @@ class ReplaySummary:
     raised: dict[str, int] = field(default_factory=dict)
     input_rows: list[dict[str, object]] = field(default_factory=list)
     run_id: int | None = None
+    period_mismatches: list[PeriodMismatch] = field(default_factory=list)  # tags arriving at another sample period
 
     @property
     def speedup(self) -> float:
@@ -42,7 +44,9 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
            timeout: float = SQLITE_BUSY_TIMEOUT_S) -> ReplaySummary:
     """Run a recording through a fresh pipeline; write alarms to ``db_url`` (None: no database).
 
-    ``timeout``: how long a write waits for a database another process holds locked.
+    ``timeout``: how long a write waits for a database another process holds locked. The summary names the
+    tags whose samples arrive at another period than configured (:mod:`spanwatch.monitor.periods`, estimated
+    from the first samples of each tag).
     """
     recording = Path(recording)
     total = recording.stat().st_size
@@ -60,12 +64,14 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
     problems = ReadProblems()
     raised: dict[str, int] = {}
     used = 0
+    periods = PeriodEstimator(pipe.names)
     start = time.perf_counter()
     finished = False
     try:
         for batch, pos in read_recording(recording, pipe.names, chunk_rows=chunk_rows, problems=problems,
                                          with_position=True):
             used += len(batch)
+            periods.feed(batch)
             for tr in pipe.feed(batch):
                 if tr.event == "raise":
                     raised[tr.point.kind] = raised.get(tr.point.kind, 0) + 1
@@ -93,7 +99,8 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
     span = (pipe.last_t - pipe.first_t) if pipe.first_t is not None and pipe.last_t is not None else 0.0
     return ReplaySummary(samples=pipe.samples, frames=pipe.frames, seconds_of_data=span, wall_seconds=wall,
                          raised=raised, input_rows=pipe.inputs.rows(),
-                         run_id=history.run_id if history is not None else None)
+                         run_id=history.run_id if history is not None else None,
+                         period_mismatches=mismatches(line, periods.periods()))
 
 
 def _nothing_read(size: int, problems: ReadProblems) -> str:
