@@ -189,7 +189,14 @@ def _fill(r: TagReport, t: np.ndarray, v: np.ndarray, q: np.ndarray, seconds: fl
                           f"{fmt_period(r.observed_period)}{stale}; set sample_period = "
                           f"\"{fmt_period(r.observed_period)}\"")
     good = (q == 0) & np.isfinite(v)
-    r.not_good = int(len(q) - good.sum())
+    # a server may notify a node before its first value (OPC UA status Bad_WaitingForInitialData,
+    # OPC 10000-4): not-good samples before the first good one are its start, not a problem of the tag
+    if good.any():
+        order = np.argsort(t, kind="stable")
+        leading = int(np.argmax(good[order]))
+    else:
+        leading = 0
+    r.not_good = int(len(q) - good.sum()) - leading
     if good.any():
         r.minimum, r.maximum = float(v[good].min()), float(v[good].max())
     if r.range is not None and good.any():

@@ -167,3 +167,24 @@ def test_check_config_warns_where_an_opcua_source_cannot_deliver_the_sample_peri
     assert "shorter than the publishing interval 500 ms of source plc" in said
     said = " ".join(CliRunner().invoke(app, ["check-config", str(base)]).stdout.split())
     assert "WARNING: sample period" not in said  # 100 ms publishing, 100 ms stale limit: it holds
+
+
+def test_bad_samples_before_the_first_good_one_are_the_start_not_a_problem():
+    # An OPC UA server may notify a node before its first value (status Bad_WaitingForInitialData, OPC 10000-4):
+    # not-good samples before the first good one are excused; a bad sample after it is a problem of the tag.
+    from spanwatch.monitor.tagcheck import TagReport, _fill
+
+    t = np.arange(10) * 0.02
+    v = np.full(10, 1.0)
+    q = np.zeros(10, dtype=np.int8)
+    q[:2] = 2
+    r = TagReport("q2.s2.tension", "plc", "N", 0.02, (0.0, 10.0))
+    _fill(r, t, v, q, 0.2)
+    assert r.not_good == 0 and r.ok, r.problems
+    q[6] = 1
+    r = TagReport("q2.s2.tension", "plc", "N", 0.02, (0.0, 10.0))
+    _fill(r, t, v, q, 0.2)
+    assert r.not_good == 1 and any("bad or uncertain" in p for p in r.problems)
+    r = TagReport("q2.s2.tension", "plc", "N", 0.02, (0.0, 10.0))
+    _fill(r, t, v, np.full(10, 2, dtype=np.int8), 0.2)
+    assert r.not_good == 10, "with no good sample at all every one counts"
