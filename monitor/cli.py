@@ -1033,3 +1033,5 @@ if __name__ == "__main__":
 
 # the operator's commands (ack, shelve, ...) register themselves on the app
 from spanwatch.monitor import cli_operator  # noqa: E402, F401
+
+from spanwatch.monitor import cli_report  # noqa: E402, F401  # isort: skip  (spanwatch report)
