@@ -33,6 +33,7 @@ table { border-collapse: collapse; margin: 0.4em 0 0.8em; font-size: 0.9em; }
 th, td { border: 1px solid #888; padding: 0.2em 0.5em; text-align: left; vertical-align: top; }
 th { background: #e6e6e6; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; }
+td.nw { white-space: nowrap; }
 .over { font-weight: bold; text-decoration: underline; }
 img { max-width: 100%; height: auto; display: block; margin: 0.3em 0; }
 .episode { border-top: 1px solid #999; padding-top: 0.4em; margin-top: 0.8em; display: flex; flex-wrap: wrap;
@@ -65,10 +66,15 @@ def _anchor(title: str) -> str:
     return "".join(ch if ch.isalnum() else "-" for ch in title.lower()).strip("-")
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[object]], numeric: Sequence[int] = ()) -> str:
+def _table(head: Sequence[str], rows: Sequence[Sequence[object]], numeric: Sequence[int] = (),
+           nowrap: Sequence[int] = ()) -> str:
     th = "".join(f"<th>{_e(h)}</th>" for h in head)
-    body = "".join("<tr>" + "".join(f'<td class="n">{_e(c)}</td>' if i in numeric else f"<td>{_e(c)}</td>"
-                                    for i, c in enumerate(r)) + "</tr>" for r in rows)
+
+    def cls(i: int) -> str:
+        names = [n for n, cols in (("n", numeric), ("nw", nowrap)) if i in cols]
+        return f' class="{" ".join(names)}"' if names else ""
+
+    body = "".join("<tr>" + "".join(f"<td{cls(i)}>{_e(c)}</td>" for i, c in enumerate(r)) + "</tr>" for r in rows)
     return f"<table><thead><tr>{th}</tr></thead><tbody>{body}</tbody></table>"
 
 
@@ -155,9 +161,10 @@ def _hidden(r: ShiftReport) -> str:
         until = "" if h["what"] != "shelved" else (
             "until it clears" if h["one_shot"] else f"shelved until {c.fmt(h['until'])}"
             if h["until"] is not None and math.isfinite(h["until"]) else "")
-        rows.append((h["key"], h["what"], c.fmt(h["from"]), c.fmt(h["to"]) if h["to"] is not None else "still",
-                     h["ended_by"] or until, h["user"] or "?", h["comment"] or "(no reason given)"))
-    return _table(["alarm", "", "from", "to", "ended by", "who", "why"], rows)
+        to = c.fmt(h["to"]) if h["to"] is not None else "still at the end"
+        rows.append((h["key"], h["what"], c.fmt(h["from"]), to, h["ended_by"] or until, h["user"] or "?",
+                     h["comment"] or "(no reason given)"))
+    return _table(["alarm", "state", "from", "to", "ended by", "who", "why"], rows, nowrap=(2, 3, 5))
 
 
 def _episodes(r: ShiftReport) -> str:
@@ -196,8 +203,9 @@ def _episodes(r: ShiftReport) -> str:
                    f'<div class="plot">{_img(P.episode_plot(d, c, near), "signals around the raise of " + title)}'
                    "</div></div>")
     if r.more_episodes:
-        out.append(f'<p class="note">{r.more_episodes} more episodes raised in this window are not shown in full; '
-                   "spanwatch alarms lists them and spanwatch alarms show ID details one.</p>")
+        out.append(f'<p class="note">{r.more_episodes} more episodes raised in this window are not shown in full '
+                   "(advisory ones left out first); spanwatch alarms lists them and spanwatch alarms show ID details "
+                   "one.</p>")
     return "".join(out)
 
 

@@ -220,7 +220,9 @@ def gather(engine: Any, *, line: str, plant: str, start: float, end: float, labe
         return min(ts) if ts else None
 
     raised_here = [e for e in episodes if e["raised_t"] >= start]
-    shown = raised_here[:max_episodes]
+    # the annunciated first, then the advisory, up to the cap; shown in the order they were raised
+    ranked = sorted(raised_here, key=lambda e: (e["priority"] == "advisory", e["raised_t"], e["id"]))
+    shown = sorted(ranked[:max_episodes], key=lambda e: (e["raised_t"], e["id"]))
     contexts = context_series(engine, [e["id"] for e in shown])
     limits = limits_by_object(points)
     details = []
