@@ -209,4 +209,4 @@ def _window(clock: Any, shift: str | None, day: str | None, t_from: str | None, 
         fail(f"--to: {exc}")
     if not a < b:
         fail(f"--from: expected a time before --to, got {t_from} .. {t_to}")
-    return a, b, f"{clock.fmt(a)} to {clock.fmt(b)}"
+    return a, b, "window"

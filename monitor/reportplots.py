@@ -76,8 +76,10 @@ def timeline(episodes: Sequence[dict[str, Any]], start: float, end: float, clock
         ax.broken_barh([(_days(a), w / 86400.0)], (y - 0.35, 0.7), facecolors=fill, edgecolors="black",
                        linewidth=0.6, hatch=hatch, label=p if p not in seen else None)
         seen.add(p)
-        if e.get("cleared_t") is None:
-            ax.plot([_days(b)], [lane[(str(e["object"]), str(e["check"]))]], marker=">", color="black", markersize=5)
+        if e.get("open_at_run_end") and b < end:
+            ax.plot([_days(b)], [y], marker="x", color="black", markersize=6)
+        elif e.get("cleared_t") is None or e.get("open_at_run_end"):
+            ax.plot([_days(b)], [y], marker=">", color="black", markersize=5)
     ax.set_yticks(range(len(objects)), [f"{o}  {c}" for o, c in objects], fontsize=8)
     ax.set_ylim(-0.7, n - 0.3)
     ax.invert_yaxis()
@@ -91,7 +93,8 @@ def timeline(episodes: Sequence[dict[str, Any]], start: float, end: float, clock
                   bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
     else:
         ax.text(0.5, 0.5, "no alarm in this window", transform=ax.transAxes, ha="center", va="center")
-    ax.set_title("Alarm episodes per object and check (> : still active at the end)", fontsize=10, loc="left")
+    ax.set_title("Alarm episodes per object and check (> still active at the end; x still active when its run "
+                 "ended)", fontsize=10, loc="left")
     return _png(fig)
 
 

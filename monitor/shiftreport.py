@@ -42,7 +42,8 @@ class ShiftReport:
     clock: PlantClock
     config_source: str
     runs: list[dict[str, Any]]
-    episodes: list[dict[str, Any]]  # every episode active in the window, oldest raise first
+    episodes: list[dict[str, Any]]  # every episode active in the window, oldest raise first; one its run left open
+    # ends at the end of that run's data ("open_at_run_end")
     kpis: AlarmKpis
     in_alarm: list[dict[str, Any]]  # per check: seconds, share, episodes
     hidden: list[dict[str, Any]]  # shelved / out-of-service periods
@@ -210,7 +211,11 @@ def gather(engine: Any, *, line: str, plant: str, start: float, end: float, labe
     hidden_ids = hidden_raises(engine, [e["id"] for e in episodes])
     for e in episodes:
         e["hidden"] = e["id"] in hidden_ids
-    kpis = alarm_kpis(episodes_kpi_input(episodes, hidden_ids), start, end, operators=operators)
+        # an episode its run left open is known active only up to the end of that run's data, not beyond
+        e["open_at_run_end"] = e["cleared_t"] is None and e.get("run_to") is not None
+    known = [dict(e, cleared_t=e["run_to"]) if e["open_at_run_end"] else e for e in episodes]
+    known = [e for e in known if e["cleared_t"] is None or e["cleared_t"] > start]
+    kpis = alarm_kpis(episodes_kpi_input(known, hidden_ids), start, end, operators=operators)
 
     actions = actions_of(engine, line_name=line, since=start - 7 * 86400.0, until=end)
 
@@ -235,7 +240,7 @@ def gather(engine: Any, *, line: str, plant: str, start: float, end: float, labe
         details.append(d)
     return ShiftReport(plant=plant, line=line, label=label, start=start, end=end, clock=clock,
                        config_source=config_source, runs=runs_in_window(engine, start, end, line),
-                       episodes=episodes, kpis=kpis, in_alarm=time_in_alarm(episodes, start, end),
+                       episodes=known, kpis=kpis, in_alarm=time_in_alarm(known, start, end),
                        hidden=hidden_periods(actions, start, end, cleared), details=details,
                        more_episodes=len(raised_here) - len(shown), trends=check_minutes(engine, start, end, line),
                        limits=limits)
@@ -253,9 +258,10 @@ def summary_text(r: ShiftReport, width: int = 80) -> str:
     c = r.clock
     out: list[str] = []
 
-    def wrap(text: str, indent: str = "", first: str = "") -> None:
-        out.extend(textwrap.wrap(text, width, initial_indent=first or indent, subsequent_indent=indent,
-                                 break_on_hyphens=False) or [first.rstrip()])
+    def wrap(text: str, indent: str = "", first: str | None = None) -> None:
+        head = indent if first is None else first
+        out.extend(textwrap.wrap(text, width, initial_indent=head, subsequent_indent=indent,
+                                 break_on_hyphens=False) or [head.rstrip()])
 
     wrap(f"Shift report: {r.plant}, line {r.line}")
     wrap(f"{r.label}: {c.fmt(r.start)} to {c.fmt(r.end)} ({c.tz.key}, {fmt_duration(r.end - r.start)})")
@@ -276,9 +282,9 @@ def summary_text(r: ShiftReport, width: int = 80) -> str:
             out.append(f"  {t.count:>5} {100 * t.share:5.1f} %  {_fit(t.key, width - 17)}")
     wrap(f"Chattering: {', '.join(k.chattering_keys) or 'none'}", "  ", "")
     wrap(f"Fleeting (< {k.thresholds.fleeting_s:g} s): {k.fleeting}" + (
-        f" ({', '.join(k.fleeting_keys)})" if k.fleeting_keys else ""), "  ")
+        f" ({', '.join(k.fleeting_keys)})" if k.fleeting_keys else ""), "  ", "")
     wrap(f"Standing (active {fmt_duration(k.thresholds.stale_s)} or more): "
-         + (", ".join(s.key for s in k.stale) or "none"), "  ")
+         + (", ".join(s.key for s in k.stale) or "none"), "  ", "")
     if r.in_alarm:
         out.append("Time in alarm per check:")
         for row in r.in_alarm:
@@ -288,7 +294,8 @@ def summary_text(r: ShiftReport, width: int = 80) -> str:
         out.append("Shelved and out of service:")
         for h in r.hidden:
             until = c.fmt(h["to"], date_too=False) if h["to"] is not None else "end of window"
-            wrap(f"{h['key']} {h['what']} {c.fmt(h['from'], date_too=False)}-{until} by {h['user'] or '?'}: "
+            since = c.fmt(h["from"], date_too=h["from"] < r.start)
+            wrap(f"{h['key']} {h['what']} {since}-{until} by {h['user'] or '?'}: "
                  f"{h['comment'] or '(no reason given)'}", "    ", "  ")
     else:
         out.append("Shelved and out of service: none")

@@ -62,6 +62,12 @@ kind = "speed_ramp"
 start = "400 s"
 end = "460 s"
 size = "700 m/min"
+
+[[fault]]                       # still stale when the recording ends: its alarm is left open
+kind = "tag_dropout"
+target = "q2.rewind.rpm"
+start = "540 s"
+end = "600 s"
 """
 
 
@@ -430,3 +436,16 @@ def test_db_rows_match_the_summary_counts(report, history):
                         "cleared_t > ?)", (b, a)).fetchone()[0]
     m = re.search(r"(\d+) episodes active in the window", " ".join(out.split()))
     assert m and int(m.group(1)) == n > 0
+
+
+def test_a_window_after_the_data_claims_no_alarm_active(history, tmp_path):
+    """The replay ended at 01:06 UTC (03:06 summer time); an alarm its run left open is known active only up to
+    there, so a window after it holds no run, no active episode and no time in alarm."""
+    db, _ = history
+    with sqlite3.connect(db) as con:
+        assert con.execute("select count(*) from alarm_episodes where cleared_t is null").fetchone()[0] > 0
+    proc = cli("report", "--db", str(db), "--from", "2026-03-29 04:00", "--to", "2026-03-29 05:00", "--out",
+               str(tmp_path / "after.html"))
+    flat = " ".join(proc.stdout.split())
+    assert "runs: none" in flat and "0 episodes active in the window" in flat
+    assert "Time in alarm per check" not in flat
