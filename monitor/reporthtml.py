@@ -67,14 +67,18 @@ def _anchor(title: str) -> str:
 
 
 def _table(head: Sequence[str], rows: Sequence[Sequence[object]], numeric: Sequence[int] = (),
-           nowrap: Sequence[int] = ()) -> str:
+           nowrap: Sequence[int] = (), strong: int | None = None) -> str:
+    """A table; ``strong``: the column whose cells starting with "above" are set apart (bold, underlined)."""
     th = "".join(f"<th>{_e(h)}</th>" for h in head)
 
-    def cls(i: int) -> str:
+    def cls(i: int, c: object) -> str:
         names = [n for n, cols in (("n", numeric), ("nw", nowrap)) if i in cols]
+        if i == strong and str(c).startswith("above"):
+            names.append("over")
         return f' class="{" ".join(names)}"' if names else ""
 
-    body = "".join("<tr>" + "".join(f"<td{cls(i)}>{_e(c)}</td>" for i, c in enumerate(r)) + "</tr>" for r in rows)
+    body = "".join("<tr>" + "".join(f"<td{cls(i, c)}>{_e(c)}</td>" for i, c in enumerate(r)) + "</tr>"
+                   for r in rows)
     return f"<table><thead><tr>{th}</tr></thead><tbody>{body}</tbody></table>"
 
 
@@ -98,23 +102,34 @@ def render(r: ShiftReport) -> str:
     nav = "<nav><ol>" + "".join(f'<li><a href="#{_anchor(s)}">{_e(s)}</a></li>' for s in SECTIONS) + "</ol></nav>"
     parts.append(header + nav)
 
-    summary = _table(["", "measured", "benchmark"], [
-        ("annunciated alarms raised", k.raises, ""),
-        ("advisory alarms raised", k.advisory_raises, "not annunciated"),
-        ("raised while shelved, suppressed or out of service", k.hidden_raises, "not annunciated"),
+    def judged(x: float, ok: float, most: float | None = None) -> str:
+        if most is not None and x > most:
+            return "above manageable"
+        return ("above acceptable" if most is not None else "above") if x > ok else "within"
+
+    summary = _table(["", "measured", "benchmark", "judged"], [
+        ("annunciated alarms raised", k.raises, "", ""),
+        ("advisory alarms raised", k.advisory_raises, "not annunciated", ""),
+        ("raised while shelved, suppressed or out of service", k.hidden_raises, "not annunciated", ""),
         ("alarms per 10 min, average (per operator)", f"{k.avg_per_10min:.2f}",
-         f"~{K.PER_10MIN_ACCEPTABLE:g} acceptable, ~{K.PER_10MIN_MANAGEABLE:g} manageable"),
-        ("alarms per 10 min, maximum", f"{k.max_per_10min:g}", ""),
+         f"~{K.PER_10MIN_ACCEPTABLE:g} acceptable, ~{K.PER_10MIN_MANAGEABLE:g} manageable",
+         judged(k.avg_per_10min, K.PER_10MIN_ACCEPTABLE, K.PER_10MIN_MANAGEABLE)),
+        ("alarms per 10 min, maximum", f"{k.max_per_10min:g}", "", ""),
+        ("10-min slots above ~1 / above ~2", f"{100 * k.share_slots_over_1:.0f} % / {100 * k.share_slots_over_2:.0f} %",
+         "", ""),
         ("alarms per hour, average", f"{k.avg_per_hour:.1f}",
-         f"~{K.PER_HOUR_ACCEPTABLE:g} acceptable, ~{K.PER_HOUR_MANAGEABLE:g} manageable"),
+         f"~{K.PER_HOUR_ACCEPTABLE:g} acceptable, ~{K.PER_HOUR_MANAGEABLE:g} manageable",
+         judged(k.avg_per_hour, K.PER_HOUR_ACCEPTABLE, K.PER_HOUR_MANAGEABLE)),
         ("time in flood", f"{100 * k.flood_time_share:.1f} % ({len(k.floods)} floods)",
-         f"< ~{100 * K.FLOOD_TIME_SHARE_MAX:g} %"),
-        ("share of the top 10 alarms", f"{100 * k.top_share:.0f} %", f"<= ~{100 * K.TOP10_SHARE_MAX:g} %"),
-        ("chattering alarms", len(k.chattering_keys), "0"),
-        ("fleeting episodes", k.fleeting, "0"),
-        ("standing alarms", len(k.stale), f"< {K.STALE_MAX_PER_DAY} a day"),
-        ("episodes active in the window", len(r.episodes), ""),
-    ], numeric=(1,))
+         f"< ~{100 * K.FLOOD_TIME_SHARE_MAX:g} %", judged(k.flood_time_share, K.FLOOD_TIME_SHARE_MAX)),
+        ("share of the top 10 alarms", f"{100 * k.top_share:.0f} %", f"<= ~{100 * K.TOP10_SHARE_MAX:g} %",
+         judged(k.top_share, K.TOP10_SHARE_MAX) if k.raises else ""),
+        ("chattering alarms", len(k.chattering_keys), "0", judged(len(k.chattering_keys), 0)),
+        ("fleeting episodes", k.fleeting, "0", judged(k.fleeting, 0)),
+        ("standing alarms", len(k.stale), f"< {K.STALE_MAX_PER_DAY} a day",
+         judged(len(k.stale), K.STALE_MAX_PER_DAY - 1)),
+        ("episodes active in the window", len(r.episodes), "", ""),
+    ], numeric=(1,), strong=3)
     section("Summary", summary + '<p class="note">Benchmarks per operator position: ANSI/ISA-18.2-2016 clause 16, '
             "IEC 62682:2014 and EEMUA 191 (3rd ed.), from memory (see the README).</p>")
     section("Safety note", f'<p class="safety">{_e(SAFETY_TEXT)}</p>')
@@ -181,6 +196,8 @@ def _episodes(r: ShiftReport) -> str:
                 if abs(float(m["t"]) - float(d["raised_t"])) <= 600.0]
         facts = [("raised", c.fmt(d["raised_t"], seconds=True)),
                  ("cleared", c.fmt(d["cleared_t"], seconds=True) if d.get("cleared_t") else "still active"),
+                 ("lasted", fmt_duration(float(d["cleared_t"]) - float(d["raised_t"])) if d.get("cleared_t")
+                  else "-"),
                  ("value at the raise", shown_value(d.get("value"), unit)),
                  ("peak", shown_value(d.get("peak"), unit)), ("limit", _limit(d, unit)),
                  ("line state", d.get("line_state") or "-")]
