@@ -1061,10 +1061,12 @@ if __name__ == "__main__":
 
 
 # the commands kept in modules of their own register themselves on the app: the operator's (ack, shelve, ...),
-# commissioning (record, check-tags; on a recording: stats, tune, compare, mark, calibrate, traction-evidence)
+# commissioning (record, check-tags; on a recording: stats, tune, compare, mark, calibrate, traction-evidence),
+# review (report)
 from spanwatch.monitor import (  # noqa: E402, F401
     cli_calibrate,
     cli_commission,
     cli_operator,
+    cli_report,
     cli_tuning,
 )
