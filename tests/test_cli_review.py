@@ -416,3 +416,31 @@ def test_the_same_review_on_postgresql(pg_url, configs, recording, history, rows
     assert listing(pg_url, "--line", LINE_A) == [r for r in got if r["run"] == 1]
     assert [r["line"] for r in json.loads(cli("runs", "--db", pg_url, "--format", "json").stdout)] == [LINE_A, LINE_B]
     assert all(len(line) <= 80 for line in on_terminal("alarms", "--db", pg_url))
+
+
+def test_a_history_at_the_first_revision_is_listed_as_it_is(tmp_path):
+    # revision 0001 (no end_state, no lifecycle, no kept configurations): runs and alarms read it, times in UTC
+    from alembic import command
+    from spanwatch.connectors.history import make_engine
+    from spanwatch.connectors.history.schema import alembic_config, migration_connection
+    from sqlalchemy import text
+
+    db = tmp_path / "old.db"
+    engine = make_engine(f"sqlite:///{db}")
+    with migration_connection(engine) as conn:
+        command.upgrade(alembic_config(conn), "0001")
+    t0 = float(calendar.timegm((2026, 3, 2, 5, 0, 0)))
+    with engine.begin() as c:
+        c.execute(text("insert into runs (started_at, finished_at, mode, line_name, config_file, config_hash, source, "
+                       "data_start, data_end) values (:s, :f, 'replay', 'Q2', 'q2.toml', 'abcdef0123456789', "
+                       "'old.csv', :s, :f)"), {"s": t0, "f": t0 + 600})
+        c.execute(text("insert into alarm_episodes (run_id, alarm_key, kind, object_id, level, priority, unit, "
+                       "raised_t, cleared_t, raise_value, peak_value, \"limit\", line_state, config_hash) values "
+                       "(1, 'slip:pull_1:warning', 'slip', 'pull_1', 'warning', 'medium', '%', :r, :c, 0.012, "
+                       "0.02, 0.01, 'running', 'abcdef0123456789')"), {"r": t0 + 60, "c": t0 + 120})
+    engine.dispose()
+    (run,) = json.loads(cli("runs", "--db", str(db), "--format", "json").stdout)
+    assert run["end"] is None and run["alarms"] == 1 and run["timezone"] == "UTC"
+    (row,) = listing(str(db))
+    assert row["raised"] == "2026-03-02T05:01:00.000+00:00" and row["state"] is None
+    assert (row["value"], row["peak"], row["limit"], row["unit"]) == (1.2, 2.0, 1.0, "%")

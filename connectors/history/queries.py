@@ -1,7 +1,7 @@
-"""The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists), the
-episodes active during a window (what ``spanwatch kpi`` measures), one episode in full, the lifecycle journal, the
-configuration in force at a time and the latest run; and the one deletion the history allows, of old context
-windows."""
+"""The readers: opening a history to read it, alarm episodes with filters, the episodes active during a window
+(what ``spanwatch kpi`` measures and ``spanwatch alarms`` lists), one episode in full and the signals kept around
+it, the lifecycle journal, the configuration in force at a time or kept under a hash, the runs (``spanwatch runs``)
+and the latest run; and the one deletion the history allows, of old context windows."""
 
 from __future__ import annotations
 
@@ -25,7 +25,7 @@ from spanwatch.connectors.history.models import (
 from spanwatch.connectors.history.schema import check_readable
 from spanwatch.connectors.history.store import shelve_end_of
 from spanwatch.rules.values import iso
-from sqlalchemy import delete, false, func, inspect, or_, select
+from sqlalchemy import delete, false, func, inspect, null, or_, select
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, load_only
@@ -306,12 +306,14 @@ def list_runs(engine: Engine, line_name: str | None = None) -> list[dict[str, An
     hash, started/finished and the span of data (epoch s; None where not known), how it ended (``end``: finished,
     failed, interrupted, or None while it runs or was never found so) and its number of alarm episodes."""
     counts = (select(AlarmEpisode.run_id, func.count().label("n")).group_by(AlarmEpisode.run_id).subquery())
-    q = (select(Run.id, Run.line_name, Run.mode, Run.source, Run.config_file, Run.config_hash, Run.started_at,
-                Run.finished_at, Run.data_start, Run.data_end, Run.end_state, counts.c.n)
-         .outerjoin(counts, counts.c.run_id == Run.id).order_by(Run.id))
-    if line_name is not None:
-        q = q.where(Run.line_name == line_name)
     with Session(engine) as s:
+        # how a run ended is kept since revision 0002: a history at 0001 is listed as it is, without it
+        ended = "end_state" in {c["name"] for c in inspect(s.connection()).get_columns("runs")}
+        q = (select(Run.id, Run.line_name, Run.mode, Run.source, Run.config_file, Run.config_hash, Run.started_at,
+                    Run.finished_at, Run.data_start, Run.data_end, Run.end_state if ended else null(), counts.c.n)
+             .outerjoin(counts, counts.c.run_id == Run.id).order_by(Run.id))
+        if line_name is not None:
+            q = q.where(Run.line_name == line_name)
         return [{"id": i, "line": ln, "mode": str(m), "source": src, "config_file": cf, "config_hash": ch,
                  "started_t": st, "finished_t": ft, "data_start_t": ds, "data_end_t": de,
                  "end": None if end is None else str(end), "alarms": int(n or 0)}
