@@ -120,7 +120,7 @@ def ellipsize(text: str, width: int) -> str:
     object's distinguishing part is usually its last segment).
 
     >>> ellipsize("q2.unwind.rpm", 9)
-    'q2.…d.rpm'
+    'q2…nd.rpm'
     >>> ellipsize("draw", 9)
     'draw'
     """

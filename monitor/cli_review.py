@@ -30,9 +30,9 @@ if TYPE_CHECKING:
     from spanwatch.monitor.shifts import PlantClock
     from sqlalchemy.engine import Engine
 
-DB_HELP = ("History: a SQLite file path or an SQLAlchemy URL (default: the config's [daemon] history, else "
+DB_HELP = ("History: a SQLite file path or an SQLAlchemy URL (default: the config's daemon.history, else "
            "spanwatch.db).")
-CONFIG_HELP = ("Line configuration (TOML): its [line] timezone and [shifts] (default: the configuration the history "
+CONFIG_HELP = ("Line configuration (TOML): its time zone and shift calendar (default: the configuration the history "
                "kept for the run, else UTC).")
 TIME_HELP = "plant time such as \"2026-03-02 06:00\", or ISO 8601 with an offset"
 
@@ -100,7 +100,18 @@ def _echo_wrapped(text: str, width: int | None) -> None:
     typer.echo(text if width is None else "\n".join(textwrap.wrap(text, max(20, width), subsequent_indent="  ")))
 
 
-@app.command("alarms")
+ALARMS_HELP = "\n\n".join((
+    "List alarms in plant time, or show one: spanwatch alarms show ID.",
+    "Which runs: --run N, or --all-runs; by default the latest run when the history holds only replays (and demos), "
+    "else every live (daemon) run; --line first narrows to one line.",
+    "A window (--since/--until or --shift) selects every alarm active during it, also one standing since before it.",
+    "Times: plant time (--config, else the configuration the history kept, else UTC); on a terminal the list fits "
+    "its width, piped nothing is cut. CSV and JSON give values, peaks and limits in the unit named in their unit "
+    "column (a % unit in per cent), times in ISO 8601 with the plant's offset and in epoch seconds.",
+))
+
+
+@app.command("alarms", help=ALARMS_HELP)
 def alarms_cmd(
     what: Annotated[list[str] | None, typer.Argument(help="show ID: one alarm in full (limits, rationalization, "
                                                           "the signals around its raise, actions).",
@@ -119,7 +130,7 @@ def alarms_cmd(
     level: Annotated[str | None, typer.Option(help="Only this level: warning or alarm.")] = None,
     since: Annotated[str | None, typer.Option(help=f"Alarms active at or after this time: {TIME_HELP}.")] = None,
     until: Annotated[str | None, typer.Option(help=f"Alarms raised before this time: {TIME_HELP}.")] = None,
-    shift: Annotated[str | None, typer.Option(help="Alarms active during this shift of the calendar ([shifts]); "
+    shift: Annotated[str | None, typer.Option(help="Alarms active during this shift of the line's calendar; "
                                                    "the latest such shift unless --date.")] = None,
     day: Annotated[str | None, typer.Option("--date", help="With --shift: the day it starts, YYYY-MM-DD.")] = None,
     active: Annotated[bool, typer.Option("--active", help="Only alarms not yet cleared.")] = False,
@@ -132,15 +143,6 @@ def alarms_cmd(
     fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
     db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
 ) -> None:
-    """List alarms in plant time, or show one: spanwatch alarms show ID.
-
-    Which runs: --run N, or --all-runs; by default the latest run when the history holds only replays (and
-    demos), else every live (daemon) run; --line first narrows to one line. A window (--since/--until or
-    --shift) selects every alarm active during it, also one standing since before it. Times: plant time
-    (--config, else the configuration the history kept, else UTC); piped output is never cut. CSV and JSON
-    give values, peaks and limits in the unit named in their unit column (a % unit in per cent), times in
-    ISO 8601 with the plant's offset and in epoch seconds.
-    """
     if what:
         if len(what) != 2 or what[0] != "show" or not what[1].isdigit():
             fail(f"expected nothing, or show ID (an alarm id as the list gives it), got {' '.join(what)!r}")
@@ -400,7 +402,7 @@ def kpi_cmd(
             runs = list_runs(engine, line)
             clock = _kept_clock(engine, runs[-1] if runs else None)
         now = time.time()
-        start, end, _label = _window(clock, since, until, shift, day, now)
+        start, end, label = _window(clock, since, until, shift, day, now)
         end = now if end is None else end
         start = end - 86400.0 if start is None else start
         if not start < end:
@@ -411,4 +413,7 @@ def kpi_cmd(
     if fmt == "json":
         typer.echo(json.dumps(kpi_dict(k), indent=1))
     else:
+        head = f"{label}: " if label.startswith("shift") else ""
+        typer.echo(f"{head}{clock.fmt(start)} to {clock.fmt(end)} plant time ({clock.tz.key})"
+                   + (f", line {line}" if line else ""))
         typer.echo(kpi_text(k, width=min(terminal_width() or 80, 80)))

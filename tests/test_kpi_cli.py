@@ -141,6 +141,9 @@ def test_text_report_fits_80_columns(db):
     lines = res.stdout.splitlines()
     assert max(len(line) for line in lines) <= 80
     text = res.stdout
+    # the window in plant time first (this history kept no configuration: UTC), then the summary
+    assert lines[0] == f"2026-03-02 06:00 to 2026-03-02 07:00 plant time (UTC), line {LINE_A}"
+    lines = lines[1:]
     assert lines[0] == "Alarm KPIs 2026-03-02 06:00:00Z to 2026-03-02 07:00:00Z (1.0 h)"
     assert lines[1] == "1 operator position; annunciated raises 16"
     assert lines[2].startswith("not counted: 0 advisory, 0 raised while shelved")
