@@ -179,9 +179,10 @@ def time_in_alarm(row: dict[str, Any], ends: dict[int, float], start: float | No
 
 
 def exceedance(row: dict[str, Any]) -> float:
-    """How far past its limit the peak went, relative to the limit (0 when not known): what ``--sort peak`` orders
-    by, so checks in different units compare."""
+    """How far past its limit the peak went (the value at raise while it is active), relative to the limit (0 when
+    not known): what ``--sort peak`` orders by, so checks in different units compare."""
     peak, limit = row.get("peak"), row.get("limit")
+    peak = row.get("value") if peak is None else peak  # still active: its peak is not known yet, its raise value is
     if peak is None or limit is None or not math.isfinite(peak):
         return 0.0
     return abs(abs(peak) - abs(limit)) / (abs(limit) or 1.0)

@@ -300,6 +300,20 @@ def test_csv_and_json_numbers_agree_with_their_unit(history, rows):
     assert show["context_summary"] and all(s["before"] for s in show["context_summary"])
 
 
+def test_show_summarises_the_signals_around_the_raise(history, rows):
+    lag = next(r for r in rows if r["check"] == "idler_lag")
+    show = json.loads(inproc("alarms", "show", str(lag["id"]), "--db", history, "--format", "json").stdout)
+    ctx = {s["signal"]: s for s in show["context_summary"]}
+    web, idler = ctx["speed/web"], ctx[f"speed/{IDLER}"]
+    assert web["unit"] == idler["unit"] == "m/min"
+    # the scenario runs the line at 400 m/min; the dragging idler lags the web by more than the 0.8 % limit after
+    # the raise, and by no more than the injected drag of 1.5 % (plus measurement noise)
+    assert web["before"]["mean"] == pytest.approx(400.0, rel=0.01)
+    lag_after = 1 - idler["after"]["mean"] / web["after"]["mean"]
+    assert 0.008 <= lag_after <= 0.025
+    assert idler["before"]["min"] <= idler["before"]["mean"] <= idler["before"]["max"]
+
+
 def _time_in_alarm(r: dict, run_end: dict[int, float], a: float | None = None, b: float | None = None) -> float:
     end = r["cleared_epoch"] if r["cleared_epoch"] is not None else run_end[r["run"]]
     lo = r["raised_epoch"] if a is None else max(a, r["raised_epoch"])
