@@ -141,11 +141,14 @@ class Column:
 
 def layout(columns: Sequence[Column], rows: Sequence[Sequence[str]], width: int | None) -> list[str]:
     """Plain text lines of a table, two spaces apart (header first). ``width`` None (piped output): every cell in
-    full. A width: the shrinkable columns are ellipsized, widest first, until the lines fit (or reach their
-    minimum)."""
+    full. A width: one space apart if that fits, else the shrinkable columns are ellipsized, widest first, until
+    the lines fit (or reach their minimum)."""
     widths = [max([len(c.header), *(len(r[i]) for r in rows)]) for i, c in enumerate(columns)]
+    gap = 2
+    if width is not None and sum(widths) + gap * (len(widths) - 1) > width:
+        gap = 1  # closer columns before any name is cut
     if width is not None:
-        while sum(widths) + 2 * (len(widths) - 1) > width:
+        while sum(widths) + gap * (len(widths) - 1) > width:
             can = [i for i, c in enumerate(columns) if c.shrink and widths[i] > c.shrink]
             if not can:
                 break
@@ -156,7 +159,7 @@ def layout(columns: Sequence[Column], rows: Sequence[Sequence[str]], width: int 
         for c, w, cell in zip(columns, widths, cells, strict=True):
             text = ellipsize(cell, w) if width is not None else cell
             out.append(text.rjust(w) if c.right else text.ljust(w))
-        return "  ".join(out).rstrip()
+        return (" " * gap).join(out).rstrip()
 
     return [line([c.header for c in columns]), *(line(r) for r in rows)]
 
@@ -284,9 +287,9 @@ def summary_lines(groups: list[dict[str, Any]], by: str, width: int | None) -> l
 
 
 def run_source(r: dict[str, Any]) -> str:
-    """``replay FILE``, ``live`` (a daemon, with its sources) or ``demo ...``."""
+    """The file a replay read, ``live`` (a daemon, with its sources) or what a demo simulated."""
     if r["mode"] == "replay":
-        return "replay " + str(r["source"]).replace("\\", "/").rsplit("/", 1)[-1]
+        return str(r["source"]).replace("\\", "/").rsplit("/", 1)[-1]
     if r["mode"] == "daemon":
         return "live " + str(r["source"]) if r["source"] else "live"
     return str(r["source"] or r["mode"])
@@ -311,7 +314,7 @@ def runs_lines(runs: list[dict[str, Any]], clock_of: Callable[[dict[str, Any]], 
             Column("config", shrink=10), Column("time span"), Column("alarms", right=True), Column("ended")]
     table = []
     for r in runs:
-        name = str(r["config_file"]).replace("\\", "/").rsplit("/", 1)[-1]
+        name = str(r["config_file"]).replace("\\", "/").rsplit("/", 1)[-1].removesuffix(".toml")
         table.append([str(r["id"]), str(r["line"]), run_source(r), f"{name} {str(r['config_hash'])[:6]}",
                       run_span(r, clock_of(r), width), str(r["alarms"]), r["end"] or "running?"])
     return layout(cols, table, width)
