@@ -496,131 +496,6 @@ def replay_cmd(
                       soft_wrap=True)
 
 
-@app.command("alarms")
-def alarms_cmd(
-    what: Annotated[list[str] | None, typer.Argument(help="show ID: one alarm in full (rationalization, "
-                                                          "transitions, operator actions).", show_default=False)]
-    = None,
-    db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
-    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
-    run: Annotated[int | None, typer.Option(help="Only this run (default: all runs).")] = None,
-    check: Annotated[str | None, typer.Option(help="Only this check kind, e.g. traction.")] = None,
-    obj: Annotated[str | None, typer.Option("--object", help="Only this roller, zone, winder or tag.")] = None,
-    priority: Annotated[str | None, typer.Option(
-        help="Only this priority: advisory, low, medium, high, urgent.")] = None,
-    level: Annotated[str | None, typer.Option(help="Only this level: warning or alarm.")] = None,
-    since: Annotated[str | None, typer.Option(help="Raised at or after this ISO 8601 time.")] = None,
-    until: Annotated[str | None, typer.Option(help="Raised before this ISO 8601 time.")] = None,
-    active: Annotated[bool, typer.Option("--active", help="Only alarms not yet cleared.")] = False,
-    fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
-    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
-) -> None:
-    """List alarms from a history database, with filters; or show one: spanwatch alarms show ID."""
-    import csv
-    import json
-
-    from spanwatch.rules.values import parse_iso
-
-    if what:
-        if len(what) != 2 or what[0] != "show" or not what[1].isdigit():
-            fail(f"expected nothing, or show ID (an alarm id as the list gives it), got {' '.join(what)!r}")
-        _show_alarm(int(what[1]), db, db_password, fmt, db_timeout)
-        return
-
-    from rich.table import Table
-    from spanwatch.connectors.history import query_episodes
-    from spanwatch.connectors.history.models import Level
-    from spanwatch.connectors.history.queries import episode_extras
-    from spanwatch.monitor.present import fmt_value
-    from spanwatch.monitor.schema import PRIORITIES
-    from spanwatch.rules.catalog import CHECK_KINDS
-
-    _one_of(fmt, ("table", "csv", "json"), "--format")
-    _one_of(check, sorted(CHECK_KINDS), "--check")
-    _one_of(priority, PRIORITIES, "--priority")
-    _one_of(level, [v.value for v in Level], "--level")
-
-    def when(text: str | None, opt: str) -> float | None:
-        try:
-            return parse_iso(text) if text is not None else None
-        except ValueError as exc:
-            fail(f"{opt}: {exc}")
-
-    since_t, until_t = when(since, "--since"), when(until, "--until")
-    url, _shown = _history_url(db, db_password, reading=True)
-    engine = open_history_reader(url, db_timeout)
-    with history_errors(url, db_timeout):
-        rows = query_episodes(engine, run_id=run, kind=check, object_id=obj, priority=priority, level=level,
-                              since=since_t, until=until_t, active_only=active)
-        extras = episode_extras(engine, [int(r["id"]) for r in rows]) if fmt != "table" else {}
-    engine.dispose()
-    cols = ["id", "raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
-            "unit", "line_state", "run", "config_hash", "state", "first_out", "chattering", "cause", "consequence",
-            "corrective_action", "response_time"]
-    for r in rows:
-        r.update(extras.get(int(r["id"]), dict.fromkeys(("state", "first_out", "chattering", "cause", "consequence",
-                                                          "corrective_action", "response_time"))))
-    if fmt == "json":
-        typer.echo(json.dumps([{c: r[c] for c in cols} for r in rows], indent=1))
-    elif fmt == "csv":
-        w = csv.DictWriter(sys.stdout, fieldnames=cols, extrasaction="ignore", lineterminator="\n")
-        w.writeheader()
-        w.writerows(rows)
-    else:
-        t = Table(title=f"{len(rows)} alarm(s)", title_justify="left")
-        for c in ("raised", "cleared", "check", "object", "level", "priority", "value", "peak", "limit", "line state"):
-            t.add_column(c)
-        for r in rows:
-            t.add_row(r["raised"], r["cleared"] or "active", r["check"], r["object"], r["level"], r["priority"],
-                      fmt_value(r["value"], r["unit"]), fmt_value(r["peak"], r["unit"]),
-                      f"{r['limit']:g}", r["line_state"])
-        console.print(t)
-
-
-@app.command("kpi")
-def kpi_cmd(
-    db: Annotated[str, typer.Option(help="History: a SQLite file path or an SQLAlchemy URL.")] = "spanwatch.db",
-    db_password: Annotated[str | None, typer.Option(help=DB_PASSWORD_HELP)] = None,
-    since: Annotated[str | None, typer.Option(help="Window start, ISO 8601 (default: 24 h before --until).")] = None,
-    until: Annotated[str | None, typer.Option(help="Window end, exclusive, ISO 8601 (default: now).")] = None,
-    line: Annotated[str | None, typer.Option(help="Only the runs of this line (default: every line).")] = None,
-    operators: Annotated[int, typer.Option(help="Operator positions sharing the alarms.", min=1)] = 1,
-    fmt: Annotated[str, typer.Option("--format", help="text or json.")] = "text",
-    db_timeout: Annotated[float, typer.Option(help=DB_TIMEOUT, min=0.0)] = 10.0,
-) -> None:
-    """Alarm-system KPIs of a window (ISA-18.2 / IEC 62682 / EEMUA 191): alarm rates, floods, top 10, chattering,
-    fleeting, stale alarms and the priority distribution, beside their benchmarks."""
-    import json
-    import time
-
-    from spanwatch.monitor.kpireport import kpi_dict, kpi_text, load_episodes
-    from spanwatch.rules.kpi import alarm_kpis
-    from spanwatch.rules.values import parse_iso
-
-    _one_of(fmt, ("text", "json"), "--format")
-
-    def when(text: str | None, opt: str, default: float) -> float:
-        try:
-            return parse_iso(text) if text is not None else default
-        except ValueError as exc:
-            fail(f"{opt}: {exc}")
-
-    end = when(until, "--until", time.time())
-    start = when(since, "--since", end - 86400.0)
-    if not start < end:
-        fail(f"--since: expected a time before --until, got {since or start} .. {until or end}")
-    url, _shown = _history_url(db, db_password, reading=True)
-    engine = open_history_reader(url, db_timeout)
-    with history_errors(url, db_timeout):
-        episodes = load_episodes(engine, start, end, line)
-    engine.dispose()
-    k = alarm_kpis(episodes, start, end, operators=operators)
-    if fmt == "json":
-        typer.echo(json.dumps(kpi_dict(k), indent=1))
-    else:
-        typer.echo(kpi_text(k, width=min(console.width, 80)))
-
-
 @app.command("alarm-list")
 def alarm_list_cmd(
     config: Annotated[Path | None, typer.Option("--config", help="Line configuration (TOML).")] = None,
@@ -687,75 +562,6 @@ def _kept_alarm_points(db: str, db_password: str | None, line_name: str | None, 
     when = "in force at" if kept["covering"] else "last used before"
     return points, (f"{line_name}: master alarm list {when} {at or 'now'} (config {kept['config_hash']} of run "
                     f"{kept['run']}, saved {kept['saved']} by {kept['saved_by'] or 'unknown'})")
-
-
-def _show_alarm(episode_id: int, db: str, db_password: str | None, fmt: str, db_timeout: float) -> None:
-    """``spanwatch alarms show ID``: one alarm with its rationalization, transitions and actions (80 columns)."""
-    import json
-    import textwrap
-
-    from spanwatch.connectors.history import episode_detail
-    from spanwatch.monitor.present import fmt_value
-
-    _one_of(fmt, ("table", "json"), "--format")
-    url, _shown = _history_url(db, db_password, reading=True)
-    engine = open_history_reader(url, db_timeout)
-    with history_errors(url, db_timeout):
-        d = episode_detail(engine, episode_id)
-    engine.dispose()
-    if d is None:
-        fail(f"alarm {episode_id} is not in this history (spanwatch alarms lists the ids)")
-    if fmt == "json":
-        typer.echo(json.dumps(d, indent=1, default=str))
-        return
-    unit = str(d["unit"])
-    out = [f"alarm {d['id']}: {d['check']} {d['object']} {d['level']} ({d['priority']} priority)",
-           f"  raised   {d['raised']}  value {fmt_value(d['value'], unit)}",
-           f"  cleared  {d['cleared'] or 'active'}" + (f"  peak {fmt_value(d['peak'], unit)}" if d["cleared"] else ""),
-           f"  limit    {fmt_value(d['limit'], unit)}; line state {d['line_state']}; run {d['run']}; "
-           f"config {str(d['config_hash'])[:12]}"]
-    flags = [name for name in ("first_out", "chattering") if d.get(name)]
-    if flags:
-        out.append("  marked   " + ", ".join(f.replace("_", "-") for f in flags))
-    if d.get("blames"):
-        out += textwrap.wrap("look at  " + ", ".join(d["blames"]), 78, initial_indent="  ", subsequent_indent=" " * 11)
-    if d["check"] == "drift" and d.get("detail"):
-        from spanwatch.monitor.present import drift_text
-
-        det = d["detail"]
-        out += textwrap.wrap("drift    " + drift_text(str(d["object"]), det, now=float(d["raised_t"])), 78,
-                             initial_indent="  ", subsequent_indent=" " * 11)
-        if det.get("change_time") is not None:
-            out.append(f"  changed  about {_short(iso_or(float(det['change_time'])))} (estimate)")
-    for label, key in (("cause", "cause"), ("if ignored", "consequence"), ("do", "corrective_action")):
-        if d.get(key):
-            out += textwrap.wrap(str(d[key]), 78, initial_indent=f"  {label + ':':12}", subsequent_indent=" " * 14)
-    if d.get("response_time") is not None:
-        out.append(f"  {'respond in':12}{d['response_time']:g} s")
-    if d["events"]:
-        out.append("transitions")
-        out += [f"  {_short(e['time'])} {e['event']:5} {fmt_value(e['value'], unit)} [{e['line_state']}]"
-                for e in d["events"]]
-    if d["actions"]:
-        out.append("lifecycle and operator actions")
-        for a in d["actions"]:
-            who = f" by {a['user']}" if a["user"] else ""
-            out.append(f"  {_short(a['time'])} {a['action'].replace('_', ' ')}{who}: {a['before']} -> {a['after']}")
-            if a["until"] is not None:
-                out.append("      until " + ("it clears" if a["one_shot"] else iso_or(a["until"])))
-            if a["comment"]:
-                out += textwrap.wrap(str(a["comment"]), 78, initial_indent="      ", subsequent_indent="      ")
-    if d["context"]:
-        out += textwrap.wrap("signals kept around the raise: " + ", ".join(d["context"]), 78,
-                             subsequent_indent="  ")
-    typer.echo("\n".join(out))
-
-
-def _short(iso_time: str | None) -> str:
-    """An ISO 8601 time without its milliseconds (the detail view's lines fit 80 columns)."""
-    import re
-
-    return re.sub(r"\.\d+(?=[+-Z])", "", iso_time or "-")
 
 
 def iso_or(t: float) -> str:
@@ -1061,12 +867,13 @@ if __name__ == "__main__":
 
 
 # the commands kept in modules of their own register themselves on the app: the operator's (ack, shelve, ...),
-# commissioning (record, check-tags; on a recording: stats, tune, compare, mark, calibrate, traction-evidence),
-# review (report)
+# review (alarms, runs, kpi, report), commissioning (record, check-tags; on a recording: stats, tune, compare,
+# mark, calibrate, traction-evidence)
 from spanwatch.monitor import (  # noqa: E402, F401
     cli_calibrate,
     cli_commission,
     cli_operator,
     cli_report,
+    cli_review,
     cli_tuning,
 )

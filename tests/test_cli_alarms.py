@@ -27,9 +27,9 @@ from typer.testing import CliRunner
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config" / "quillmere-q2.toml"
-COLUMNS = ["id", "raised", "cleared", "duration_s", "check", "object", "level", "priority", "value", "peak", "limit",
-           "unit", "line_state", "run", "config_hash", "state", "first_out", "chattering", "cause", "consequence",
-           "corrective_action", "response_time"]
+COLUMNS = ["id", "line", "run", "raised", "raised_epoch", "cleared", "cleared_epoch", "duration_s", "check", "object",
+           "level", "priority", "value", "peak", "limit", "unit", "line_state", "config_hash", "state", "first_out",
+           "chattering", "cause", "consequence", "corrective_action", "response_time"]
 DROPOUT_TAG = "q2.unwind.rpm"
 
 SCENARIO = f"""
@@ -211,7 +211,7 @@ def test_filters_select_the_matching_rows(replayed, rows):
         assert _listing(db, "--priority", r["priority"]) == [x for x in rows if x["priority"] == r["priority"]]
         assert _listing(db, "--level", r["level"]) == [x for x in rows if x["level"] == r["level"]]
     assert _listing(db, "--run", "1") == rows
-    assert _listing(db, "--run", "2") == []
+    assert cli_inproc("alarms", "--db", str(db), "--run", "2").exit_code == 2  # no such run: said so, not []
     quiet = sorted(set(CHECK_KINDS) - {r["check"] for r in rows})  # kinds spanwatch knows that raised nothing here
     assert quiet and _listing(db, "--check", quiet[0]) == []
     assert _listing(db, "--active") == [x for x in rows if not x["cleared"]]
@@ -226,17 +226,18 @@ def test_since_until_filters_in_any_offset(replayed, rows):
     cut = t_first + (t_last - t_first) / 2
     cut_text = cut.astimezone(timezone(-timedelta(hours=5, minutes=30))).isoformat()
     before = [x for x in rows if datetime.fromisoformat(x["raised"]) < cut]
-    after = [x for x in rows if datetime.fromisoformat(x["raised"]) >= cut]
+    # --since selects every alarm still active at or after it: raised after it, or cleared after it
+    after = [x for x in rows if not x["cleared"] or datetime.fromisoformat(x["cleared"]) > cut]
     assert before and after
     assert _listing(db, "--until", cut_text) == before
     assert _listing(db, "--since", cut_text) == after
-    # since is inclusive, until exclusive: an alarm raised exactly at the cut is "since", not "until"
+    # until is exclusive: an alarm raised exactly at the cut is active "since" it, not "until" it
     exact = rows[-1]["raised"]
     assert rows[-1] in _listing(db, "--since", exact)
     assert rows[-1] not in _listing(db, "--until", exact)
 
 
-@pytest.mark.parametrize("args", [["--since", "2026-03-02T05:00:00"], ["--until", "yesterday"],
+@pytest.mark.parametrize("args", [["--since", "2026-13-02 05:00"], ["--until", "yesterday"],
                                   ["--format", "xml"], ["--check", "no_such_check"], ["--priority", "critical"],
                                   ["--level", "alarms"]])
 def test_bad_filter_arguments_exit_2(replayed, args):

@@ -1,7 +1,7 @@
-"""The readers: opening a history to read it, alarm episodes with filters (what ``spanwatch alarms`` lists), the
-episodes active during a window (what ``spanwatch kpi`` measures), one episode in full, the lifecycle journal, the
-configuration in force at a time and the latest run; and the one deletion the history allows, of old context
-windows."""
+"""The readers: opening a history to read it, alarm episodes with filters, the episodes active during a window
+(what ``spanwatch kpi`` measures and ``spanwatch alarms`` lists), one episode in full and the signals kept around
+it, the lifecycle journal, the configuration in force at a time or kept under a hash, the runs (``spanwatch runs``)
+and the latest run; and the one deletion the history allows, of old context windows."""
 
 from __future__ import annotations
 
@@ -25,7 +25,7 @@ from spanwatch.connectors.history.models import (
 from spanwatch.connectors.history.schema import check_readable
 from spanwatch.connectors.history.store import shelve_end_of
 from spanwatch.rules.values import iso
-from sqlalchemy import delete, false, func, inspect, or_, select
+from sqlalchemy import delete, false, func, inspect, null, or_, select
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, load_only
@@ -296,3 +296,72 @@ def latest_run(engine: Engine) -> int | None:
     """The id of the newest run, or None for an empty history."""
     with Session(engine) as s:
         return s.scalar(select(Run.id).order_by(Run.id.desc()).limit(1))
+
+
+# --- the review (spanwatch alarms, runs) ---------------------------------------------------------------------------
+
+
+def list_runs(engine: Engine, line_name: str | None = None) -> list[dict[str, Any]]:
+    """Every run (of ``line_name`` if given), oldest first, as plain dicts: id, line, mode, source, config file and
+    hash, started/finished and the span of data (epoch s; None where not known), how it ended (``end``: finished,
+    failed, interrupted, or None while it runs or was never found so) and its number of alarm episodes."""
+    counts = (select(AlarmEpisode.run_id, func.count().label("n")).group_by(AlarmEpisode.run_id).subquery())
+    with Session(engine) as s:
+        # how a run ended is kept since revision 0002: a history at 0001 is listed as it is, without it
+        ended = "end_state" in {c["name"] for c in inspect(s.connection()).get_columns("runs")}
+        q = (select(Run.id, Run.line_name, Run.mode, Run.source, Run.config_file, Run.config_hash, Run.started_at,
+                    Run.finished_at, Run.data_start, Run.data_end, Run.end_state if ended else null(), counts.c.n)
+             .outerjoin(counts, counts.c.run_id == Run.id).order_by(Run.id))
+        if line_name is not None:
+            q = q.where(Run.line_name == line_name)
+        return [{"id": i, "line": ln, "mode": str(m), "source": src, "config_file": cf, "config_hash": ch,
+                 "started_t": st, "finished_t": ft, "data_start_t": ds, "data_end_t": de,
+                 "end": None if end is None else str(end), "alarms": int(n or 0)}
+                for i, ln, m, src, cf, ch, st, ft, ds, de, end, n in s.execute(q).all()]
+
+
+def review_episodes(engine: Engine, *, run_ids: list[int] | None = None, kind: str | None = None,
+                    object_id: str | None = None, priority: str | None = None, level: str | None = None,
+                    start: float | None = None, end: float | None = None, active_only: bool = False
+                    ) -> list[dict[str, Any]]:
+    """Alarm episodes as :func:`query_episodes` gives them, of the runs ``run_ids`` (all if None), ACTIVE during the
+    window ``[start, end)``: raised before ``end`` and not cleared at or before ``start`` (an alarm standing since
+    before the window is in it). Each row adds ``line`` (its run's line). Oldest raise first."""
+    q = (select(AlarmEpisode, Run.line_name).join(Run, Run.id == AlarmEpisode.run_id)
+         .options(load_only(*_BASE)).order_by(AlarmEpisode.raised_t, AlarmEpisode.id))
+    if run_ids is not None:
+        q = q.where(AlarmEpisode.run_id.in_(run_ids) if run_ids else false())
+    if kind:
+        q = q.where(AlarmEpisode.kind == kind)
+    if object_id:
+        q = q.where(AlarmEpisode.object_id == object_id)
+    if priority:
+        q = q.where(AlarmEpisode.priority == Priority(priority) if priority in _values(Priority) else false())
+    if level:
+        q = q.where(AlarmEpisode.level == Level(level) if level in _values(Level) else false())
+    if end is not None:
+        q = q.where(AlarmEpisode.raised_t < end)
+    if start is not None:
+        q = q.where(or_(AlarmEpisode.cleared_t.is_(None), AlarmEpisode.cleared_t > start))
+    if active_only:
+        q = q.where(AlarmEpisode.cleared_t.is_(None))
+    with Session(engine) as s:
+        return [{**_episode(e), "line": line} for e, line in s.execute(q).all()]
+
+
+def episode_context(engine: Engine, episode_id: int) -> list[dict[str, Any]]:
+    """The signals kept around one raise (``alarm_context``): name, ``t0``, ``dt`` (s) and the values (None where
+    unusable), in the order they were kept."""
+    with Session(engine) as s:
+        rows = s.execute(select(AlarmContext.signal, AlarmContext.t0, AlarmContext.dt, AlarmContext.values)
+                         .where(AlarmContext.episode_id == episode_id).order_by(AlarmContext.id)).all()
+    return [{"signal": sig, "t0": t0, "dt": dt, "values": json.loads(vals)} for sig, t0, dt, vals in rows]
+
+
+def kept_config(engine: Engine, line_name: str, config_hash: str) -> str | None:
+    """The text of the configuration ``line_name`` ran with under ``config_hash`` (``config_versions``), or None."""
+    with Session(engine) as s:
+        if not inspect(s.connection()).has_table("config_versions"):
+            return None
+        return s.scalar(select(ConfigVersion.content).where(ConfigVersion.line_name == line_name,
+                                                            ConfigVersion.config_hash == config_hash))
