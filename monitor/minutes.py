@@ -67,7 +67,7 @@ class MinuteAccumulator:
 
     def complete_before(self, next_t: float) -> list[CheckMinute]:
         """The open minute's rows when no frame before ``next_t`` (epoch s) is still to come and it ends by then."""
-        if self._minute is not None and next_t >= (self._minute + 1) * self.period - 1e-9:
+        if self._minute is not None and next_t >= (self._minute + 1) * self.period:
             return self._close()
         return []
 

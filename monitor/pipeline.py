@@ -262,9 +262,9 @@ class Pipeline:
         out: list[Transition] = []
         while (block := self.next_block(until)) is not None:
             out += self._evaluate(block)
-        if self.minutes is not None:
-            # every frame up to the aligner's next one is computed: a minute that ends by then is complete
-            self._write_minutes(self.minutes.complete_before(self.aligner.emitted_until + 1.0 / self.frame_rate))
+        if self.minutes is not None and self.aligner.next_frame is not None:
+            # every frame before the aligner's next one is computed: a minute that ends by then is complete
+            self._write_minutes(self.minutes.complete_before(self.aligner.next_frame / self.aligner.rate))
         return out
 
     def _write_minutes(self, rows: list[CheckMinute], *, flush: bool = False) -> None:

@@ -265,3 +265,50 @@ def test_upgrade_of_a_0004_history_adds_the_table_and_keeps_its_rows(db_url, rec
             assert c.execute(text("select count(*) from runs")).scalar_one() == 2
     finally:
         engine.dispose()
+
+
+def test_a_minute_is_written_once_complete_and_the_partial_last_one_at_the_end(recorded, tmp_path):
+    # the daemon's pipeline (minutes written as they complete): before the run ends the history holds every whole
+    # minute the frames have passed, and not the minute still open; closing the run adds it
+    line, rec = recorded
+    url = sqlite_url(str(tmp_path / "history.db"))
+    h = History(url)
+    run = h.start_run(mode="daemon", line_name=line.name, config_file="q2.toml", config_hash="h")
+    pipe = Pipeline(line, h)
+    for batch in read_recording(rec, pipe.names):
+        pipe.feed(batch)
+    pipe.finish_frames()
+    engine = make_engine(url)
+    try:
+        def times() -> list[str]:
+            rows = query_check_minutes(engine, start=T0, end=T0 + 3600, run_id=run, check="traction", obj="pull_1")
+            return [datetime.fromtimestamp(r["t"], UTC).strftime("%H:%M") for r in rows]
+
+        assert pipe.last_t is not None and datetime.fromtimestamp(pipe.last_t, UTC).strftime("%H:%M") == "05:04"
+        assert times() == ["05:00", "05:01", "05:02", "05:03"]
+        pipe.finish_history()
+        assert times() == ["05:00", "05:01", "05:02", "05:03", "05:04"]
+    finally:
+        engine.dispose()
+        h.close()
+
+
+def test_the_accumulator_closes_a_minute_when_its_last_frame_is_computed():
+    from spanwatch.monitor.minutes import MinuteAccumulator
+
+    acc = MinuteAccumulator({("slip", "pull_1"): "%"})
+    # one frame a second; the first block ends on the minute's last frame (05:00:59), the second starts the next one
+    t = T0 + np.arange(0.0, 60.0)
+    values = np.where(np.arange(60) < 30, 1.0, 3.0)[None, :]
+    valid = (np.arange(60) % 10 != 0)[None, :]  # every tenth frame gated
+    assert acc.push(t, [("slip", "pull_1")], values, valid) == []
+    assert acc.complete_before(T0 + 59.5) == []  # a frame of the minute may still come
+    (row,) = acc.complete_before(T0 + 60.0)
+    # 54 valid frames: 27 at 1.0 and 27 at 3.0, mean 2.0 (by hand)
+    assert row == CheckMinute("slip", "pull_1", T0, 60, 54, 1.0, 2.0, 3.0, "%")
+    assert acc.flush() == []
+    # a block across a minute's end: the first minute is complete at once, the second stays open until flushed
+    rows = acc.push(T0 + np.array([60.0, 119.0, 120.0]), [("slip", "pull_1")], np.array([[5.0, 7.0, 9.0]]),
+                    np.array([[True, False, True]]))
+    assert rows == [CheckMinute("slip", "pull_1", T0 + 60, 2, 1, 5.0, 5.0, 5.0, "%")]
+    assert acc.flush() == [CheckMinute("slip", "pull_1", T0 + 120, 1, 1, 9.0, 9.0, 9.0, "%")]
