@@ -264,11 +264,14 @@ class Daemon:
             await asyncio.sleep(every)
 
     async def _prune_context(self, every: float = 3600.0) -> None:
-        """Delete context windows older than ``[alarms] context_keep`` or beyond ``context_max_rows``, hourly.
+        """Delete context windows older than ``[alarms] context_keep`` or beyond ``context_max_rows``, and the
+        checks' minutes older than ``context_keep``, hourly.
 
-        Only the signals kept around raises go: transitions, episodes and actions are never deleted.
+        Only the signals kept around raises and the checks' per-minute values go: transitions, episodes and actions
+        are never deleted.
         """
         from spanwatch.connectors.history.queries import prune_context
+        from spanwatch.connectors.history.trends import prune_check_minutes
 
         a = self.line.config.alarms
         while True:
@@ -278,6 +281,11 @@ class Daemon:
                 if n:
                     log.info("history retention: %d context window(s) deleted (older than %.0f days, or beyond %d)",
                              n, a.context_keep / 86400, a.context_max_rows)
+                n = await asyncio.to_thread(prune_check_minutes, self.actions.engine,
+                                            older_than=self.clock() - a.context_keep)
+                if n:
+                    log.info("history retention: %d check minute(s) deleted (older than %.0f days)", n,
+                             a.context_keep / 86400)
             except Exception as exc:  # the database unavailable: the next hour tries again
                 log.warning("history retention: %s", exc)
             await asyncio.sleep(every)

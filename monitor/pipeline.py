@@ -19,11 +19,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from spanwatch.connectors.history.store import HistorySink
+from spanwatch.connectors.history.trends import MINUTE, CheckMinute
 from spanwatch.monitor.aligner import Aligner
 from spanwatch.monitor.checkset import alarm_points, build_checks, chatter_settings, suppression_rules
 from spanwatch.monitor.context import ContextRecorder
 from spanwatch.monitor.inputs import InputStats
 from spanwatch.monitor.line import Line
+from spanwatch.monitor.minutes import MinuteAccumulator
 from spanwatch.monitor.signals import SignalDeriver
 from spanwatch.monitor.watermarks import Watermarks
 from spanwatch.rules.alarms import AlarmEngine, Transition
@@ -63,7 +65,7 @@ class Pipeline:
 
     def __init__(self, line: Line, history: HistorySink | None = None, *,
                  on_transition: Callable[[Transition], None] | None = None, context: bool = True,
-                 replay_lag: float | None = None, block_seconds: float = 10.0) -> None:
+                 replay_lag: float | None = None, block_seconds: float = 10.0, minutes_every: float = 0.0) -> None:
         self.line = line
         lw, d = line.config.line, line.config.daemon
         self.names = tuple(line.tags)
@@ -104,6 +106,14 @@ class Pipeline:
         self.history = history
         self.on_transition = on_transition
         self.context = ContextRecorder(lw.frame_rate) if context else None
+        # each check's value per minute (frames, valid frames, min, mean, max) for the history's trends
+        units = {(c.kind, c.object_id): c.defaults.unit for c in self.checks}
+        units.update({(p.kind, p.object_id): p.unit for p in self.points})
+        self.minutes = MinuteAccumulator(units) if history is not None else None
+        # the minutes' rows are written as each minute completes (0), or held until they cover ``minutes_every``
+        # seconds (a replay: fewer, larger writes)
+        self.minutes_every = minutes_every
+        self._held: list[CheckMinute] = []
         self._drift = [c for c in self.checks if isinstance(c, DriftCheck)]
         self._drift_by_key = {f"drift:{c.object_id}": c for c in self._drift}
         self._inputs_of = {(c.kind, c.object_id): (c.inputs or (f"tag/{c.object_id}",)) for c in self.checks}
@@ -252,7 +262,25 @@ class Pipeline:
         out: list[Transition] = []
         while (block := self.next_block(until)) is not None:
             out += self._evaluate(block)
+        if self.minutes is not None and self.aligner.next_frame is not None:
+            # every frame before the aligner's next one is computed: a minute that ends by then is complete
+            self._write_minutes(self.minutes.complete_before(self.aligner.next_frame / self.aligner.rate))
         return out
+
+    def _write_minutes(self, rows: list[CheckMinute], *, flush: bool = False) -> None:
+        """Hand the completed minutes' rows to the history, or hold them until they cover ``minutes_every``."""
+        self._held += rows
+        held = self._held
+        if self.history is None or not held:
+            return
+        if flush or held[-1].t - held[0].t + MINUTE >= self.minutes_every:
+            self._held = []
+            self.history.record_minutes(held)
+
+    def flush_minutes(self) -> None:
+        """Write the minutes held and the open minute, complete or not (the end of a run, or a run that stops)."""
+        if self.minutes is not None:
+            self._write_minutes(self.minutes.flush(), flush=True)
 
     def _evaluate(self, block: Block) -> list[Transition]:
         t, frames, signals = block.t, block.tags, block.signals
@@ -265,6 +293,12 @@ class Pipeline:
                 results[(c.kind, c.object_id)] = r
         keys = list(results)
         reasons = np.stack([r.reason for r in results.values()])
+        minutes: list[CheckMinute] = []
+        if self.minutes is not None:
+            values = np.stack([r.value for r in results.values()])
+            with np.errstate(invalid="ignore"):
+                valid = (reasons == Reason.OK) & np.isfinite(values)
+            minutes = self.minutes.push(t, keys, values, valid)
         last_values = np.array([r.value[-1] for r in results.values()])
         self.check_stats.add_block(keys, reasons)
         t_last = float(t[-1])
@@ -287,6 +321,7 @@ class Pipeline:
             self.history.record(transitions, lifecycle=events, states=self.states_of(events), after=after)
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float(t[-1])))
+            self._write_minutes(minutes)
         elif after is not None:
             after()
         if self.on_transition is not None:
@@ -362,6 +397,7 @@ class Pipeline:
         if self.history is not None:
             if self.context is not None:
                 self.history.record_contexts(self.context.collect(float("inf"), flush=True))
+            self.flush_minutes()
             self.history.finish_run(input_rows=self.inputs.rows(), data_start=self.first_t, data_end=self.last_t)
 
     def finish(self) -> list[Transition]:

@@ -8,6 +8,7 @@ error goes on to the caller; a failure of the history itself is a one-line
 
 from __future__ import annotations
 
+import contextlib
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -58,7 +59,7 @@ def replay(line: Line, recording: str | Path, db_url: str | None, *,
         except BaseException:
             history.close()
             raise
-    pipe = Pipeline(line, history, block_seconds=60.0)
+    pipe = Pipeline(line, history, block_seconds=60.0, minutes_every=900.0)
     if history is not None:
         remember_config(history, line, pipe.points)
     problems = ReadProblems()
@@ -116,6 +117,8 @@ def _nothing_read(size: int, problems: ReadProblems) -> str:
 
 def _close_as(history: History, pipe: Pipeline, state: RunEnd, exc: BaseException) -> None:
     """Close a run that stopped before its end, with what it saw; a history that refuses it too is noted on ``exc``."""
+    with contextlib.suppress(HistoryError):  # what the checks computed up to the stop; the run's end matters more
+        pipe.flush_minutes()
     try:
         history.finish_run(input_rows=pipe.inputs.rows(), data_start=pipe.first_t, data_end=pipe.last_t, state=state)
     except HistoryError as again:

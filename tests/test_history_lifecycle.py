@@ -389,7 +389,7 @@ def test_upgrade_of_a_0002_history_keeps_its_rows(db_url):
     engine = make_engine(db_url)
     try:
         with engine.connect() as c:
-            assert c.execute(text("select version_num from alembic_version")).scalar_one() == head() == "0004"
+            assert c.execute(text("select version_num from alembic_version")).scalar_one() == head() == "0005"
             assert c.execute(text("select cause, consequence, corrective_action, response_time, first_out, "
                                   "chattering, blames, detail from alarm_episodes")).all() == [(None,) * 8]
         assert _dump(engine) == before

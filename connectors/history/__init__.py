@@ -16,12 +16,15 @@ committed transaction), PostgreSQL for a plant (``postgresql+psycopg://user@host
 * ``alarm_states`` — the current lifecycle record of each alarm of a line (restored at a daemon's start).
 * ``action_requests`` — operators' requests to a running daemon, and its answers (:mod:`.requests`).
 * ``config_versions`` — the text of each configuration a line ran with (secrets removed), once per hash.
+* ``check_minutes`` — each check's value per object and minute: frames, valid frames, least, mean and greatest
+  valid value, unit (:mod:`.trends`: :func:`query_check_minutes` reads them for a trend plot).
 
 Times are epoch seconds (UTC) as floats; they are shown in ISO 8601.
 
 Modules: :mod:`.models` (tables, relationships, closed sets), :mod:`.database` (engines and URLs),
 :mod:`.schema` (Alembic revisions in ``migrations/``, applied when a history opens), :mod:`.store`
-(the store, :class:`History`), :mod:`.queries` (the readers), :mod:`.requests` (operators' requests),
+(the store, :class:`History`), :mod:`.queries` (the readers), :mod:`.trends` (the checks' minutes: rows, reader,
+retention), :mod:`.requests` (operators' requests),
 :mod:`.errors` (every failure as one line), :mod:`.lock` (one writer per line), :mod:`.spool` (the
 store-and-forward file) and :mod:`.writer` (the daemon's writer thread in front of the store, with the spool).
 
@@ -31,7 +34,8 @@ when a history opens: revision ``0001`` creates the tables; ``0002`` adds how a 
 (``runs.written_seq``) and ``writer_locks``. A database from before the migrations (``create_all``, no
 ``alembic_version`` table) is converted in place to what ``0001`` creates and stamped with it. ``0003``
 adds the ISA-18.2 alarm lifecycle: the rationalization and flags on episodes, five priorities, and the tables
-``alarm_actions``, ``alarm_states``, ``action_requests``, ``config_versions``.
+``alarm_actions``, ``alarm_states``, ``action_requests``, ``config_versions``. ``0004`` adds what a raise blames
+and carries (``alarm_episodes.blames``, ``detail``); ``0005`` the table ``check_minutes``.
 """
 
 from spanwatch.connectors.history.database import make_engine, sqlite_url
@@ -48,8 +52,10 @@ from spanwatch.connectors.history.queries import (
 )
 from spanwatch.connectors.history.schema import SchemaError, upgrade
 from spanwatch.connectors.history.store import Context, History, HistorySink, OpenEpisode, RequestAnswer
+from spanwatch.connectors.history.trends import CheckMinute, prune_check_minutes, query_check_minutes
 
 __all__ = [
+    "CheckMinute",
     "Context",
     "History",
     "HistoryError",
@@ -66,7 +72,9 @@ __all__ = [
     "latest_run",
     "make_engine",
     "open_reader",
+    "prune_check_minutes",
     "prune_context",
+    "query_check_minutes",
     "query_episodes",
     "sqlite_url",
     "upgrade",

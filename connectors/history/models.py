@@ -328,3 +328,31 @@ class ConfigVersion(Base):
     saved_at: Mapped[float]
     saved_by: Mapped[str]
     __table_args__ = (UniqueConstraint("line_name", "config_hash", name="uq_config_versions_line_hash"),)
+
+
+# --- each check's value over time (revision 0005) ---------------------------------------------------------------------
+
+
+class CheckMinuteRow(Base):
+    """One check on one object over one minute of a run: how many frames it computed (``n``), how many had a valid
+    value (``valid``) and the least, mean and greatest of those values (NULL when none was valid).
+
+    ``t``: the minute's start (epoch s, a multiple of 60); ``unit``: the unit of the check's value as its alarm points
+    state it, the values stored as the check gives them (as ``alarm_episodes`` stores them: a ``%`` unit is over a
+    fraction, 0.008 for 0.8 %).
+    """
+
+    __tablename__ = "check_minutes"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"))
+    check: Mapped[str]
+    object: Mapped[str]
+    t: Mapped[float]
+    n: Mapped[int]
+    valid: Mapped[int]
+    min: Mapped[float | None]
+    mean: Mapped[float | None]
+    max: Mapped[float | None]
+    unit: Mapped[str]
+    __table_args__ = (Index("ix_check_minutes_run_t", "run_id", "t"),
+                      Index("ix_check_minutes_check_object_t", "check", "object", "t"))

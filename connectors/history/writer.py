@@ -2,8 +2,9 @@
 what the database cannot take in a spool on disk until it can.
 
 The event loop only puts transitions (with the alarm lifecycle's changes, current records and answers to
-operators' requests), context windows and the run's end into an in-memory queue
-(:meth:`HistoryWriter.record`, :meth:`~HistoryWriter.record_contexts`, :meth:`~HistoryWriter.finish_run`:
+operators' requests), context windows, the checks' minutes and the run's end into an in-memory queue
+(:meth:`HistoryWriter.record`, :meth:`~HistoryWriter.record_contexts`, :meth:`~HistoryWriter.record_minutes`,
+:meth:`~HistoryWriter.finish_run`:
 the :class:`~spanwatch.connectors.history.store.HistorySink` the pipeline writes to), which never blocks.
 The writer thread numbers each write and applies it to the database in one transaction that also stores
 the number (``runs.written_seq``). When the database is unavailable (locked beyond the timeout, disk full,
@@ -14,8 +15,9 @@ in order, skipping those whose number the database already has (a commit whose a
 connection), and clears the spool.
 
 Bounded: the queue holds ``queue_max`` writes and the spool its capacity; a write that finds no room is
-lost, counted and logged (once when the condition starts). Context windows are kept out of a spool more
-than half full, to leave the room for transitions. A write the database refuses whatever the retry (a
+lost, counted and logged (once when the condition starts). Context windows and the checks' minutes are kept
+out of a spool more than half full, to leave the room for transitions (counted, ``lost_contexts`` and
+``lost_minutes``). A write the database refuses whatever the retry (a
 constraint) is counted and logged, and the writer goes on with the next.
 
 State changes are logged once each: ``unavailable`` (buffering in the spool), ``recovered`` (with how many
@@ -47,6 +49,7 @@ from spanwatch.connectors.history.errors import HistoryError, RecordRefused, whe
 from spanwatch.connectors.history.lock import LineLock, writer_lock
 from spanwatch.connectors.history.spool import Spool, SpoolBusy, SpoolFull
 from spanwatch.connectors.history.store import Context, History, RequestAnswer
+from spanwatch.connectors.history.trends import CheckMinute
 from spanwatch.rules.alarms import AlarmPoint, Transition
 from spanwatch.rules.lifecycle import Action, AlarmState, LifecycleEvent, Record
 from sqlalchemy.engine import make_url
@@ -133,6 +136,8 @@ def encode(run_id: int, seq: int, op: str, data: Any) -> bytes:
                 "answers": [dataclasses.asdict(a) for a in rec.get("answers", ())]}
     elif op == "contexts":
         data = [dataclasses.asdict(c) for c in data]
+    elif op == "minutes":
+        data = [dataclasses.astuple(r) for r in data]
     return json.dumps({"run": run_id, "seq": seq, "op": op, "data": data}, default=_plain).encode()
 
 
@@ -149,6 +154,8 @@ def decode(payload: bytes) -> tuple[int, int, str, Any]:
                 "answers": [RequestAnswer(**a) for a in data.get("answers", [])]}
     elif op == "contexts":
         data = [Context(**d) for d in data]
+    elif op == "minutes":
+        data = [CheckMinute(*r) for r in data]
     return int(rec["run"]), int(rec["seq"]), op, data
 
 
@@ -159,6 +166,8 @@ def _apply(history: History, op: str, data: Any, seq: int) -> None:
                        answers=rec.get("answers", ()), seq=seq)
     elif op == "contexts":
         history.record_contexts(data, seq=seq)
+    elif op == "minutes":
+        history.record_minutes(data, seq=seq)
     elif op == "finish":
         history.finish_run(**data, seq=seq)
     else:
@@ -168,7 +177,7 @@ def _apply(history: History, op: str, data: Any, seq: int) -> None:
 def _count(op: str, data: Any) -> int:
     if op == "record" and isinstance(data, dict):
         return sum(len(data.get(k) or ()) for k in ("transitions", "lifecycle", "states", "answers"))
-    return len(data) if op in ("record", "contexts") else 1
+    return len(data) if op in ("record", "contexts", "minutes") else 1
 
 
 def _call(after: Callable[[], None]) -> None:
@@ -202,6 +211,7 @@ class HistoryWriter:
         self.spooled = 0  # writes that went to the spool
         self.lost = 0  # transitions (or context windows, or run ends) lost: queue or spool full
         self.lost_contexts = 0
+        self.lost_minutes = 0  # check-minute rows kept out of a spool more than half full
         self.refused = 0  # writes the database refused (constraint)
         self.last_error = ""
         self._queue_full = False
@@ -228,6 +238,12 @@ class HistoryWriter:
         cs = list(contexts)
         if cs:
             self._put(("contexts", cs))
+
+    def record_minutes(self, rows: Sequence[CheckMinute]) -> None:
+        """Queue the checks' per-minute rows (written, or spooled while the spool is at most half full)."""
+        rs = list(rows)
+        if rs:
+            self._put(("minutes", rs))
 
     def finish_run(self, *, input_rows: Sequence[dict[str, object]], data_start: float | None = None,
                    data_end: float | None = None, state: str = "finished") -> None:
@@ -333,9 +349,12 @@ class HistoryWriter:
 
     def _to_spool(self, op: str, data: Any, seq: int) -> None:
         assert self.run_id is not None
-        if op == "contexts" and self.spool.used > self.spool.capacity // 2:
+        if op in ("contexts", "minutes") and self.spool.used > self.spool.capacity // 2:
             with self._mu:
-                self.lost_contexts += len(data)
+                if op == "contexts":
+                    self.lost_contexts += len(data)
+                else:
+                    self.lost_minutes += len(data)
             return
         payload = encode(self.run_id, seq, op, data)
         try:
@@ -439,6 +458,7 @@ class HistoryWriter:
                     "spool_bytes": self.spool.used, "spool_capacity": self.spool.capacity,
                     "spool_reserved": self.spool.reserved, "spool": str(self.spool.path), "pending": self._q.qsize(),
                     "written": self.written, "lost": self.lost, "lost_contexts": self.lost_contexts,
+                    "lost_minutes": self.lost_minutes,
                     "refused": self.refused}
 
 
