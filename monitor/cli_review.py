@@ -416,4 +416,4 @@ def kpi_cmd(
         head = f"{label}: " if label.startswith("shift") else ""
         typer.echo(f"{head}{clock.fmt(start)} to {clock.fmt(end)} plant time ({clock.tz.key})"
                    + (f", line {line}" if line else ""))
-        typer.echo(kpi_text(k, width=min(terminal_width() or 80, 80)))
+        typer.echo(kpi_text(k, width=min(terminal_width() or 80, 80), clock=clock))

@@ -8,13 +8,16 @@ from __future__ import annotations
 
 import dataclasses
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from spanwatch.connectors.history.queries import episodes_in_window, hidden_raises
 from spanwatch.rules import kpi as K
 from spanwatch.rules.kpi import AlarmKpis, Episodes
 from spanwatch.rules.values import iso
 from sqlalchemy.engine import Engine
+
+if TYPE_CHECKING:
+    from spanwatch.monitor.shifts import PlantClock
 
 
 def load_episodes(engine: Engine, start: float, end: float, line_name: str | None = None) -> Episodes:
@@ -26,8 +29,10 @@ def load_episodes(engine: Engine, start: float, end: float, line_name: str | Non
                        [int(r["id"]) in hidden for r in rows])
 
 
-def _when(t: float) -> str:
-    """Epoch s -> ``2026-03-02 06:05:00Z``."""
+def _when(t: float, clock: PlantClock | None = None) -> str:
+    """Epoch s -> ``2026-03-02 06:05:00Z`` (UTC), or ``2026-03-02 07:05:00`` in the plant's time with a clock."""
+    if clock is not None:
+        return clock.fmt(t, seconds=True)
     return datetime.fromtimestamp(t, UTC).strftime("%Y-%m-%d %H:%M:%SZ")
 
 
@@ -39,13 +44,14 @@ def _hours(s: float) -> str:
     return f"{s / 3600:.1f} h" if s < 2 * K.DAY_S else f"{s / K.DAY_S:.1f} d"
 
 
-def kpi_text(k: AlarmKpis, width: int = 80) -> str:
+def kpi_text(k: AlarmKpis, width: int = 80, clock: PlantClock | None = None) -> str:
     """A compact plain-text summary of ``k``, no line longer than ``width`` (at least 60), with the benchmark of
-    each metric beside it (ISA-18.2-2016 / IEC 62682 / EEMUA 191; see :mod:`spanwatch.rules.kpi`)."""
+    each metric beside it (ISA-18.2-2016 / IEC 62682 / EEMUA 191; see :mod:`spanwatch.rules.kpi`); times in the
+    plant's time with ``clock``, else in UTC."""
     width = max(60, width)
     th = k.thresholds
     ops = f"{k.operators} operator position" + ("s" if k.operators != 1 else "")
-    out = [f"Alarm KPIs {_when(k.start)} to {_when(k.end)} ({_hours(k.end - k.start)})",
+    out = [f"Alarm KPIs {_when(k.start, clock)} to {_when(k.end, clock)} ({_hours(k.end - k.start)})",
            f"{ops}; annunciated raises {k.raises}",
            f"not counted: {k.advisory_raises} advisory, {k.hidden_raises} raised while shelved, suppressed or "
            "out of service",
@@ -68,7 +74,7 @@ def kpi_text(k: AlarmKpis, width: int = 80) -> str:
                f"{_pct(k.flood_time_share)} of the time (target < ~{_pct(K.FLOOD_TIME_SHARE_MAX)})")
     if k.largest_flood is not None:
         f = k.largest_flood
-        out.append(f"  largest: {_when(f.start)} to {_when(f.end)[11:]}, {f.alarms} alarms"
+        out.append(f"  largest: {_when(f.start, clock)} to {_when(f.end, clock)[11:]}, {f.alarms} alarms"
                    + (" (still at the end)" if f.ongoing else ""))
     out.append(f"Top {th.top_n} alarms: {_pct(k.top_share)} of the raises (target <= ~{_pct(K.TOP10_SHARE_MAX)})")
     key_w = width - 20
@@ -81,7 +87,7 @@ def kpi_text(k: AlarmKpis, width: int = 80) -> str:
     out.append(f"Fleeting (< {th.fleeting_s:g} s): {k.fleeting} (target 0)")
     out.append(f"Stale (active >= {_hours(th.stale_s)}): {len(k.stale)} (target < {K.STALE_MAX_PER_DAY} on any day)")
     for s in k.stale[:5]:
-        out.append(f"  {_hours(s.age_s):>7}  since {_when(s.raised_t)}  {_fit(s.key, width - 37)}")
+        out.append(f"  {_hours(s.age_s):>7}  since {_when(s.raised_t, clock)}  {_fit(s.key, width - 37)}")
     names = [p.priority for p in k.priorities]
     out.append(f"{'Priority':14}" + "".join(f"{n:>10}" for n in names))
     out.append(f"{'  measured':14}" + "".join(f"{_pct(p.share):>10}" for p in k.priorities))

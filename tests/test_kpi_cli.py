@@ -144,12 +144,12 @@ def test_text_report_fits_80_columns(db):
     # the window in plant time first (this history kept no configuration: UTC), then the summary
     assert lines[0] == f"2026-03-02 06:00 to 2026-03-02 07:00 plant time (UTC), line {LINE_A}"
     lines = lines[1:]
-    assert lines[0] == "Alarm KPIs 2026-03-02 06:00:00Z to 2026-03-02 07:00:00Z (1.0 h)"
+    assert lines[0] == "Alarm KPIs 2026-03-02 06:00:00 to 2026-03-02 07:00:00 (1.0 h)"  # plant time, as above
     assert lines[1] == "1 operator position; annunciated raises 16"
     assert lines[2].startswith("not counted: 0 advisory, 0 raised while shelved")
     row = next(line for line in lines if line.startswith("alarms per 10 min, average"))
     assert row.split()[-3:] == ["2.67", "~1", "~2"]
-    assert "largest: 2026-03-02 06:05:00Z to 06:13:30Z, 12 alarms" in text
+    assert "largest: 2026-03-02 06:05:00 to 06:13:30, 12 alarms" in text
     assert "Stale (active >= 24.0 h): 1" in text
     assert "traction:pull_1:warning" in text
 
