@@ -94,7 +94,9 @@ def report_cmd(
     config: Annotated[Path | None, typer.Option("--config", "-c", help="The line's configuration (plant time, "
                                                 "shifts, limits); default: the one the history kept.")] = None,
     line_name: Annotated[str | None, typer.Option("--line", help="The line (default: the config's, or the only "
-                                                                 "line in the history).")] = None,
+                                                                 "line in the history); all: every line of the "
+                                                                 "history, a plant report (plant time and shifts "
+                                                                 "of the first line's configuration).")] = None,
     shift: Annotated[str | None, typer.Option(help="A shift of the calendar, e.g. early (with --date, or the latest "
                                                    "one).")] = None,
     day: Annotated[str | None, typer.Option("--date", help="With --shift: the day it starts, YYYY-MM-DD.")] = None,
@@ -134,6 +136,12 @@ def report_cmd(
         with history_errors(url, db_timeout):
             line = line_name or (ln.name if ln is not None else None)
             known = line_names(engine)
+            plant_wide = line == "all" and "all" not in known
+            title = None
+            if plant_wide:
+                if not known:
+                    fail(f"--line: {shown} has no run")
+                line, title = known[0], f"all lines ({', '.join(known)})"
             if line is None:
                 if len(known) != 1:
                     fail(f"--line: name the line ({', '.join(known) or 'this history has no run'})")
@@ -160,8 +168,9 @@ def report_cmd(
                         clock, plant, points = _clock_of(k2)
                         source = f"kept by the history (config {k2['config_hash']}, {k2['config_file']})"
                         start, end, label = _window(clock, shift, day, t_from, t_to, where="the configuration kept")
-            report = gather(engine, line=line, plant=plant, start=start, end=end, label=label, clock=clock,
-                            points=points, config_source=source, operators=operators, max_episodes=max_episodes)
+            report = gather(engine, line=None if plant_wide else line, plant=plant, start=start, end=end,
+                            label=label, clock=clock, points=points, config_source=source, operators=operators,
+                            max_episodes=max_episodes, title=title)
     finally:
         engine.dispose()
     page = render(report)

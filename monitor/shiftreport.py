@@ -181,33 +181,41 @@ def shown_value(value: float | None, unit: str) -> str:
 # --- gathering --------------------------------------------------------------------------------------------------
 
 
-def check_minutes(engine: Any, start: float, end: float, line: str) -> list[dict[str, Any]]:
-    """Per-minute check values of the window from the history, or [] where this version does not store them
-    (``spanwatch.connectors.history.trends`` absent) or none were stored."""
-    try:
-        from spanwatch.connectors.history.trends import query_check_minutes  # type: ignore[import-not-found]
-    except ImportError:
-        return []
+def check_minutes(engine: Any, start: float, end: float, line: str | None) -> list[dict[str, Any]]:
+    """Per-minute check values of the window from the history, or [] where none were stored; ``line`` None: of
+    every line, each object prefixed with its line."""
+    from spanwatch.connectors.history.trends import query_check_minutes
     from sqlalchemy.exc import SQLAlchemyError
 
     try:
-        return list(query_check_minutes(engine, start=start, end=end, line=line))
+        rows = list(query_check_minutes(engine, start=start, end=end, line=line))
     except SQLAlchemyError:  # a history from before the trend table: the report goes on without trends
         return []
+    if line is None:
+        rows = [dict(r, object=f"{r['line']}/{r['object']}") for r in rows]
+    return rows
 
 
-def gather(engine: Any, *, line: str, plant: str, start: float, end: float, label: str, clock: PlantClock,
+def gather(engine: Any, *, line: str | None, plant: str, start: float, end: float, label: str, clock: PlantClock,
            points: Sequence[dict[str, Any]], config_source: str, operators: int = 1,
-           max_episodes: int = 30) -> ShiftReport:
-    """Read the history ``engine`` for line ``line`` over ``[start, end)`` and build the report."""
+           max_episodes: int = 30, title: str | None = None) -> ShiftReport:
+    """Read the history ``engine`` for line ``line`` over ``[start, end)`` and build the report.
+
+    ``line`` None: every line of the history (a plant report, headed ``title``): each alarm's key and object are
+    then prefixed with its line (``Q2 film rewinder/traction:pull_1:alarm``), so the same check on the same
+    roller id of two lines is counted, ranked and drawn apart."""
     from spanwatch.connectors.history.queries import actions_of, episode_detail, episodes_in_window, hidden_raises
     from spanwatch.connectors.history.reportreads import context_series, episode_lines, runs_in_window
 
     rows = episodes_in_window(engine, start, end, line)
     more = episode_lines(engine, [int(r["id"]) for r in rows])
     episodes = [{"id": int(r["id"]), "key": r["alarm_key"], "check": r["kind"], "object": r["object_id"],
+                 "object_id": r["object_id"],
                  "level": r["level"], "priority": r["priority"], "raised_t": r["raised_t"],
                  "cleared_t": r["cleared_t"], **more.get(int(r["id"]), {})} for r in rows]
+    if line is None:
+        for e in episodes:
+            e["key"], e["object"] = f"{e.get('line')}/{e['key']}", f"{e.get('line')}/{e['object']}"
     hidden_ids = hidden_raises(engine, [e["id"] for e in episodes])
     for e in episodes:
         e["hidden"] = e["id"] in hidden_ids
@@ -235,10 +243,10 @@ def gather(engine: Any, *, line: str, plant: str, start: float, end: float, labe
         d = episode_detail(engine, e["id"]) or {}
         d["series"] = contexts.get(e["id"], [])
         d["hidden"] = e["hidden"]
-        d["direction"] = next((p["direction"] for p in limits.get((e["check"], e["object"]), [])
+        d["direction"] = next((p["direction"] for p in limits.get((e["check"], e["object_id"]), [])
                                if p["level"] == e["level"]), None)
         details.append(d)
-    return ShiftReport(plant=plant, line=line, label=label, start=start, end=end, clock=clock,
+    return ShiftReport(plant=plant, line=title or line or "all lines", label=label, start=start, end=end, clock=clock,
                        config_source=config_source, runs=runs_in_window(engine, start, end, line),
                        episodes=known, kpis=kpis, in_alarm=time_in_alarm(known, start, end),
                        hidden=hidden_periods(actions, start, end, cleared), details=details,
@@ -263,7 +271,7 @@ def summary_text(r: ShiftReport, width: int = 80) -> str:
         out.extend(textwrap.wrap(text, width, initial_indent=head, subsequent_indent=indent,
                                  break_on_hyphens=False) or [head.rstrip()])
 
-    wrap(f"Shift report: {r.plant}, line {r.line}")
+    wrap(f"Shift report: {r.plant}, " + (r.line if r.line.startswith("all lines") else f"line {r.line}"))
     wrap(f"{r.label}: {c.fmt(r.start)} to {c.fmt(r.end)} ({c.tz.key}, {fmt_duration(r.end - r.start)})")
     runs = ", ".join(f"{x['id']} ({x['mode']})" for x in r.runs) or "none: no data in this window"
     wrap(f"runs: {runs}")

@@ -449,3 +449,34 @@ def test_a_window_after_the_data_claims_no_alarm_active(history, tmp_path):
     flat = " ".join(proc.stdout.split())
     assert "runs: none" in flat and "0 episodes active in the window" in flat
     assert "Time in alarm per check" not in flat
+
+
+def test_a_plant_report_covers_every_line_and_keeps_them_apart(history, tmp_path):
+    """One history, two lines (the same recording replayed as line Q2 and as a line Q3 of its own name):
+    ``--line all`` counts the episodes of both (read with sqlite3) and ranks each line's alarms under its name."""
+    import shutil
+
+    db, _ = history
+    plant = tmp_path / "plant.db"
+    shutil.copy(db, plant)
+    q3 = tmp_path / "q3.toml"
+    q3.write_text(f'extends = "{CONFIG}"\n\n[line]\nname = "Q3 film rewinder"\n', encoding="utf-8")
+    cli("replay", str(db.parent / "rec.parquet"), "--config", str(q3), "--db", str(plant), "--no-progress")
+    proc = cli("report", "--db", str(plant), "--line", "all", "--shift", "night", "--date", "2026-03-28",
+               "--out", str(tmp_path / "plant.html"))
+    flat = " ".join(proc.stdout.split())
+    assert "all lines (Q2 film rewinder, Q3 film rewinder)" in flat
+    a, b = utc(2026, 3, 28, 21, 0), utc(2026, 3, 29, 4, 0)
+    with sqlite3.connect(plant) as con:
+        per_line = dict(con.execute(
+            "select r.line_name, count(*) from alarm_episodes e join runs r on r.id = e.run_id where e.raised_t < ? "
+            "and (e.cleared_t is null or e.cleared_t > ?) group by r.line_name", (b, a)).fetchall())
+    assert set(per_line) == {"Q2 film rewinder", "Q3 film rewinder"} and min(per_line.values()) > 0
+    m = re.search(r"(\d+) episodes active in the window", flat)
+    assert m and int(m.group(1)) == sum(per_line.values())
+    page = (tmp_path / "plant.html").read_text(encoding="utf-8")
+    assert "Q2 film rewinder/" in page and "Q3 film rewinder/" in page, "alarms named with their line"
+    one = cli("report", "--db", str(plant), "--line", "Q3 film rewinder", "--shift", "night", "--date",
+              "2026-03-28", "--out", str(tmp_path / "q3.html"))
+    m3 = re.search(r"(\d+) episodes active in the window", " ".join(one.stdout.split()))
+    assert m3 and int(m3.group(1)) == per_line["Q3 film rewinder"]

@@ -88,16 +88,17 @@ def context_series(engine: Engine, episode_ids: list[int]) -> dict[int, list[dic
 
 def episode_lines(engine: Engine, ids: list[int]) -> dict[int, dict[str, Any]]:
     """Value, limit, unit and line state at the raise, and peak, of the episodes ``ids`` (for every episode of a
-    report, not only those shown in full); their run, and the end of that run's data (``run_to``: ``data_end``,
-    else ``finished_at``; None while the run goes on or was killed)."""
+    report, not only those shown in full); their run and its line, and the end of that run's data (``run_to``:
+    ``data_end``, else ``finished_at``; None while the run goes on or was killed)."""
     out: dict[int, dict[str, Any]] = {}
     with Session(engine) as s:
         for i in range(0, len(ids), 500):
             part = ids[i:i + 500]
-            for e_id, v, p, lim, unit, state, run, d_end, f_at in s.execute(
+            for e_id, v, p, lim, unit, state, run, d_end, f_at, line in s.execute(
                     select(AlarmEpisode.id, AlarmEpisode.raise_value, AlarmEpisode.peak_value, AlarmEpisode.limit,
-                           AlarmEpisode.unit, AlarmEpisode.line_state, Run.id, Run.data_end, Run.finished_at)
+                           AlarmEpisode.unit, AlarmEpisode.line_state, Run.id, Run.data_end, Run.finished_at,
+                           Run.line_name)
                     .join(Run, Run.id == AlarmEpisode.run_id).where(AlarmEpisode.id.in_(part))):
                 out[int(e_id)] = {"value": v, "peak": p, "limit": lim, "unit": unit, "line_state": state,
-                                  "run": run, "run_to": d_end if d_end is not None else f_at}
+                                  "run": run, "run_to": d_end if d_end is not None else f_at, "line": line}
     return out
