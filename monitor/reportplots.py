@@ -186,7 +186,7 @@ def episode_plot(detail: dict[str, Any], clock: PlantClock, minutes: Sequence[di
         ax.plot(t, np.asarray(s["values"], dtype=float), linestyle=ls, marker=mk, markevery=max(1, len(t) // 12),
                 markersize=3, color="black", linewidth=1.0)
         ax.axvline(0.0, color="#444444", linestyle=":", linewidth=1.0)
-        ax.set_title(f"{s['signal']} (SI)", fontsize=8, loc="left")
+        ax.set_title(f"{s['signal']} ({signal_unit(str(s['signal']))})", fontsize=8, loc="left")
         ax.tick_params(labelsize=7)
         ax.grid(linestyle=":", color="#bbbbbb")
     if series:
@@ -243,3 +243,18 @@ def trend_plot(check: str, rows: Sequence[dict[str, Any]], limits: dict[str, lis
         ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.08, 1.0), frameon=False)
     ax.set_title(f"{check}: mean per minute per object, with its limits", fontsize=10, loc="left")
     return _png(fig)
+
+
+# the SI unit of each kind of derived signal the pipeline names ``kind/object`` (spanwatch.monitor.signals,
+# spanwatch.monitor.line: tension per width, surface speeds, roll diameters, rotation in revolutions per second)
+SIGNAL_UNITS = {"tension": "N/m", "speed": "m/s", "diameter": "m", "length": "m", "rotation": "rev/s",
+                "source_lag": "s", "source_quiet": "s"}
+
+
+def signal_unit(name: str) -> str:
+    """The unit a context signal is stored in: ``tension/s5`` -> ``N/m``; a raw tag or another kind: ``SI``.
+
+    >>> signal_unit("tension/unwind-pull_1"), signal_unit("rotation/unwind"), signal_unit("tag/q2.unwind.rpm")
+    ('N/m', 'rev/s', 'SI')
+    """
+    return SIGNAL_UNITS.get(name.split("/", 1)[0], "SI")
