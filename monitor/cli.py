@@ -83,6 +83,24 @@ def _one_of(value: str | None, choices: Sequence[str], option: str) -> None:
                                                                               if near else ""))
 
 
+def check_recording(path: Path) -> None:
+    """Exit 2 unless ``path`` is an existing file (a recording the commands on a recording read)."""
+    if not path.exists():
+        fail(f"{path}: no such recording")
+    if path.is_dir():
+        fail(f"{path}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok; or .parquet)")
+
+
+def check_plot(plot: Path | None) -> None:
+    """Exit 2 unless ``plot`` (if given) names a .png, .svg or .pdf file in an existing folder."""
+    if plot is None:
+        return
+    if plot.suffix.lower() not in (".png", ".svg", ".pdf"):
+        fail(f"--plot: expected a file ending .png, .svg or .pdf, got {str(plot)!r}")
+    if not plot.parent.is_dir():
+        fail(f"--plot: the folder {plot.parent} does not exist")
+
+
 def open_line(path: Path) -> Line:
     """Load a line and its alarm settings (and suppression rules), exiting with status 2 on any config problem."""
     from spanwatch.monitor.checkset import alarm_points, build_checks, suppression_rules

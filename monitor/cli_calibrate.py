@@ -11,27 +11,23 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
-from spanwatch.monitor.cli import SAFETY_NOTE, _one_of, app, console, err_console, fail, open_line
+from spanwatch.monitor.cli import (
+    SAFETY_NOTE,
+    _one_of,
+    app,
+    check_plot,
+    check_recording,
+    console,
+    err_console,
+    fail,
+    open_line,
+)
 
 RECORDING = "Recording: CSV long form (time,tag,value,quality; .gz ok) or .parquet."
 CONFIG = "Line configuration (TOML)."
 CORRELATED = 0.5  # lag-1 autocorrelation of the residuals above which a roll is flagged (common practice, no source)
 
 
-def _recording(path: Path) -> None:
-    if not path.exists():
-        fail(f"{path}: no such recording")
-    if path.is_dir():
-        fail(f"{path}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok; or .parquet)")
-
-
-def _plot_path(plot: Path | None) -> None:
-    if plot is None:
-        return
-    if plot.suffix.lower() not in (".png", ".svg", ".pdf"):
-        fail(f"--plot: expected a file name ending .png, .svg or .pdf, got {str(plot)!r}")
-    if not plot.parent.exists() and str(plot.parent) not in ("", "."):
-        fail(f"--plot: the folder {plot.parent} does not exist")
 
 
 def _gather(line, recording: Path, winders: list[str] | None, rollers: list[str] | None):  # noqa: ANN001
@@ -78,8 +74,8 @@ def calibrate_cmd(
     line = open_line(config)
     ids = [w.id for w in line.model.winders_in_path]
     _one_of(winder, ids, "--winder")
-    _recording(recording)
-    _plot_path(plot)
+    check_recording(recording)
+    check_plot(plot)
     gathered = _gather(line, recording, [winder] if winder else None, [])
     rolls = calibrate_rolls(gathered, line, confidence=confidence)
     mat = line.model.material
@@ -171,8 +167,8 @@ def traction_evidence_cmd(
     line = open_line(config)
     ids = [r.id for r in line.model.driven_rollers]
     _one_of(roller, ids, "--roller")
-    _recording(recording)
-    _plot_path(plot)
+    check_recording(recording)
+    check_plot(plot)
     gathered = _gather(line, recording, [], [roller] if roller else None)
     ev = traction_evidence(gathered, window=win, roller=(lambda rid: rid == roller) if roller else None)
     clock = PlantClock.of(line.config)

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
-from spanwatch.monitor.cli import SAFETY_NOTE, _one_of, app, fail, fail_config, open_line
+from spanwatch.monitor.cli import SAFETY_NOTE, _one_of, app, check_plot, check_recording, fail, fail_config, open_line
 
 RecArg = Annotated[Path, typer.Argument(help="Recording: CSV long form (.gz ok) or .parquet.")]
 ConfigOpt = Annotated[Path, typer.Option("--config", "-c", help="Line configuration (TOML).")]
@@ -22,20 +22,6 @@ CheckOpt = Annotated[str | None, typer.Option("--check", help="Only this check k
 ObjectOpt = Annotated[str | None, typer.Option("--object", help="Only this roller, zone, winder or tag.")]
 
 
-def _recording(path: Path) -> None:
-    if not path.exists():
-        fail(f"{path}: no such recording")
-    if path.is_dir():
-        fail(f"{path}: a folder, not a recording (CSV long form: time,tag,value,quality; .gz ok; or .parquet)")
-
-
-def _plot_path(plot: Path | None) -> None:
-    if plot is None:
-        return
-    if plot.suffix.lower() not in (".png", ".svg", ".pdf"):
-        fail(f"--plot: expected a file ending .png, .svg or .pdf, got {str(plot)!r}")
-    if not plot.parent.is_dir():
-        fail(f"--plot: the folder {plot.parent} does not exist")
 
 
 def wrap80(lines: list[str]) -> list[str]:
@@ -74,9 +60,9 @@ def stats_cmd(
 
     _one_of(fmt, ("table", "csv", "json"), "--format")
     _check_kind(check)
-    _plot_path(plot)
+    check_plot(plot)
     line = open_line(config)
-    _recording(recording)
+    check_recording(recording)
     chosen = {(p.kind, p.object_id) for p in select_points(line_points(line), check, obj)}
     if plot is not None and len(chosen) > 12:
         fail(f"--plot: {len(chosen)} checks x objects make too many panels (at most 12): narrow with --check "
@@ -187,7 +173,7 @@ def tune_cmd(
     _one_of(fmt, ("table", "csv", "json"), "--format")
     _check_kind(check)
     _one_of(level, ("warning", "alarm"), "--level")
-    _plot_path(plot)
+    check_plot(plot)
     try:
         grid = parse_limits(limits) if limits is not None else None
     except ValueError as exc:
@@ -201,7 +187,7 @@ def tune_cmd(
     except ValueError as exc:
         fail(f"--target-rate: {exc}")
     line = open_line(config)
-    _recording(recording)
+    check_recording(recording)
     points = [p for p in select_points(line_points(line), check, obj)]
     if not points:
         objs = sorted({p.object_id for p in line_points(line) if p.kind == check})
@@ -281,7 +267,7 @@ def compare_cmd(
         suppression_rules(line_b, alarm_points(line_b, checks), checks)
     except ConfigError as exc:
         fail_config(exc)
-    _recording(recording)
+    check_recording(recording)
     try:
         a, b = run_alarms(line_a, recording), run_alarms(line_b, recording)
     except ValueError as exc:
@@ -325,7 +311,7 @@ def mark_cmd(
     from spanwatch.monitor.marks import Label, MarksError, add_mark, labels_for, marks_path_for
     from spanwatch.monitor.shifts import PlantClock
 
-    _recording(recording)
+    check_recording(recording)
     clk = PlantClock.of(open_line(config).config) if config is not None else PlantClock("UTC")
     if start is None and end is None and label is None and not objects:
         try:

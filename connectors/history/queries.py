@@ -60,6 +60,21 @@ def open_reader(url: str, *, timeout: float = READ_TIMEOUT_S) -> Engine:
     return engine
 
 
+def _episode_filters(q: Any, kind: str | None, object_id: str | None, priority: str | None,
+                     level: str | None) -> Any:
+    """``q`` narrowed to one check kind, object, priority and level where given; a priority or level outside its
+    closed set matches nothing."""
+    if kind:
+        q = q.where(AlarmEpisode.kind == kind)
+    if object_id:
+        q = q.where(AlarmEpisode.object_id == object_id)
+    if priority:
+        q = q.where(AlarmEpisode.priority == Priority(priority) if priority in _values(Priority) else false())
+    if level:
+        q = q.where(AlarmEpisode.level == Level(level) if level in _values(Level) else false())
+    return q
+
+
 def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | None = None,
                    object_id: str | None = None, priority: str | None = None, level: str | None = None,
                    since: float | None = None, until: float | None = None, active_only: bool = False
@@ -72,14 +87,7 @@ def query_episodes(engine: Engine, *, run_id: int | None = None, kind: str | Non
     q = select(AlarmEpisode).options(load_only(*_BASE)).order_by(AlarmEpisode.raised_t, AlarmEpisode.id)
     if run_id is not None:
         q = q.where(AlarmEpisode.run_id == run_id)
-    if kind:
-        q = q.where(AlarmEpisode.kind == kind)
-    if object_id:
-        q = q.where(AlarmEpisode.object_id == object_id)
-    if priority:
-        q = q.where(AlarmEpisode.priority == Priority(priority) if priority in _values(Priority) else false())
-    if level:
-        q = q.where(AlarmEpisode.level == Level(level) if level in _values(Level) else false())
+    q = _episode_filters(q, kind, object_id, priority, level)
     if since is not None:
         q = q.where(AlarmEpisode.raised_t >= since)
     if until is not None:
@@ -331,14 +339,7 @@ def review_episodes(engine: Engine, *, run_ids: list[int] | None = None, kind: s
          .options(load_only(*_BASE)).order_by(AlarmEpisode.raised_t, AlarmEpisode.id))
     if run_ids is not None:
         q = q.where(AlarmEpisode.run_id.in_(run_ids) if run_ids else false())
-    if kind:
-        q = q.where(AlarmEpisode.kind == kind)
-    if object_id:
-        q = q.where(AlarmEpisode.object_id == object_id)
-    if priority:
-        q = q.where(AlarmEpisode.priority == Priority(priority) if priority in _values(Priority) else false())
-    if level:
-        q = q.where(AlarmEpisode.level == Level(level) if level in _values(Level) else false())
+    q = _episode_filters(q, kind, object_id, priority, level)
     if end is not None:
         q = q.where(AlarmEpisode.raised_t < end)
     if start is not None:
