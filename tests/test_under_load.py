@@ -65,7 +65,10 @@ to = "400 m/min"
     return f
 
 
-def _daemon_config(tmp_path: Path, name: str, broker, http_port: int, grace: str = "3 s") -> Path:
+def _daemon_config(tmp_path: Path, name: str, broker, http_port: int, grace: str = "60 s") -> Path:
+    """The daemon's config. The publisher is started only once the daemon has connected, and under load its own
+    start (a Python process importing numpy and the simulator) takes seconds; a source silent past the start-up
+    grace is rightly lost (test_event_time.py holds that rule), so the grace covers the publisher's start."""
     f = tmp_path / f"{name}.toml"
     f.write_text(f"""extends = "{ROOT / 'config' / 'quillmere-q2-mqtt.toml'}"
 
@@ -154,10 +157,7 @@ start = "15 s"
 end = "25 s"
 """)
     port = _free_port()
-    # The publisher is started only once the daemon has connected, and under this load its own start (a Python
-    # process importing numpy and the simulator) takes seconds. A source that stays silent past the start-up grace
-    # is rightly lost (its own test is in test_source_health.py), so the grace here covers the publisher's start.
-    daemon = _start_daemon(_daemon_config(tmp_path, "loaded", mqtt_broker, port, grace="60 s"))
+    daemon = _start_daemon(_daemon_config(tmp_path, "loaded", mqtt_broker, port))
     try:
         _wait_connected(port, daemon)
         pub = _publisher(scenario, mqtt_broker)
